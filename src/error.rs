@@ -1,0 +1,109 @@
+//! The one error type of the library: "the harness could not do what was asked".
+//!
+//! A kernel that disagrees with the reference is *not* an error; it is a result
+//! carried in a report. `Error` is for invalid parameters and shapes, malformed
+//! files, I/O failures and protocol violations.
+
+use std::fmt;
+
+/// Everything that can stop the library from computing an answer.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum Error {
+    /// A scalar parameter is outside its valid range.
+    #[error("invalid parameter `{name}`: expected {expected}, given {given}")]
+    InvalidParameter {
+        /// The parameter's name as it appears in the API.
+        name: &'static str,
+        /// What the parameter must satisfy.
+        expected: String,
+        /// The value that was passed.
+        given: String,
+    },
+    /// An array has the wrong shape.
+    #[error("wrong shape for `{name}`: expected {expected}, given {given:?}")]
+    Shape {
+        /// The array's name as it appears in the API.
+        name: &'static str,
+        /// The expected shape, written with the dimension names (e.g. `[H, L, d]` = `[2, 3, 4]`).
+        expected: String,
+        /// The shape that was passed.
+        given: Vec<usize>,
+    },
+    /// A position lies outside what the encoding can represent.
+    #[error("position {position} is out of range for `{name}`: {reason}")]
+    PositionOutOfRange {
+        /// The table or encoding that was indexed.
+        name: &'static str,
+        /// The offending position.
+        position: i64,
+        /// Why it is out of range.
+        reason: String,
+    },
+}
+
+/// The library's result type.
+pub type Result<T> = std::result::Result<T, Error>;
+
+impl Error {
+    /// Shorthand for [`Error::InvalidParameter`].
+    pub(crate) fn param(
+        name: &'static str,
+        expected: impl Into<String>,
+        given: impl fmt::Display,
+    ) -> Self {
+        Error::InvalidParameter {
+            name,
+            expected: expected.into(),
+            given: given.to_string(),
+        }
+    }
+
+    /// Shorthand for [`Error::Shape`].
+    pub(crate) fn shape(name: &'static str, expected: impl Into<String>, given: &[usize]) -> Self {
+        Error::Shape {
+            name,
+            expected: expected.into(),
+            given: given.to_vec(),
+        }
+    }
+}
+
+/// Checks that `given` equals `expected`, naming each dimension in the error.
+///
+/// `dims` names the dimensions (e.g. `["H", "L", "d"]`) so that the message reads
+/// `expected [H, L, d] = [2, 3, 4]`.
+pub(crate) fn expect_shape(
+    name: &'static str,
+    dims: &[&str],
+    expected: &[usize],
+    given: &[usize],
+) -> Result<()> {
+    if given == expected {
+        return Ok(());
+    }
+    let names = dims.join(", ");
+    let values: Vec<String> = expected.iter().map(|x| x.to_string()).collect();
+    Err(Error::shape(
+        name,
+        format!("[{names}] = [{}]", values.join(", ")),
+        given,
+    ))
+}
+
+/// Checks that every value of an array is finite.
+pub(crate) fn expect_finite<'a>(
+    name: &'static str,
+    values: impl IntoIterator<Item = &'a f64>,
+) -> Result<()> {
+    for (index, x) in values.into_iter().enumerate() {
+        if !x.is_finite() {
+            return Err(Error::param(
+                name,
+                "finite values only",
+                format!("{x} at flat index {index}"),
+            ));
+        }
+    }
+    Ok(())
+}

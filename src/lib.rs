@@ -1,0 +1,44 @@
+//! posconform: reference numerics and conformance checks for positional encoding in
+//! attention kernels.
+//!
+//! The index conventions (layout, absolute positions, distance `Δ = M + i - j`, causal
+//! visibility over `[memory ; current]`) are stated once, in DESIGN.md §3 and in
+//! [`attention`]; every scheme module links there and cites its paper.
+//!
+//! # Example
+//!
+//! Transformer-XL relative scores for one head, two queries and one memory key,
+//! computed by the naive per-pair form and by the efficient relative-shift form:
+//!
+//! ```
+//! use ndarray::{array, Array3};
+//! use posconform::xl_relative::{scores, scores_naive, RelativeInputs, RelativeParams};
+//!
+//! let q = Array3::from_shape_vec((1, 2, 2), vec![0.5, -1.0, 2.0, 0.25]).unwrap();
+//! let k = Array3::from_shape_vec((1, 3, 2), vec![1.0, 0.0, 0.0, 1.0, 1.0, 1.0]).unwrap();
+//! let r = Array3::from_shape_vec((1, 3, 2), vec![0.1, 0.2, 0.3, 0.4, 0.5, 0.6]).unwrap();
+//! let (u, v) = (array![[0.01, 0.02]], array![[0.03, 0.04]]);
+//! let inputs = RelativeInputs { q: q.view(), k: k.view(), r: r.view(), u: u.view(), v: v.view() };
+//! let params = RelativeParams::default(); // scale 1/sqrt(d), no clamp
+//!
+//! let fast = scores(&inputs, &params)?;
+//! let slow = scores_naive(&inputs, &params)?;
+//! // Query 0 sees the memory key and itself, not the future key (Δ = -1).
+//! assert!(fast[[0, 0, 2]] == f64::NEG_INFINITY && slow[[0, 0, 2]] == f64::NEG_INFINITY);
+//! for (a, b) in fast.iter().zip(&slow).filter(|(a, _)| a.is_finite()) {
+//!     assert!((a - b).abs() < 1e-15);
+//! }
+//! # Ok::<(), posconform::Error>(())
+//! ```
+#![deny(missing_docs)]
+
+pub mod attention;
+mod error;
+pub mod generate;
+pub mod recurrence;
+pub mod scheme;
+
+pub use attention::{Scale, Window};
+pub use error::{Error, Result};
+pub use scheme::sinusoidal::{Sinusoid, SinusoidLayout};
+pub use scheme::{alibi, bucketed, clipped, learned, rotary, sinusoidal, xl_relative, Scheme};
