@@ -1,0 +1,10 @@
+//! Property tests: one function per invariant, the invariant in its doc comment, each with a planted-bug companion showing the property can fail.
+#[path = "../common/mod.rs"]
+mod common;
+
+mod alibi;
+mod bucketed;
+mod clipped;
+mod rotary;
+mod sinusoidal;
+mod xl_relative;

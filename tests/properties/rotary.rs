@@ -1,0 +1,1 @@
+//! rotary (in progress)

@@ -1,0 +1,1 @@
+//! sinusoidal (in progress)

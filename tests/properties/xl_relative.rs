@@ -1,0 +1,1 @@
+//! xl_relative (in progress)

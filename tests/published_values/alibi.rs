@@ -1,0 +1,1 @@
+//! alibi (in progress)

@@ -1,0 +1,1 @@
+//! bucketed (in progress)

@@ -1,0 +1,10 @@
+//! Checks against published values and independent high-precision tables. Every value names its source beside the check.
+#[path = "../common/mod.rs"]
+mod common;
+
+mod alibi;
+mod bucketed;
+mod clipped;
+mod rotary;
+mod sinusoidal;
+mod xl_relative;
