@@ -95,9 +95,7 @@ impl Scale {
     /// Errors unless the factor is finite.
     pub(crate) fn validate(self) -> Result<()> {
         match self {
-            Scale::Fixed(x) if !x.is_finite() => {
-                Err(Error::param("scale", "a finite factor", x))
-            }
+            Scale::Fixed(x) if !x.is_finite() => Err(Error::param("scale", "a finite factor", x)),
             _ => Ok(()),
         }
     }
@@ -211,7 +209,11 @@ pub fn dot_scores(
 pub(crate) fn window_for(q: ArrayView3<'_, f64>, k: ArrayView3<'_, f64>) -> Result<Window> {
     let (heads, l, d) = q.dim();
     if heads == 0 || l == 0 || d == 0 {
-        return Err(Error::shape("q", "[H, L, d] with every dimension >= 1", q.shape()));
+        return Err(Error::shape(
+            "q",
+            "[H, L, d] with every dimension >= 1",
+            q.shape(),
+        ));
     }
     let (kh, kk, kd) = k.dim();
     if kk < l {

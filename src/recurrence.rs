@@ -152,7 +152,8 @@ impl RelativeLayer {
         self.check_rows("memory", memory)?;
         self.check_rows("inputs", inputs)?;
         let window = Window::new(memory.nrows(), inputs.nrows())?;
-        let context = concatenate(Axis(0), &[memory.view(), inputs.view()]).expect("widths checked");
+        let context =
+            concatenate(Axis(0), &[memory.view(), inputs.view()]).expect("widths checked");
         let w = &self.weights;
         let q = Self::project(inputs, w.w_q.view());
         let k = Self::project(context.view(), w.w_k.view());

@@ -285,11 +285,7 @@ pub fn scores(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Ar
         let q = inputs.q.index_axis(Axis(0), h);
         let qu = add_bias(q, inputs.u.row(h));
         let qv = add_bias(q, inputs.v.row(h));
-        let r_desc = descending(
-            inputs.r.index_axis(Axis(0), h),
-            key_len,
-            params.clamp_len,
-        );
+        let r_desc = descending(inputs.r.index_axis(Axis(0), h), key_len, params.clamp_len);
         let mut ac = out.index_axis_mut(Axis(0), h);
         ndarray::linalg::general_mat_mul(
             scale,
@@ -327,11 +323,7 @@ pub fn terms(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Rel
     for h in 0..heads {
         let q = inputs.q.index_axis(Axis(0), h);
         let k = inputs.k.index_axis(Axis(0), h);
-        let r_desc = descending(
-            inputs.r.index_axis(Axis(0), h),
-            key_len,
-            params.clamp_len,
-        );
+        let r_desc = descending(inputs.r.index_axis(Axis(0), h), key_len, params.clamp_len);
         let u_row = inputs.u.row(h).insert_axis(Axis(0));
         let v_row = inputs.v.row(h).insert_axis(Axis(0));
         let a = q.dot(&k.t());

@@ -5,6 +5,7 @@ use ndarray::{Array2, Array3};
 use posconform::generate::Stream;
 
 /// Random relative-attention inputs `(q, k, r, u, v)` for `H, L, M, d`.
+#[derive(Debug, Clone)]
 pub struct RelativeCase {
     pub q: Array3<f64>,
     pub k: Array3<f64>,

@@ -2,9 +2,12 @@
 #[path = "../common/mod.rs"]
 mod common;
 
+mod aliasing;
 mod alibi;
 mod bucketed;
 mod clipped;
+mod masking;
+mod recurrence;
 mod rotary;
 mod sinusoidal;
 mod xl_relative;
