@@ -20,6 +20,7 @@
 //!   sequence, then the relative shift ([`rel_shift`]) applied as an index remap,
 //!   fused with the mask so no shifted copy of `BD` is ever built.
 
+use ndarray::linalg::general_mat_mul;
 use ndarray::{s, Array2, Array3, ArrayView1, ArrayView2, ArrayView3, Axis, Zip};
 
 use crate::attention::{expect_per_head, window_for, Scale, Window};
@@ -279,35 +280,46 @@ pub fn scores(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Ar
         ..
     } = check(inputs, params)?;
     let (l, key_len, m) = (window.query_len(), window.key_len(), window.memory_len());
-    let mut out = Array3::zeros((heads, l, key_len));
-    let mut bd = Array2::zeros((l, key_len));
+    let mut out = Array3::from_elem((heads, l, key_len), f64::NEG_INFINITY);
+    let mut bd = Array2::zeros((QUERY_BLOCK.min(l), key_len));
     for h in 0..heads {
         let q = inputs.q.index_axis(Axis(0), h);
+        let k = inputs.k.index_axis(Axis(0), h);
         let qu = add_bias(q, inputs.u.row(h));
         let qv = add_bias(q, inputs.v.row(h));
         let r_desc = descending(inputs.r.index_axis(Axis(0), h), key_len, params.clamp_len);
-        let mut ac = out.index_axis_mut(Axis(0), h);
-        ndarray::linalg::general_mat_mul(
-            scale,
-            &qu,
-            &inputs.k.index_axis(Axis(0), h).t(),
-            0.0,
-            &mut ac,
-        );
-        ndarray::linalg::general_mat_mul(scale, &qv, &r_desc.t(), 0.0, &mut bd);
-        // Shift as a remap (see `rel_shift`): y[i][j] = BD[i][L-1-i+j] for j <= M+i.
-        for i in 0..l {
-            let visible = m + i + 1;
-            let mut row = ac.row_mut(i);
-            let shifted = bd.slice(s![i, l - 1 - i..]);
-            Zip::from(row.slice_mut(s![..visible]))
-                .and(&shifted)
-                .for_each(|a, &b| *a += b);
-            row.slice_mut(s![visible..]).fill(f64::NEG_INFINITY);
+        let mut head = out.index_axis_mut(Axis(0), h);
+        // Query rows in blocks: rows i0..i1 see keys 0..M+i1 at most, and their shifted
+        // BD reads start at column L-i1, so each block multiplies only the M+i1
+        // columns it can use (3/4 of the full products when M = L).
+        for i0 in (0..l).step_by(QUERY_BLOCK) {
+            let i1 = (i0 + QUERY_BLOCK).min(l);
+            let width = m + i1;
+            let mut ac = head.slice_mut(s![i0..i1, ..width]);
+            let mut bd = bd.slice_mut(s![..i1 - i0, ..width]);
+            let (qu, qv) = (qu.slice(s![i0..i1, ..]), qv.slice(s![i0..i1, ..]));
+            general_mat_mul(scale, &qu, &k.slice(s![..width, ..]).t(), 0.0, &mut ac);
+            let r_block = r_desc.slice(s![l - i1.., ..]);
+            general_mat_mul(scale, &qv, &r_block.t(), 0.0, &mut bd);
+            // Shift as a remap (see `rel_shift`): y[i][j] = BD[i][L-1-i+j] for j <= M+i.
+            // `bd` starts at column L-i1, so BD[i][L-1-i+j] is bd[i-i0][i1-1-i+j].
+            for i in i0..i1 {
+                let visible = m + i + 1;
+                let mut row = ac.row_mut(i - i0);
+                let shifted = bd.slice(s![i - i0, i1 - 1 - i..i1 - 1 - i + visible]);
+                Zip::from(row.slice_mut(s![..visible]))
+                    .and(&shifted)
+                    .for_each(|a, &b| *a += b);
+                row.slice_mut(s![visible..]).fill(f64::NEG_INFINITY);
+            }
         }
     }
     Ok(out)
 }
+
+/// Query rows per block in [`scores`]: large enough for efficient matrix products,
+/// small enough that skipping hidden columns pays off.
+const QUERY_BLOCK: usize = 64;
 
 /// The four unscaled terms, each computed with matrix products and the shift remap.
 pub fn terms(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<RelativeTerms> {

@@ -171,3 +171,22 @@ fn planted_absolute_indexing_breaks_offset_invariance() {
     };
     assert!(offset_invariant(&buggy, window, 100, 3).is_err());
 }
+
+/// The efficient form works in blocks of query rows; shapes that cross block
+/// boundaries (L = 63..=65, 129, 200 with M = 0, 1, 100) still equal the naive form.
+#[test]
+fn efficient_shift_equals_naive_across_query_blocks() {
+    for l in [63, 64, 65, 129, 200] {
+        for m in [0, 1, 100] {
+            let case = RelativeCase::random((l * 1000 + m) as u64, 2, l, m, 8);
+            for clamp in [None, Some(37)] {
+                let params = RelativeParams {
+                    clamp_len: clamp,
+                    scale: Scale::default(),
+                };
+                matches_naive(&case, &params, |i, p| scores(i, p).unwrap())
+                    .unwrap_or_else(|e| panic!("L={l} M={m} clamp={clamp:?}: {e}"));
+            }
+        }
+    }
+}
