@@ -505,6 +505,7 @@ mod tests {
         match error {
             Error::InvalidParameter { name, .. } | Error::Shape { name, .. } => name,
             Error::PositionOutOfRange { name, .. } => name,
+            other => panic!("unexpected error {other:?}"),
         }
     }
 
