@@ -13,6 +13,7 @@ use std::ops::Range;
 use ndarray::{Array2, Array3, ArrayView2, ArrayView3, Zip};
 
 use crate::error::{expect_shape, Error, Result};
+use crate::precision::gemm;
 
 /// The shape of one causal attention step: `L` current queries over `M` memory keys
 /// followed by the `L` current keys (DESIGN.md §3).
@@ -169,7 +170,7 @@ pub fn attend(probs: ArrayView3<'_, f64>, values: ArrayView3<'_, f64>) -> Result
     Zip::from(out.outer_iter_mut())
         .and(probs.outer_iter())
         .and(values.outer_iter())
-        .for_each(|mut o, p, v| o.assign(&p.dot(&v)));
+        .for_each(|mut o, p, v| gemm(1.0, &p, &v, 0.0, &mut o));
     Ok(out)
 }
 
@@ -198,9 +199,7 @@ pub fn dot_scores(
     Zip::from(scores.outer_iter_mut())
         .and(q.outer_iter())
         .and(k.outer_iter())
-        .for_each(|mut s, qh, kh| {
-            ndarray::linalg::general_mat_mul(factor, &qh, &kh.t(), 0.0, &mut s)
-        });
+        .for_each(|mut s, qh, kh| gemm(factor, &qh, &kh.t(), 0.0, &mut s));
     apply_causal_mask(&mut scores, window)?;
     Ok((scores, window))
 }

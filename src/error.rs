@@ -40,6 +40,26 @@ pub enum Error {
         /// Why it is out of range.
         reason: String,
     },
+    /// A file or message does not follow its documented format.
+    #[error("{location}: {reason}")]
+    Format {
+        /// The file (and field) or message that is malformed, e.g.
+        /// `results/x.json: field outputs.scores`.
+        location: String,
+        /// What is wrong with it.
+        reason: String,
+    },
+    /// Reading or writing a file failed.
+    #[error("cannot {action} {path}")]
+    Io {
+        /// What was being done: "read", "write", "create", "list".
+        action: &'static str,
+        /// The path involved.
+        path: std::path::PathBuf,
+        /// The operating system's error.
+        #[source]
+        source: std::io::Error,
+    },
 }
 
 /// The library's result type.
@@ -56,6 +76,24 @@ impl Error {
             name,
             expected: expected.into(),
             given: given.to_string(),
+        }
+    }
+
+    /// Shorthand for [`Error::Format`].
+    pub(crate) fn format(location: impl fmt::Display, reason: impl Into<String>) -> Self {
+        Error::Format {
+            location: location.to_string(),
+            reason: reason.into(),
+        }
+    }
+
+    /// Shorthand for [`Error::Io`].
+    #[allow(dead_code)] // first used by the vector file reader
+    pub(crate) fn io(action: &'static str, path: &std::path::Path, source: std::io::Error) -> Self {
+        Error::Io {
+            action,
+            path: path.to_path_buf(),
+            source,
         }
     }
 

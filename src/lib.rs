@@ -35,8 +35,10 @@
 pub mod attention;
 mod error;
 pub mod generate;
+pub mod precision;
 pub mod recurrence;
 pub mod scheme;
+pub mod tensor;
 
 pub use attention::{Scale, Window};
 pub use error::{Error, Result};

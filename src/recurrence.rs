@@ -16,6 +16,7 @@ use ndarray::{concatenate, s, Array2, Array3, ArrayView2, ArrayView3, Axis};
 
 use crate::attention::{attend, masked_softmax, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
+use crate::precision::{gemm, matmul};
 use crate::scheme::sinusoidal::Sinusoid;
 use crate::scheme::xl_relative::{
     relative_embeddings, scores, scores_at_positions, RelativeInputs, RelativeParams,
@@ -123,7 +124,7 @@ impl RelativeLayer {
         let (heads, _, d) = w.dim();
         let mut out = Array3::zeros((heads, x.nrows(), d));
         for (mut o, wh) in out.outer_iter_mut().zip(w.outer_iter()) {
-            o.assign(&x.dot(&wh));
+            gemm(1.0, &x, &wh, 0.0, &mut o);
         }
         out
     }
@@ -140,7 +141,7 @@ impl RelativeLayer {
             .into_owned()
             .into_shape_with_order((l, heads * d))
             .expect("contiguous after as_standard_layout");
-        Ok(concat.dot(&self.weights.w_o))
+        Ok(matmul(&concat.view(), &self.weights.w_o.view()))
     }
 
     /// One segment: `memory[M, d_model]` and `inputs[L, d_model]` give `[L, d_model]`.

@@ -20,11 +20,11 @@
 //!   sequence, then the relative shift ([`rel_shift`]) applied as an index remap,
 //!   fused with the mask so no shifted copy of `BD` is ever built.
 
-use ndarray::linalg::general_mat_mul;
 use ndarray::{s, Array2, Array3, ArrayView1, ArrayView2, ArrayView3, Axis, Zip};
 
 use crate::attention::{expect_per_head, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
+use crate::precision::{gemm, matmul};
 use crate::scheme::sinusoidal::Sinusoid;
 
 /// The inputs of one relative-attention scoring step for all heads.
@@ -298,9 +298,9 @@ pub fn scores(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Ar
             let mut ac = head.slice_mut(s![i0..i1, ..width]);
             let mut bd = bd.slice_mut(s![..i1 - i0, ..width]);
             let (qu, qv) = (qu.slice(s![i0..i1, ..]), qv.slice(s![i0..i1, ..]));
-            general_mat_mul(scale, &qu, &k.slice(s![..width, ..]).t(), 0.0, &mut ac);
+            gemm(scale, &qu, &k.slice(s![..width, ..]).t(), 0.0, &mut ac);
             let r_block = r_desc.slice(s![l - i1.., ..]);
-            general_mat_mul(scale, &qv, &r_block.t(), 0.0, &mut bd);
+            gemm(scale, &qv, &r_block.t(), 0.0, &mut bd);
             // Shift as a remap (see `rel_shift`): y[i][j] = BD[i][L-1-i+j] for j <= M+i.
             // `bd` starts at column L-i1, so BD[i][L-1-i+j] is bd[i-i0][i1-1-i+j].
             for i in i0..i1 {
@@ -338,10 +338,10 @@ pub fn terms(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Rel
         let r_desc = descending(inputs.r.index_axis(Axis(0), h), key_len, params.clamp_len);
         let u_row = inputs.u.row(h).insert_axis(Axis(0));
         let v_row = inputs.v.row(h).insert_axis(Axis(0));
-        let a = q.dot(&k.t());
-        let c = u_row.dot(&k.t());
-        let b = rel_shift(q.dot(&r_desc.t()).view());
-        let d_desc = v_row.dot(&r_desc.t());
+        let a = matmul(&q, &k.t());
+        let c = matmul(&u_row, &k.t());
+        let b = rel_shift(matmul(&q, &r_desc.t()).view());
+        let d_desc = matmul(&v_row, &r_desc.t());
         for i in 0..l {
             for j in window.visible_keys(i) {
                 terms.content[[h, i, j]] = a[[i, j]];
@@ -400,7 +400,7 @@ pub fn relative_embeddings(
     let table = sinusoid.table(&positions);
     let mut out = Array3::zeros((heads, count, head_dim));
     for (mut o, w) in out.outer_iter_mut().zip(w_kr.outer_iter()) {
-        o.assign(&table.dot(&w));
+        gemm(1.0, &table.view(), &w, 0.0, &mut o);
     }
     Ok(out)
 }

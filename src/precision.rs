@@ -1,0 +1,224 @@
+//! Dtypes, rounding emulation and the numbers error budgets are built from
+//! (DESIGN.md §4).
+//!
+//! - Unit roundoff `u`: f64 2^-53, f32 2^-24, f16 2^-11, bf16 2^-8.
+//! - Dot-product bound: `|fl(x·y) - x·y| <= γ_n Σ|x_i y_i|`, `γ_n = n·u / (1 - n·u)`
+//!   (Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed., §3.1).
+//! - Rounding to f16 and bf16 uses the `half` crate (round to nearest even).
+
+use std::cell::Cell;
+use std::fmt;
+use std::str::FromStr;
+
+use half::{bf16, f16};
+
+use crate::error::{Error, Result};
+
+/// The element types a kernel may compute or answer in.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize, serde::Deserialize,
+)]
+#[serde(rename_all = "lowercase")]
+pub enum Dtype {
+    /// IEEE binary64.
+    F64,
+    /// IEEE binary32.
+    F32,
+    /// IEEE binary16.
+    F16,
+    /// bfloat16 (8 exponent bits, 7 fraction bits).
+    Bf16,
+    /// 64-bit signed integers (bucket indices, positions).
+    I64,
+}
+
+impl Dtype {
+    /// Every dtype, widest float first.
+    pub const ALL: &'static [Dtype] =
+        &[Dtype::F64, Dtype::F32, Dtype::F16, Dtype::Bf16, Dtype::I64];
+
+    /// The name used in files and on the command line.
+    pub fn name(self) -> &'static str {
+        match self {
+            Dtype::F64 => "f64",
+            Dtype::F32 => "f32",
+            Dtype::F16 => "f16",
+            Dtype::Bf16 => "bf16",
+            Dtype::I64 => "i64",
+        }
+    }
+
+    /// Bytes per element in the little-endian array encoding.
+    pub fn size(self) -> usize {
+        match self {
+            Dtype::F64 | Dtype::I64 => 8,
+            Dtype::F32 => 4,
+            Dtype::F16 | Dtype::Bf16 => 2,
+        }
+    }
+
+    /// Whether this is a floating-point type.
+    pub fn is_float(self) -> bool {
+        self != Dtype::I64
+    }
+
+    /// Unit roundoff `u` (DESIGN.md §4); 0 for integers.
+    pub fn unit_roundoff(self) -> f64 {
+        match self {
+            Dtype::F64 => 2f64.powi(-53),
+            Dtype::F32 => 2f64.powi(-24),
+            Dtype::F16 => 2f64.powi(-11),
+            Dtype::Bf16 => 2f64.powi(-8),
+            Dtype::I64 => 0.0,
+        }
+    }
+
+    /// `x` rounded to the nearest value of this dtype (ties to even), as f64.
+    ///
+    /// Integers round to the nearest integer. Overflow gives ±inf, as the hardware does.
+    pub fn round(self, x: f64) -> f64 {
+        match self {
+            Dtype::F64 => x,
+            Dtype::F32 => x as f32 as f64,
+            Dtype::F16 => f16::from_f64(x).to_f64(),
+            Dtype::Bf16 => bf16::from_f64(x).to_f64(),
+            Dtype::I64 => x.round(),
+        }
+    }
+
+    /// Whether `x` is exactly representable in this dtype.
+    pub fn represents(self, x: f64) -> bool {
+        x.is_nan() || self.round(x) == x
+    }
+
+    /// The spacing of this dtype's values at `x` (one unit in the last place).
+    pub fn ulp(self, x: f64) -> f64 {
+        if !self.is_float() {
+            return 1.0;
+        }
+        let (mantissa_bits, min_exponent) = match self {
+            Dtype::F64 => (52, -1022),
+            Dtype::F32 => (23, -126),
+            Dtype::F16 => (10, -14),
+            Dtype::Bf16 => (7, -126),
+            Dtype::I64 => unreachable!(),
+        };
+        let x = x.abs();
+        let exponent = if x == 0.0 || !x.is_finite() {
+            min_exponent
+        } else {
+            (x.log2().floor() as i32).max(min_exponent)
+        };
+        2f64.powi(exponent - mantissa_bits)
+    }
+
+    /// `γ_n = n·u / (1 - n·u)` (Higham 2002, §3.1); infinite once `n·u >= 1`.
+    pub fn gamma(self, n: usize) -> f64 {
+        let nu = n as f64 * self.unit_roundoff();
+        if nu >= 1.0 {
+            f64::INFINITY
+        } else {
+            nu / (1.0 - nu)
+        }
+    }
+
+    /// Largest integer `N` such that every integer in `[-N, N]` is exact in this dtype
+    /// (f16: 2048, bf16: 256; DESIGN.md §4).
+    pub fn exact_integer_limit(self) -> f64 {
+        match self {
+            Dtype::F64 => 2f64.powi(53),
+            Dtype::F32 => 2f64.powi(24),
+            Dtype::F16 => 2048.0,
+            Dtype::Bf16 => 256.0,
+            Dtype::I64 => i64::MAX as f64,
+        }
+    }
+}
+
+impl fmt::Display for Dtype {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+impl FromStr for Dtype {
+    type Err = Error;
+
+    fn from_str(s: &str) -> Result<Self> {
+        Dtype::ALL
+            .iter()
+            .copied()
+            .find(|d| d.name() == s)
+            .ok_or_else(|| Error::param("dtype", "one of f64, f32, f16, bf16, i64", s))
+    }
+}
+
+/// Distance between `a` and `b` in units in the last place of `dtype` at `b`.
+pub fn ulp_distance(a: f64, b: f64, dtype: Dtype) -> f64 {
+    if a == b {
+        return 0.0;
+    }
+    if !a.is_finite() || !b.is_finite() {
+        return f64::INFINITY;
+    }
+    (a - b).abs() / dtype.ulp(b)
+}
+
+thread_local! {
+    static PORTABLE: Cell<bool> = const { Cell::new(false) };
+}
+
+/// Runs `f` with portable arithmetic: matrix products inside the library use one fixed
+/// summation order in plain loops instead of the CPU-dispatched SIMD kernels, so the
+/// results are bit-identical on every x86_64 and aarch64 machine.
+///
+/// Golden vectors are computed this way; benchmarks and interactive checks use the
+/// fast path. The flag is per thread and restored afterwards, even on early return.
+pub fn with_portable_arithmetic<R>(f: impl FnOnce() -> R) -> R {
+    struct Restore(bool);
+    impl Drop for Restore {
+        fn drop(&mut self) {
+            PORTABLE.with(|p| p.set(self.0));
+        }
+    }
+    let _restore = Restore(PORTABLE.with(|p| p.replace(true)));
+    f()
+}
+
+/// Whether the current thread is inside [`with_portable_arithmetic`].
+pub(crate) fn portable() -> bool {
+    PORTABLE.with(|p| p.get())
+}
+
+/// `c = alpha · a · b + beta · c` on the fast path, or in plain loops (fixed order,
+/// no fused multiply-add) under [`with_portable_arithmetic`].
+pub(crate) fn gemm(
+    alpha: f64,
+    a: &ndarray::ArrayView2<'_, f64>,
+    b: &ndarray::ArrayView2<'_, f64>,
+    beta: f64,
+    c: &mut ndarray::ArrayViewMut2<'_, f64>,
+) {
+    if !portable() {
+        ndarray::linalg::general_mat_mul(alpha, a, b, beta, c);
+        return;
+    }
+    let inner = a.ncols();
+    for ((i, j), out) in c.indexed_iter_mut() {
+        let mut sum = 0.0;
+        for p in 0..inner {
+            sum += a[[i, p]] * b[[p, j]];
+        }
+        *out = alpha * sum + if beta == 0.0 { 0.0 } else { beta * *out };
+    }
+}
+
+/// `a · b` allocated, through [`gemm`].
+pub(crate) fn matmul(
+    a: &ndarray::ArrayView2<'_, f64>,
+    b: &ndarray::ArrayView2<'_, f64>,
+) -> ndarray::Array2<f64> {
+    let mut c = ndarray::Array2::zeros((a.nrows(), b.ncols()));
+    gemm(1.0, a, b, 0.0, &mut c.view_mut());
+    c
+}
