@@ -190,7 +190,7 @@ fn step_without_cache_offset(
 }
 
 fn random_table(seed: u64, heads: usize, rule: &Buckets) -> Array2<f64> {
-    Stream::new(seed ^ 0x7461_626c_65).array((heads, rule.num_buckets()), 2.0)
+    Stream::new(seed ^ 0x7461_626c).array((heads, rule.num_buckets()), 2.0)
 }
 
 /// A rule small enough that 17 tokens reach its logarithmic buckets and its cap.

@@ -128,7 +128,9 @@ fn steps_agree(reference: &Step, candidate: &Step) -> Result<(), String> {
         }
         for ((index, x), y) in a.indexed_iter().zip(b.iter()) {
             let both_hidden = *x == f64::NEG_INFINITY && *y == f64::NEG_INFINITY;
-            if !both_hidden && !((x - y).abs() <= 1e-12 * (1.0 + x.abs())) {
+            // Written so that a NaN on either side counts as disagreement.
+            let agree = both_hidden || (x - y).abs() <= 1e-12 * (1.0 + x.abs());
+            if !agree {
                 return Err(format!("{name} at {index:?}: {x} vs {y}"));
             }
         }

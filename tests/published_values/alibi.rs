@@ -17,6 +17,9 @@ fn slopes_for_8_heads_are_halvings_from_one_half() {
 }
 
 #[test]
+// The literals are DESIGN.md's quotation, kept as published rather than replaced by
+// the std constants they approximate.
+#[allow(clippy::approx_constant)]
 fn slopes_for_12_heads_interleave_the_16_head_sequence() {
     // DESIGN.md §3 (the rule of Press et al. 2022, §3, for a non-power-of-two count),
     // quoted to 15 significant digits, hence the 1e-15 tolerance.
