@@ -33,7 +33,8 @@ use crate::attention::{attend, dot_scores, masked_softmax, window_for, Scale, Wi
 use crate::error::{expect_finite, expect_shape, Error, Result};
 use crate::scheme::sinusoidal::frequencies;
 
-/// The base of the paper (Su et al. 2021, §3.4.2, following Vaswani et al. 2017).
+/// The base of the paper's `θ_i = 10000^(-2(i-1)/d)` (Su et al. 2021, under eq. 15,
+/// from memory; the same base as Vaswani et al. 2017, §3.5).
 pub const DEFAULT_BASE: f64 = 10_000.0;
 
 /// The largest position magnitude whose conversion to `f64` is exact (2^53).
