@@ -88,7 +88,6 @@ impl Error {
     }
 
     /// Shorthand for [`Error::Io`].
-    #[allow(dead_code)] // first used by the vector file reader
     pub(crate) fn io(action: &'static str, path: &std::path::Path, source: std::io::Error) -> Self {
         Error::Io {
             action,

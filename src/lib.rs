@@ -33,11 +33,16 @@
 #![deny(missing_docs)]
 
 pub mod attention;
+pub mod case;
+pub mod compare;
 mod error;
 pub mod generate;
 pub mod precision;
 pub mod recurrence;
+pub mod reference;
+pub mod report;
 pub mod scheme;
+pub mod suite;
 pub mod tensor;
 
 pub use attention::{Scale, Window};

@@ -192,13 +192,17 @@ pub(crate) fn portable() -> bool {
 
 /// `c = alpha · a · b + beta · c` on the fast path, or in plain loops (fixed order,
 /// no fused multiply-add) under [`with_portable_arithmetic`].
-pub(crate) fn gemm(
+pub(crate) fn gemm<A, B, C>(
     alpha: f64,
-    a: &ndarray::ArrayView2<'_, f64>,
-    b: &ndarray::ArrayView2<'_, f64>,
+    a: &ndarray::ArrayBase<A, ndarray::Ix2>,
+    b: &ndarray::ArrayBase<B, ndarray::Ix2>,
     beta: f64,
-    c: &mut ndarray::ArrayViewMut2<'_, f64>,
-) {
+    c: &mut ndarray::ArrayBase<C, ndarray::Ix2>,
+) where
+    A: ndarray::Data<Elem = f64>,
+    B: ndarray::Data<Elem = f64>,
+    C: ndarray::DataMut<Elem = f64>,
+{
     if !portable() {
         ndarray::linalg::general_mat_mul(alpha, a, b, beta, c);
         return;
@@ -214,11 +218,15 @@ pub(crate) fn gemm(
 }
 
 /// `a · b` allocated, through [`gemm`].
-pub(crate) fn matmul(
-    a: &ndarray::ArrayView2<'_, f64>,
-    b: &ndarray::ArrayView2<'_, f64>,
-) -> ndarray::Array2<f64> {
+pub(crate) fn matmul<A, B>(
+    a: &ndarray::ArrayBase<A, ndarray::Ix2>,
+    b: &ndarray::ArrayBase<B, ndarray::Ix2>,
+) -> ndarray::Array2<f64>
+where
+    A: ndarray::Data<Elem = f64>,
+    B: ndarray::Data<Elem = f64>,
+{
     let mut c = ndarray::Array2::zeros((a.nrows(), b.ncols()));
-    gemm(1.0, a, b, 0.0, &mut c.view_mut());
+    gemm(1.0, a, b, 0.0, &mut c);
     c
 }

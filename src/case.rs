@@ -1,0 +1,589 @@
+//! Cases: one operation of one scheme, with its parameters, shapes, dtype and seed.
+//!
+//! A case fully determines its inputs (generated from the seed with the portable
+//! ChaCha stream of [`crate::generate`], already rounded to the case dtype so a kernel
+//! of that dtype receives them exactly) and its expected outputs (the f64 reference of
+//! [`crate::reference`]).
+//!
+//! Operations and their arrays (shapes per DESIGN.md §3; `K = M + L`, `T` tokens):
+//!
+//! | operation | inputs | outputs |
+//! |---|---|---|
+//! | `encode` | scheme table inputs (below) | the scheme's table |
+//! | `scores` | `q[H,L,d]`, `k[H,K,d]` + scheme arrays | `scores[H,L,K]` |
+//! | `attention` | `q`, `k`, `v[H,K,d]` + scheme arrays | `probs[H,L,K]`, `output[H,L,d]` |
+//! | `stream` | `q`, `k`, `v[H,T,d]` + scheme arrays | `output[H,T,d]` |
+//! | `decode` | `q`, `k`, `v[H,T,d]` + scheme arrays | `output[H,T-P,d]` |
+//!
+//! `stream` cuts the `T` tokens into segments of `L`; each segment's queries attend to
+//! the newest `M` earlier tokens (the memory) and to their own segment causally; token
+//! `t` sits at absolute position `p0 + t`. `decode` prefills `P` tokens and then feeds
+//! the rest in the listed chunk sizes; its output is the rows of full causal attention
+//! for tokens `P..T`.
+//!
+//! Scheme arrays: `learned` a `table[P_max, d]`; `xl_relative` `r[H,R,d]` (projected
+//! relative embeddings by distance), `content_bias[H,d]` (u), `position_bias[H,d]` (v);
+//! `bucketed` `bias_table[H, nb]`; `clipped` `w_key`, `w_value[H, 2k+1, d]`. Encode
+//! inputs: `sinusoidal` `positions[L]`; `learned` `table`, `positions[L]`; `rotary`
+//! `x[H,L,d]`, `positions[L]`; `xl_relative` `w_kr[H,d,d]`; `alibi` none; `bucketed`
+//! and `clipped` `relative_positions[N]`.
+
+use std::collections::BTreeMap;
+
+use ndarray::{Array1, ArrayD, IxDyn};
+
+use crate::attention::Scale;
+use crate::error::{Error, Result};
+use crate::generate::Stream;
+use crate::precision::Dtype;
+use crate::scheme::rotary::{Pairing, RotaryScaling};
+use crate::scheme::sinusoidal::SinusoidLayout;
+use crate::scheme::Scheme;
+use crate::tensor::Tensor;
+
+/// Named arrays: a case's inputs, expected outputs, or a kernel's results.
+pub type Arrays = BTreeMap<String, Tensor>;
+
+/// What the kernel is asked to compute.
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Operation {
+    /// The scheme's encoding table (sinusoid rows, learned rows, rotated vectors,
+    /// relative embeddings, slopes, bucket or clip indices).
+    Encode,
+    /// Pre-softmax scores over `[memory ; current]`.
+    Scores,
+    /// Probabilities and attention outputs over `[memory ; current]`.
+    Attention,
+    /// A whole sequence through attention in segments of `L` with memory `M`.
+    Stream {
+        /// `T`, the number of tokens.
+        tokens: usize,
+    },
+    /// A prefill of `prefill` tokens, then cached decoding in `chunks`.
+    Decode {
+        /// `T`, the number of tokens.
+        tokens: usize,
+        /// `P`, the tokens given at once before decoding starts.
+        prefill: usize,
+        /// The sizes of the decoding steps; they sum to `T - P`.
+        chunks: Vec<usize>,
+    },
+}
+
+impl Operation {
+    /// The operation's name in files and on the command line.
+    pub fn name(&self) -> &'static str {
+        match self {
+            Operation::Encode => "encode",
+            Operation::Scores => "scores",
+            Operation::Attention => "attention",
+            Operation::Stream { .. } => "stream",
+            Operation::Decode { .. } => "decode",
+        }
+    }
+}
+
+/// A scheme with its parameters.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(tag = "name", rename_all = "snake_case")]
+pub enum SchemeSpec {
+    /// Absolute sinusoid added to queries and keys (Vaswani et al. 2017, §3.5).
+    Sinusoidal {
+        /// Frequency base.
+        base: f64,
+        /// Pair layout.
+        layout: SinusoidLayout,
+    },
+    /// Learned absolute table added to queries and keys.
+    Learned {
+        /// `P_max`, rows in the table.
+        max_positions: usize,
+    },
+    /// Transformer-XL relative scoring (Dai et al. 2019, §3.3).
+    XlRelative {
+        /// Score scale.
+        scale: Scale,
+        /// Optional clamp length of the distance.
+        clamp_len: Option<usize>,
+    },
+    /// Rotary embedding (Su et al. 2021).
+    Rotary {
+        /// `d_rot`, the rotated leading part of each head.
+        rotary_dim: usize,
+        /// Frequency base.
+        base: f64,
+        /// Pair layout.
+        pairing: Pairing,
+        /// Context-extension scaling.
+        scaling: RotaryScaling,
+        /// Score scale.
+        scale: Scale,
+    },
+    /// ALiBi, distance form, slopes by the published rule (Press et al. 2022, §3).
+    Alibi {
+        /// Scale of `q·k` (never of the bias).
+        scale: Scale,
+    },
+    /// T5 bucketed relative bias (Raffel et al. 2020, §2.1).
+    Bucketed {
+        /// Number of buckets.
+        num_buckets: usize,
+        /// Distance where the logarithmic buckets end.
+        max_distance: usize,
+        /// Whether keys after the query get their own buckets.
+        bidirectional: bool,
+        /// Scale of `q·k` (T5 uses 1).
+        scale: Scale,
+    },
+    /// Clipped relative positions (Shaw et al. 2018).
+    Clipped {
+        /// `k`, the clip distance.
+        clip_distance: usize,
+        /// Score scale.
+        scale: Scale,
+    },
+}
+
+impl SchemeSpec {
+    /// The scheme this spec parameterises.
+    pub fn scheme(&self) -> Scheme {
+        match self {
+            SchemeSpec::Sinusoidal { .. } => Scheme::Sinusoidal,
+            SchemeSpec::Learned { .. } => Scheme::Learned,
+            SchemeSpec::XlRelative { .. } => Scheme::XlRelative,
+            SchemeSpec::Rotary { .. } => Scheme::Rotary,
+            SchemeSpec::Alibi { .. } => Scheme::Alibi,
+            SchemeSpec::Bucketed { .. } => Scheme::Bucketed,
+            SchemeSpec::Clipped { .. } => Scheme::Clipped,
+        }
+    }
+
+    /// The score scale the scheme uses.
+    pub fn scale(&self) -> Scale {
+        match self {
+            SchemeSpec::Sinusoidal { .. } | SchemeSpec::Learned { .. } => Scale::InverseSqrtDim,
+            SchemeSpec::XlRelative { scale, .. }
+            | SchemeSpec::Rotary { scale, .. }
+            | SchemeSpec::Alibi { scale }
+            | SchemeSpec::Bucketed { scale, .. }
+            | SchemeSpec::Clipped { scale, .. } => *scale,
+        }
+    }
+}
+
+/// One conformance case.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Case {
+    /// Unique, readable identifier; also the vector file's stem.
+    pub id: String,
+    /// The scheme and its parameters.
+    pub scheme: SchemeSpec,
+    /// What to compute.
+    pub operation: Operation,
+    /// `H`.
+    pub heads: usize,
+    /// `L`: queries per step, segment length for `stream`, rows for `encode`.
+    pub query_len: usize,
+    /// `M`: memory (or cache) keys before the current segment.
+    pub memory_len: usize,
+    /// `d`.
+    pub head_dim: usize,
+    /// `p0`: absolute position of the first query (of token 0 for stream/decode).
+    pub query_start: i64,
+    /// Keys hidden from every query on top of the causal mask (padding); a row whose
+    /// visible keys are all hidden is fully masked. `scores` and `attention` only.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub hidden_keys: Vec<usize>,
+    /// The dtype the case is written for; inputs are exactly representable in it.
+    pub dtype: Dtype,
+    /// Seed of the input stream.
+    pub seed: u64,
+    /// Fault classes of DESIGN.md §5 this case is built to expose.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub faults: Vec<u8>,
+    /// Why the case exists, in one sentence.
+    pub purpose: String,
+}
+
+/// Largest number of elements any one array of a case may have (guards memory when a
+/// vector file asks for absurd shapes).
+pub const MAX_ELEMENTS: usize = 1 << 27;
+
+impl Case {
+    /// `K = M + L`.
+    pub fn key_len(&self) -> usize {
+        self.memory_len + self.query_len
+    }
+
+    /// Tokens in the sequence for `stream` and `decode`; `L` otherwise.
+    pub fn tokens(&self) -> usize {
+        match &self.operation {
+            Operation::Stream { tokens } | Operation::Decode { tokens, .. } => *tokens,
+            _ => self.query_len,
+        }
+    }
+
+    /// Number of relative-embedding rows `r` the case needs (xl_relative).
+    pub fn relative_rows(&self) -> usize {
+        let rows = match &self.operation {
+            Operation::Stream { tokens } => (*tokens).min(self.key_len()),
+            Operation::Decode { tokens, .. } => *tokens,
+            _ => self.key_len(),
+        };
+        match &self.scheme {
+            SchemeSpec::XlRelative {
+                clamp_len: Some(c), ..
+            } => rows.min(c + 1),
+            _ => rows,
+        }
+    }
+
+    /// The absolute positions the case touches, `first..last` (exclusive): keys from
+    /// `p0 - M` for one window, tokens from `p0` for stream and decode.
+    pub fn position_range(&self) -> (i64, i64) {
+        match &self.operation {
+            Operation::Stream { tokens } | Operation::Decode { tokens, .. } => (
+                self.query_start,
+                self.query_start.saturating_add(*tokens as i64),
+            ),
+            _ => (
+                self.query_start.saturating_sub(self.memory_len as i64),
+                self.query_start.saturating_add(self.query_len as i64),
+            ),
+        }
+    }
+
+    /// Relative positions listed by `encode` for bucketed and clipped schemes.
+    pub fn relative_positions(&self) -> Vec<i64> {
+        let reach = match &self.scheme {
+            SchemeSpec::Bucketed { max_distance, .. } => 2 * *max_distance as i64,
+            SchemeSpec::Clipped { clip_distance, .. } => 2 * *clip_distance as i64 + 2,
+            _ => 0,
+        }
+        .max(self.key_len() as i64);
+        (-reach..=reach).collect()
+    }
+
+    /// Checks every parameter, naming the field that is wrong.
+    pub fn validate(&self) -> Result<()> {
+        let at_least_one = |name: &'static str, x: usize| {
+            if x == 0 {
+                Err(Error::param(name, ">= 1", x))
+            } else {
+                Ok(())
+            }
+        };
+        if self.id.is_empty()
+            || !self
+                .id
+                .chars()
+                .all(|c| c.is_ascii_alphanumeric() || "._-".contains(c))
+        {
+            return Err(Error::param(
+                "id",
+                "a non-empty name of [A-Za-z0-9._-]",
+                &self.id,
+            ));
+        }
+        at_least_one("heads", self.heads)?;
+        at_least_one("query_len", self.query_len)?;
+        at_least_one("head_dim", self.head_dim)?;
+        match &self.operation {
+            Operation::Stream { tokens } => at_least_one("operation.tokens", *tokens)?,
+            Operation::Decode {
+                tokens,
+                prefill,
+                chunks,
+            } => {
+                at_least_one("operation.tokens", *tokens)?;
+                if prefill >= tokens {
+                    return Err(Error::param(
+                        "operation.prefill",
+                        format!("< tokens = {tokens}"),
+                        prefill,
+                    ));
+                }
+                if chunks.contains(&0) || chunks.iter().sum::<usize>() != tokens - prefill {
+                    return Err(Error::param(
+                        "operation.chunks",
+                        format!(
+                            "sizes >= 1 summing to tokens - prefill = {}",
+                            tokens - prefill
+                        ),
+                        format!("{chunks:?}"),
+                    ));
+                }
+            }
+            _ => {}
+        }
+        if !self.hidden_keys.is_empty() {
+            if !matches!(self.operation, Operation::Scores | Operation::Attention) {
+                return Err(Error::param(
+                    "hidden_keys",
+                    "empty unless the operation is scores or attention",
+                    format!("{:?}", self.hidden_keys),
+                ));
+            }
+            if let Some(bad) = self.hidden_keys.iter().find(|&&j| j >= self.key_len()) {
+                return Err(Error::param(
+                    "hidden_keys",
+                    format!("key indices < M+L = {}", self.key_len()),
+                    bad,
+                ));
+            }
+        }
+        let (first, last) = self.position_range();
+        let limit = 1i64 << 53;
+        if first < -limit
+            || last > limit
+            || self.key_len() as i64 > limit
+            || self.tokens() as i64 > limit
+        {
+            return Err(Error::param(
+                "query_start",
+                "positions p0-M .. p0+T within ±2^53",
+                self.query_start,
+            ));
+        }
+        let largest = [
+            self.heads
+                .saturating_mul(self.tokens().max(self.query_len))
+                .saturating_mul(self.key_len().max(self.tokens())),
+            self.heads
+                .saturating_mul(self.tokens())
+                .saturating_mul(self.head_dim),
+        ]
+        .into_iter()
+        .max()
+        .unwrap_or(0);
+        if largest > MAX_ELEMENTS {
+            return Err(Error::param(
+                "shape",
+                format!("at most {MAX_ELEMENTS} elements per array"),
+                largest,
+            ));
+        }
+        match &self.scheme {
+            SchemeSpec::Sinusoidal { base, .. } => crate::scheme::sinusoidal::Sinusoid::new(
+                self.head_dim,
+                *base,
+                SinusoidLayout::Interleaved,
+            )
+            .map(drop)?,
+            SchemeSpec::Learned { max_positions } => {
+                at_least_one("scheme.max_positions", *max_positions)?;
+                if first < 0 || last > *max_positions as i64 {
+                    return Err(Error::param(
+                        "query_start",
+                        format!("positions {first}..{last} inside the table 0..{max_positions}"),
+                        self.query_start,
+                    ));
+                }
+            }
+            SchemeSpec::XlRelative { scale, .. } => scale.validate()?,
+            SchemeSpec::Rotary {
+                rotary_dim,
+                base,
+                pairing,
+                scaling,
+                scale,
+            } => {
+                scale.validate()?;
+                crate::scheme::rotary::Rotary::new(crate::scheme::rotary::RotaryParams {
+                    head_dim: self.head_dim,
+                    rotary_dim: *rotary_dim,
+                    base: *base,
+                    pairing: *pairing,
+                    scaling: *scaling,
+                })
+                .map(drop)?
+            }
+            SchemeSpec::Alibi { scale } => {
+                scale.validate()?;
+                crate::scheme::alibi::slopes(self.heads).map(drop)?
+            }
+            SchemeSpec::Bucketed {
+                num_buckets,
+                max_distance,
+                bidirectional,
+                scale,
+            } => {
+                scale.validate()?;
+                crate::scheme::bucketed::Buckets::new(*num_buckets, *max_distance, *bidirectional)
+                    .map(drop)?
+            }
+            SchemeSpec::Clipped {
+                clip_distance,
+                scale,
+            } => {
+                scale.validate()?;
+                if *clip_distance > 1 << 20 {
+                    return Err(Error::param(
+                        "scheme.clip_distance",
+                        "<= 2^20",
+                        clip_distance,
+                    ));
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// The seeded inputs of this case, in the case dtype (positions in i64).
+    pub fn inputs(&self) -> Result<Arrays> {
+        self.validate()?;
+        let mut stream = Stream::new(self.seed);
+        let mut arrays = Arrays::new();
+        let dtype = self.dtype;
+        let (h, d) = (self.heads, self.head_dim);
+        let add =
+            |arrays: &mut Arrays, name: &str, shape: &[usize], scale: f64, stream: &mut Stream| {
+                let values = stream.array(IxDyn(shape), scale);
+                arrays.insert(name.to_string(), Tensor::from_f64(dtype, values));
+            };
+        let positions = |n: usize| -> Tensor {
+            let p = Array1::from_iter((0..n as i64).map(|i| (self.query_start + i) as f64));
+            Tensor::from_f64(Dtype::I64, p.into_dyn())
+        };
+        if self.operation == Operation::Encode {
+            match &self.scheme {
+                SchemeSpec::Sinusoidal { .. } => {
+                    arrays.insert("positions".into(), positions(self.query_len));
+                }
+                SchemeSpec::Learned { max_positions } => {
+                    add(&mut arrays, "table", &[*max_positions, d], 1.0, &mut stream);
+                    arrays.insert("positions".into(), positions(self.query_len));
+                }
+                SchemeSpec::Rotary { .. } => {
+                    add(&mut arrays, "x", &[h, self.query_len, d], 1.0, &mut stream);
+                    arrays.insert("positions".into(), positions(self.query_len));
+                }
+                SchemeSpec::XlRelative { .. } => {
+                    add(
+                        &mut arrays,
+                        "w_kr",
+                        &[h, d, d],
+                        1.0 / (d as f64).sqrt(),
+                        &mut stream,
+                    );
+                }
+                SchemeSpec::Alibi { .. } => {}
+                SchemeSpec::Bucketed { .. } | SchemeSpec::Clipped { .. } => {
+                    let rel =
+                        Array1::from_iter(self.relative_positions().into_iter().map(|x| x as f64));
+                    arrays.insert(
+                        "relative_positions".into(),
+                        Tensor::from_f64(Dtype::I64, rel.into_dyn()),
+                    );
+                }
+            }
+            return Ok(arrays);
+        }
+        let (queries, keys) = match &self.operation {
+            Operation::Scores | Operation::Attention => (self.query_len, self.key_len()),
+            _ => (self.tokens(), self.tokens()),
+        };
+        add(&mut arrays, "q", &[h, queries, d], 1.0, &mut stream);
+        add(&mut arrays, "k", &[h, keys, d], 1.0, &mut stream);
+        if self.operation != Operation::Scores {
+            add(&mut arrays, "v", &[h, keys, d], 1.0, &mut stream);
+        }
+        match &self.scheme {
+            SchemeSpec::Sinusoidal { .. }
+            | SchemeSpec::Rotary { .. }
+            | SchemeSpec::Alibi { .. } => {}
+            SchemeSpec::Learned { max_positions } => {
+                add(&mut arrays, "table", &[*max_positions, d], 1.0, &mut stream);
+            }
+            SchemeSpec::XlRelative { .. } => {
+                add(
+                    &mut arrays,
+                    "r",
+                    &[h, self.relative_rows(), d],
+                    1.0,
+                    &mut stream,
+                );
+                add(&mut arrays, "content_bias", &[h, d], 0.5, &mut stream);
+                add(&mut arrays, "position_bias", &[h, d], 0.5, &mut stream);
+            }
+            SchemeSpec::Bucketed { num_buckets, .. } => {
+                add(
+                    &mut arrays,
+                    "bias_table",
+                    &[h, *num_buckets],
+                    2.0,
+                    &mut stream,
+                );
+            }
+            SchemeSpec::Clipped { clip_distance, .. } => {
+                add(
+                    &mut arrays,
+                    "w_key",
+                    &[h, 2 * clip_distance + 1, d],
+                    0.5,
+                    &mut stream,
+                );
+                add(
+                    &mut arrays,
+                    "w_value",
+                    &[h, 2 * clip_distance + 1, d],
+                    0.5,
+                    &mut stream,
+                );
+            }
+        }
+        Ok(arrays)
+    }
+
+    /// Names and shapes of the outputs a kernel must return for this case.
+    pub fn output_shapes(&self) -> Vec<(&'static str, Vec<usize>)> {
+        let (h, l, k, d) = (self.heads, self.query_len, self.key_len(), self.head_dim);
+        match &self.operation {
+            Operation::Encode => match &self.scheme {
+                SchemeSpec::Sinusoidal { .. } => vec![("table", vec![l, d])],
+                SchemeSpec::Learned { .. } => vec![("rows", vec![l, d])],
+                SchemeSpec::Rotary { .. } => vec![("rotated", vec![h, l, d])],
+                SchemeSpec::XlRelative { .. } => vec![("r", vec![h, k, d])],
+                SchemeSpec::Alibi { .. } => vec![("slopes", vec![h])],
+                SchemeSpec::Bucketed { .. } => {
+                    vec![("buckets", vec![self.relative_positions().len()])]
+                }
+                SchemeSpec::Clipped { .. } => {
+                    vec![("indices", vec![self.relative_positions().len()])]
+                }
+            },
+            Operation::Scores => vec![("scores", vec![h, l, k])],
+            Operation::Attention => vec![("probs", vec![h, l, k]), ("output", vec![h, l, d])],
+            Operation::Stream { tokens } => vec![("output", vec![h, *tokens, d])],
+            Operation::Decode {
+                tokens, prefill, ..
+            } => vec![("output", vec![h, tokens - prefill, d])],
+        }
+    }
+}
+
+/// Looks up a named input, as an error naming the case and array when it is missing.
+pub(crate) fn input<'a>(arrays: &'a Arrays, case: &Case, name: &str) -> Result<&'a Tensor> {
+    arrays.get(name).ok_or_else(|| {
+        Error::format(
+            format!("case {}", case.id),
+            format!("missing input array `{name}`"),
+        )
+    })
+}
+
+/// A dynamic array as a fixed-dimension one, naming the array on mismatch.
+pub(crate) fn fixed<D: ndarray::Dimension>(
+    name: &str,
+    x: ArrayD<f64>,
+) -> Result<ndarray::Array<f64, D>> {
+    let shape = x.shape().to_vec();
+    x.into_dimensionality::<D>().map_err(|_| {
+        Error::format(
+            format!("array `{name}`"),
+            format!("unexpected rank {}", shape.len()),
+        )
+    })
+}
