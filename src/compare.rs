@@ -281,6 +281,22 @@ impl CaseReport {
         Self::empty(case, Verdict::Error(reason.into()))
     }
 
+    /// A report for a vector file that could not be read (no case to name but the
+    /// file's stem).
+    pub fn unreadable(id: &str, reason: impl Into<String>) -> Self {
+        CaseReport {
+            case: id.to_string(),
+            scheme: "?".into(),
+            operation: "?".into(),
+            faults: Vec::new(),
+            memory_len: 0,
+            query_len: 0,
+            verdict: Verdict::Error(reason.into()),
+            outputs: Vec::new(),
+            warnings: Vec::new(),
+        }
+    }
+
     /// A report for a case the kernel does not support.
     pub fn skipped(case: &Case, reason: impl Into<String>) -> Self {
         Self::empty(case, Verdict::Skipped(reason.into()))
@@ -301,8 +317,7 @@ impl CaseReport {
     }
 }
 
-/// The smallest positive value of a dtype (subnormals included): a probability below
-/// half of it rounds to zero.
+/// The smallest positive value of a dtype (subnormals included).
 fn smallest_positive(dtype: Dtype) -> f64 {
     match dtype {
         Dtype::F64 => 5e-324,
@@ -371,9 +386,13 @@ pub fn compare(
         }
         let budgets_for_dtype = match budget_cache.entry(budget_dtype) {
             std::collections::btree_map::Entry::Occupied(e) => e.into_mut(),
-            std::collections::btree_map::Entry::Vacant(e) => {
-                e.insert(budgets(case, inputs, expected, budget_dtype, options.factor)?)
-            }
+            std::collections::btree_map::Entry::Vacant(e) => e.insert(budgets(
+                case,
+                inputs,
+                expected,
+                budget_dtype,
+                options.factor,
+            )?),
         };
         let budget = &budgets_for_dtype[name];
         report.outputs.push(compare_output(
@@ -480,7 +499,10 @@ fn compare_output(
     let mut worst_ratio = -1.0;
     let mut analytic_holds = budget.analytic.is_some();
     let row_max = scores_row_max(want, got, is_scores);
-    let zero_probability = smallest_positive(budget.dtype) / 2.0;
+    // A probability rounds to zero in the dtype when it is below half the smallest
+    // positive value; compared as 2p < smallest, since half of f64's smallest
+    // subnormal is itself 0.
+    let smallest = smallest_positive(budget.dtype);
     for (index, &w) in want.indexed_iter() {
         let idx = index.slice().to_vec();
         let g = got[index.slice()];
@@ -496,7 +518,7 @@ fn compare_output(
                         .get(&idx[..idx.len() - 1])
                         .copied()
                         .unwrap_or(f64::NEG_INFINITY);
-                    max == f64::NEG_INFINITY || (g - max).exp() < zero_probability
+                    max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
                 } else {
                     false
                 }

@@ -44,6 +44,8 @@ pub mod report;
 pub mod scheme;
 pub mod suite;
 pub mod tensor;
+pub mod vector;
+pub mod verify;
 
 pub use attention::{Scale, Window};
 pub use error::{Error, Result};

@@ -1,11 +1,8 @@
-//! The `posconform` command: parse, run, map the outcome to an exit code.
-fn main() -> std::process::ExitCode {
-    posconform_cli::run()
-}
+//! The `posconform` command: parse the arguments, run one subcommand, map its outcome
+//! to an exit code (0 conforming, 1 nonconforming, 2 could not run).
 
-mod posconform_cli {
-    use std::process::ExitCode;
-    pub fn run() -> ExitCode {
-        ExitCode::SUCCESS
-    }
+mod cli;
+
+fn main() -> std::process::ExitCode {
+    cli::run()
 }

@@ -1,1 +1,296 @@
-//! (in progress)
+//! The report for people: a table of verdicts, then the findings (where, by how much,
+//! which pattern), warnings, notes and a closing summary.
+
+use std::fmt::Write as _;
+
+use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
+use crate::report::Report;
+
+/// Names of the axes of an output, for "head 0, query 3, key 7" style coordinates.
+pub fn axis_names(case: &CaseReport, output: &str) -> &'static [&'static str] {
+    match output {
+        "scores" | "probs" => &["head", "query", "key"],
+        "output" if case.operation == "stream" || case.operation == "decode" => {
+            &["head", "token", "dim"]
+        }
+        "output" => &["head", "query", "dim"],
+        "rotated" => &["head", "position", "dim"],
+        "r" => &["head", "distance", "dim"],
+        "table" | "rows" => &["position", "dim"],
+        "slopes" => &["head"],
+        _ => &["index"],
+    }
+}
+
+/// `head 0, query 3, key 7` for an index of `output`.
+pub fn describe_index(case: &CaseReport, output: &str, index: &[usize]) -> String {
+    let names = axis_names(case, output);
+    index
+        .iter()
+        .enumerate()
+        .map(|(axis, i)| format!("{} {i}", names.get(axis).copied().unwrap_or("axis")))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+fn verdict_word(v: &Verdict) -> &'static str {
+    match v {
+        Verdict::Pass => "pass",
+        Verdict::Fail => "FAIL",
+        Verdict::Skipped(_) => "skip",
+        Verdict::Error(_) => "ERROR",
+    }
+}
+
+fn criterion_word(o: &OutputReport) -> &'static str {
+    if !o.passed {
+        return "-";
+    }
+    match o.decided_by {
+        Criterion::Analytic => "analytic",
+        Criterion::Baseline => "baseline",
+        Criterion::Exact => "exact",
+    }
+}
+
+/// The output with the largest error relative to its tolerance (failing ones first).
+fn worst_output(case: &CaseReport) -> Option<&OutputReport> {
+    let score = |o: &OutputReport| {
+        let ratio = if o.worst_tolerance > 0.0 {
+            o.max_abs / o.worst_tolerance
+        } else {
+            o.max_abs
+        };
+        (
+            !o.passed,
+            if ratio.is_nan() { f64::INFINITY } else { ratio },
+        )
+    };
+    case.outputs.iter().max_by(|a, b| {
+        score(a)
+            .partial_cmp(&score(b))
+            .unwrap_or(std::cmp::Ordering::Equal)
+    })
+}
+
+/// Describes a pattern in words.
+pub fn describe_pattern(case: &CaseReport, p: &Pattern) -> String {
+    match p {
+        Pattern::MaskedEntriesOnly => "only masked entries are wrong: the mask leaks".into(),
+        Pattern::MemoryColumnsOnly => {
+            format!("only memory keys (key < M = {}) are wrong", case.memory_len)
+        }
+        Pattern::DistanceBand { from, to } if from == to => {
+            format!("only distance Δ = {from} is wrong")
+        }
+        Pattern::DistanceBand { from, to } => format!("only distances Δ = {from}..{to} are wrong"),
+        Pattern::GrowsWithPosition { ratio } => {
+            format!("the error grows with position (last third {ratio:.1}x the first)")
+        }
+        Pattern::BeginsAtRow { row } => {
+            let segment = if case.operation == "stream" && case.query_len > 0 {
+                format!(" (segment {})", row / case.query_len)
+            } else {
+                String::new()
+            };
+            format!("tokens before {row} are right; errors begin at token {row}{segment}")
+        }
+    }
+}
+
+fn describe_masking(m: &Masking) -> String {
+    match m {
+        Masking::NegativeInfinity => "masked entries are -inf (or exactly 0 probability)".into(),
+        Masking::Sentinel { value } => format!(
+            "masked entries hold a finite sentinel ({value:e}) that carries zero probability"
+        ),
+        Masking::Leak { count } => format!("{count} masked entries carry probability (leak)"),
+    }
+}
+
+/// Renders the whole report.
+pub fn render(report: &Report) -> String {
+    let mut s = String::new();
+    let _ = writeln!(s, "posconform {}: {}", report.mode, report.subject);
+    let _ = writeln!(s);
+    let width = report
+        .cases
+        .iter()
+        .map(|c| c.case.len())
+        .max()
+        .unwrap_or(4)
+        .clamp(4, 60);
+    let _ = writeln!(
+        s,
+        "  {:<7} {:<width$}  {:<8} {:>10} {:>10} {:>9}  decided by",
+        "verdict", "case", "output", "max abs", "tolerance", "max ulp"
+    );
+    for case in &report.cases {
+        match (&case.verdict, worst_output(case)) {
+            (Verdict::Pass | Verdict::Fail, Some(o)) => {
+                let _ = writeln!(
+                    s,
+                    "  {:<7} {:<width$}  {:<8} {:>10.2e} {:>10.2e} {:>9} {}",
+                    verdict_word(&case.verdict),
+                    case.case,
+                    o.name,
+                    o.max_abs,
+                    o.worst_tolerance,
+                    format_ulp(o.max_ulp),
+                    criterion_word(o)
+                );
+            }
+            (Verdict::Skipped(reason) | Verdict::Error(reason), _) => {
+                let _ = writeln!(
+                    s,
+                    "  {:<7} {:<width$}  {}",
+                    verdict_word(&case.verdict),
+                    case.case,
+                    first_line(reason)
+                );
+            }
+            (v, None) => {
+                let _ = writeln!(
+                    s,
+                    "  {:<7} {:<width$}  (no outputs)",
+                    verdict_word(v),
+                    case.case
+                );
+            }
+        }
+    }
+    let findings: Vec<&CaseReport> = report
+        .cases
+        .iter()
+        .filter(|c| !matches!(c.verdict, Verdict::Pass | Verdict::Skipped(_)))
+        .collect();
+    if !findings.is_empty() {
+        let _ = writeln!(s, "\nFindings");
+        for case in findings {
+            findings_of(&mut s, case);
+        }
+    }
+    let warned: Vec<&CaseReport> = report
+        .cases
+        .iter()
+        .filter(|c| !c.warnings.is_empty())
+        .collect();
+    if !warned.is_empty() {
+        let _ = writeln!(s, "\nWarnings (read before trusting a pass)");
+        for case in warned {
+            for w in &case.warnings {
+                let _ = writeln!(s, "  {}: {w}", case.case);
+            }
+        }
+    }
+    if !report.notes.is_empty() {
+        let _ = writeln!(s, "\nNotes");
+        for n in &report.notes {
+            let _ = writeln!(s, "  {n}");
+        }
+    }
+    let c = report.counts();
+    let outcome = match report.exit_code() {
+        crate::report::EXIT_CONFORMING => "conforming",
+        crate::report::EXIT_NONCONFORMING => "NONCONFORMING",
+        _ => "could not run every case",
+    };
+    let _ = writeln!(
+        s,
+        "\n{} cases: {} within budget, {} over budget, {} skipped, {} could not run -> {outcome} (exit {})",
+        report.cases.len(),
+        c.passed,
+        c.failed,
+        c.skipped,
+        c.errors,
+        report.exit_code()
+    );
+    s
+}
+
+fn first_line(text: &str) -> &str {
+    text.lines().next().unwrap_or("")
+}
+
+fn format_ulp(ulp: f64) -> String {
+    if ulp.is_infinite() {
+        "inf".into()
+    } else if ulp >= 1e6 {
+        format!("{ulp:.1e}")
+    } else {
+        format!("{ulp:.1}")
+    }
+}
+
+fn findings_of(s: &mut String, case: &CaseReport) {
+    let targets = if case.faults.is_empty() {
+        String::new()
+    } else {
+        format!(
+            " (built to expose fault classes {})",
+            case.faults
+                .iter()
+                .map(u8::to_string)
+                .collect::<Vec<_>>()
+                .join(", ")
+        )
+    };
+    let _ = writeln!(
+        s,
+        "  {} {} [{} {}]{targets}",
+        verdict_word(&case.verdict),
+        case.case,
+        case.scheme,
+        case.operation
+    );
+    if let Verdict::Error(reason) = &case.verdict {
+        for line in reason.lines() {
+            let _ = writeln!(s, "    {line}");
+        }
+    }
+    for o in case.outputs.iter().filter(|o| !o.passed) {
+        let share = if o.elements > 0 {
+            100.0 * o.over_budget as f64 / o.elements as f64
+        } else {
+            0.0
+        };
+        let _ = writeln!(
+            s,
+            "    {} {:?} ({}): {} of {} elements over budget ({share:.1}%)",
+            o.name, o.shape, o.dtype, o.over_budget, o.elements
+        );
+        if let Some(idx) = &o.worst {
+            let _ = writeln!(
+                s,
+                "      worst at {}: got {:.6e}, expected {:.6e}, tolerance {:.2e}",
+                describe_index(case, &o.name, idx),
+                o.worst_got,
+                o.worst_expected,
+                o.worst_tolerance
+            );
+        }
+        let _ = writeln!(
+            s,
+            "      max abs {:.2e}, max rel {:.2e}, max ulp {} ({}); budget for {}, baseline allowance {:.2e}",
+            o.max_abs,
+            o.max_rel,
+            format_ulp(o.max_ulp),
+            o.dtype,
+            o.budget_dtype,
+            o.allowance
+        );
+        if o.non_finite > 0 {
+            let _ = writeln!(
+                s,
+                "      {} non-finite values where finite ones were expected",
+                o.non_finite
+            );
+        }
+        for p in &o.patterns {
+            let _ = writeln!(s, "      where: {}", describe_pattern(case, p));
+        }
+        if let Some(m) = &o.masking {
+            let _ = writeln!(s, "      masking: {}", describe_masking(m));
+        }
+    }
+}

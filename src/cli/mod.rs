@@ -1,0 +1,263 @@
+//! Argument parsing and the subcommands (binary-only code; the work is in the library).
+
+use std::io::Write as _;
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+use anyhow::{bail, Context as _};
+use clap::{Parser, Subcommand, ValueEnum};
+use posconform::compare::CompareOptions;
+use posconform::precision::Dtype;
+use posconform::report::{self, write_atomic, Report, EXIT_COULD_NOT_RUN};
+use posconform::suite::{suite, SUITES};
+use posconform::Scheme;
+
+/// Checks that an attention kernel implements positional encoding correctly, and says
+/// what is wrong when it does not.
+#[derive(Debug, Parser)]
+#[command(name = "posconform", version, about, long_about = None)]
+#[command(
+    after_help = "Exit status: 0 conforming, 1 nonconforming, 2 could not run.\n\
+Conventions and budgets: DESIGN.md; vector format: vectors/README.md."
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// List schemes, suites, or the cases of one suite.
+    List {
+        /// Show the cases of this suite.
+        #[arg(long)]
+        suite: Option<String>,
+    },
+    /// Write a suite's golden vectors (inputs, expected outputs, budgets) to a directory.
+    Emit {
+        /// Suite to write: core (small, committed) or long (large, generated on demand).
+        #[arg(long, default_value = "core")]
+        suite: String,
+        /// Directory to write into; stale vector files there are removed.
+        #[arg(long)]
+        out: PathBuf,
+        /// Budget factor c: a kernel may make c times the same-precision baseline's error.
+        #[arg(long, default_value_t = 2.0)]
+        factor: f64,
+    },
+    /// Compare a kernel's result files with golden vectors, offline.
+    Verify(VerifyArgs),
+}
+
+#[derive(Debug, clap::Args)]
+struct VerifyArgs {
+    /// Directory of vector files (from `posconform emit`).
+    #[arg(long)]
+    vectors: PathBuf,
+    /// Directory of the kernel's result files: <case>.json or <case>.<output>.npy.
+    #[arg(long)]
+    results: PathBuf,
+    #[command(flatten)]
+    output: OutputArgs,
+}
+
+/// Report options shared by `verify` and `check`.
+#[derive(Debug, clap::Args)]
+struct OutputArgs {
+    /// Report format on standard output.
+    #[arg(long, value_enum, default_value_t = Format::Text)]
+    format: Format,
+    /// Also write a JUnit XML report to this file.
+    #[arg(long, value_name = "FILE")]
+    junit: Option<PathBuf>,
+    /// Also write the JSON report to this file.
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+    /// Write an SVG heatmap of the error per head for each failing scores or
+    /// probabilities output into this directory.
+    #[arg(long, value_name = "DIR")]
+    svg: Option<PathBuf>,
+    /// Budget factor c against the same-precision baseline.
+    #[arg(long, default_value_t = 2.0)]
+    factor: f64,
+    /// Derive budgets for this dtype instead of the one the kernel declares (a looser
+    /// dtype is flagged in the report).
+    #[arg(long, value_name = "DTYPE")]
+    budget_dtype: Option<Dtype>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+enum Format {
+    /// Table and findings for people.
+    Text,
+    /// One JSON document.
+    Json,
+}
+
+impl std::str::FromStr for Format {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        <Format as ValueEnum>::from_str(s, true)
+    }
+}
+
+/// Parses, runs, and maps the outcome to an exit code; errors print with their causes.
+pub fn run() -> ExitCode {
+    let cli = Cli::parse();
+    match dispatch(cli.command) {
+        Ok(code) => ExitCode::from(code),
+        Err(e) => {
+            eprintln!("posconform: error: {e:#}");
+            ExitCode::from(EXIT_COULD_NOT_RUN)
+        }
+    }
+}
+
+fn dispatch(command: Command) -> anyhow::Result<u8> {
+    match command {
+        Command::List { suite: name } => list(name.as_deref()),
+        Command::Emit {
+            suite: name,
+            out,
+            factor,
+        } => emit(&name, &out, factor),
+        Command::Verify(args) => {
+            let options = compare_options(&args.output)?;
+            let report = posconform::verify::verify(&args.vectors, &args.results, &options)?;
+            finish(&report, &args.output)
+        }
+    }
+}
+
+fn compare_options(args: &OutputArgs) -> anyhow::Result<CompareOptions> {
+    if !(args.factor.is_finite() && args.factor >= 1.0) {
+        bail!(
+            "--factor must be a finite number >= 1, given {}",
+            args.factor
+        );
+    }
+    Ok(CompareOptions {
+        factor: args.factor,
+        budget_dtype: args.budget_dtype,
+    })
+}
+
+fn list(name: Option<&str>) -> anyhow::Result<u8> {
+    let mut out = std::io::stdout().lock();
+    if let Some(name) = name {
+        for case in suite(name)? {
+            let faults: Vec<String> = case.faults.iter().map(u8::to_string).collect();
+            writeln!(
+                out,
+                "{:<52} {:<5} faults {:<12} {}",
+                case.id,
+                case.dtype,
+                faults.join(","),
+                case.purpose
+            )?;
+        }
+        return Ok(0);
+    }
+    writeln!(out, "schemes:")?;
+    for scheme in Scheme::ALL {
+        writeln!(out, "  {:<12} {}", scheme.name(), scheme.source())?;
+    }
+    writeln!(out, "operations: encode, scores, attention, stream, decode")?;
+    writeln!(out, "suites:")?;
+    for name in SUITES {
+        writeln!(out, "  {:<12} {} cases", name, suite(name)?.len())?;
+    }
+    Ok(0)
+}
+
+fn emit(name: &str, out: &Path, factor: f64) -> anyhow::Result<u8> {
+    let cases = suite(name)?;
+    let written = posconform::vector::emit_suite(name, &cases, out, factor)
+        .with_context(|| format!("writing suite {name} to {}", out.display()))?;
+    let removed = remove_stale(out, &written)?;
+    let bytes: u64 = written
+        .iter()
+        .filter_map(|p| std::fs::metadata(p).ok())
+        .map(|m| m.len())
+        .sum();
+    eprintln!(
+        "wrote {} cases of suite {name} to {} ({} files, {:.1} MB){}",
+        cases.len(),
+        out.display(),
+        written.len(),
+        bytes as f64 / 1e6,
+        if removed > 0 {
+            format!("; removed {removed} stale files")
+        } else {
+            String::new()
+        }
+    );
+    Ok(0)
+}
+
+/// Removes vector files (and their side files) that an earlier emit left and this one
+/// did not write, so a regenerated directory holds exactly the suite.
+fn remove_stale(dir: &Path, written: &[PathBuf]) -> anyhow::Result<usize> {
+    let mut removed = 0;
+    for entry in std::fs::read_dir(dir).with_context(|| format!("listing {}", dir.display()))? {
+        let path = entry?.path();
+        if written.contains(&path) {
+            continue;
+        }
+        let ours = match path.extension().and_then(|x| x.to_str()) {
+            Some("json") => std::fs::read_to_string(&path)
+                .is_ok_and(|t| t.contains("\"format\": \"posconform.")),
+            Some("npy") => path
+                .file_name()
+                .is_some_and(|n| n.to_string_lossy().matches('.').count() >= 3),
+            _ => false,
+        };
+        if ours {
+            std::fs::remove_file(&path)
+                .with_context(|| format!("removing stale {}", path.display()))?;
+            removed += 1;
+        }
+    }
+    Ok(removed)
+}
+
+/// Prints the report, writes the requested files, and returns the exit code.
+fn finish(report: &Report, args: &OutputArgs) -> anyhow::Result<u8> {
+    // Files first: a broken pipe on stdout must not lose them.
+    if let Some(path) = &args.junit {
+        write_atomic(path, report::junit::render(report).as_bytes())?;
+    }
+    if let Some(path) = &args.json {
+        write_atomic(path, report::json::render(report).as_bytes())?;
+    }
+    let mut heatmaps = Vec::new();
+    if let Some(dir) = &args.svg {
+        for case in &report.cases {
+            for output in case.outputs.iter().filter(|o| !o.passed) {
+                if let Some(svg) = report::svg::heatmap(case, output) {
+                    let path = dir.join(format!("{}.{}.svg", case.case, output.name));
+                    write_atomic(&path, svg.as_bytes())?;
+                    heatmaps.push(path);
+                }
+            }
+        }
+    }
+    let text = match args.format {
+        Format::Text => report::text::render(report),
+        Format::Json => report::json::render(report),
+    };
+    let mut stdout = std::io::stdout().lock();
+    let _ = stdout.write_all(text.as_bytes());
+    if !heatmaps.is_empty() && args.format == Format::Text {
+        let _ = writeln!(
+            stdout,
+            "heatmaps: {}",
+            heatmaps
+                .iter()
+                .map(|p| p.display().to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
+        );
+    }
+    Ok(report.exit_code())
+}
