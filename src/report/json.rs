@@ -1,1 +1,244 @@
-//! (in progress)
+//! The machine-readable report: one pretty-printed JSON document per run.
+//!
+//! Layout (keys always in this order; `version` changes only when a key is removed or
+//! changes meaning, never when one is added):
+//!
+//! ```json
+//! {
+//!   "format": "posconform.report",
+//!   "version": 1,
+//!   "mode": "verify",
+//!   "subject": "vectors/core",
+//!   "exit_code": 1,
+//!   "counts": { "passed": 40, "failed": 1, "skipped": 2, "errors": 0 },
+//!   "notes": [],
+//!   "cases": [
+//!     {
+//!       "id": "xl_relative.scores.short_memory",
+//!       "scheme": "xl_relative",
+//!       "operation": "scores",
+//!       "faults": [1, 2],
+//!       "memory_len": 4,
+//!       "query_len": 9,
+//!       "verdict": { "kind": "fail" },
+//!       "warnings": [],
+//!       "outputs": [
+//!         {
+//!           "name": "scores", "shape": [2, 9, 13], "dtype": "f64", "budget_dtype": "f64",
+//!           "passed": false, "decided_by": "baseline",
+//!           "elements": 180, "over_budget": 36, "non_finite": 1,
+//!           "max_abs": 0.001, "max_rel": 0.004, "max_ulp": 1.2e13, "allowance": 3.5e-15,
+//!           "worst": { "index": [0, 2, 5], "got": "nan", "expected": 0.31, "tolerance": 0.0 },
+//!           "masking": { "kind": "negative_infinity" },
+//!           "patterns": [{ "kind": "memory_columns_only" }]
+//!         }
+//!       ]
+//!     }
+//!   ]
+//! }
+//! ```
+//!
+//! `verdict.kind` is `pass`, `fail`, `skipped` or `error`; the last two carry a
+//! `reason` string. `worst` is `null` when no element was compared. `masking` is `null`
+//! for outputs that have no masked entries by construction.
+//!
+//! Non-finite numbers: JSON numbers cannot express infinities or NaN (serde_json would
+//! silently write `null`, indistinguishable from "absent"), so every floating-point
+//! field is written as a number when finite and as the string `"inf"`, `"-inf"` or
+//! `"nan"` otherwise, the same spelling the vector format uses for array values
+//! ([`crate::tensor`]). A consumer should accept either a number or one of these three
+//! strings wherever a real number is expected.
+
+use serde::{Serialize, Serializer};
+
+use super::{Counts, Report};
+use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
+use crate::precision::Dtype;
+
+/// The value of `"format"`, naming this document type.
+pub const FORMAT: &str = "posconform.report";
+
+/// The value of `"version"`, the layout revision.
+pub const VERSION: u32 = 1;
+
+/// Renders `report` as a pretty-printed JSON document ending in a newline.
+pub fn render(report: &Report) -> String {
+    let document = Document {
+        format: FORMAT,
+        version: VERSION,
+        mode: &report.mode,
+        subject: &report.subject,
+        exit_code: report.exit_code(),
+        counts: report.counts(),
+        notes: &report.notes,
+        cases: report.cases.iter().map(CaseDocument::from).collect(),
+    };
+    // Every field is a string, integer, bool or finite-or-string real, so
+    // serialisation cannot fail; a panic here would be a bug in this module.
+    let mut text =
+        serde_json::to_string_pretty(&document).expect("a report always serialises to JSON");
+    text.push('\n');
+    text
+}
+
+/// A real number that keeps infinities and NaN as strings instead of `null`.
+#[derive(Clone, Copy)]
+struct Real(f64);
+
+impl Serialize for Real {
+    fn serialize<S: Serializer>(&self, serializer: S) -> Result<S::Ok, S::Error> {
+        let x = self.0;
+        if x.is_finite() {
+            serializer.serialize_f64(x)
+        } else if x.is_nan() {
+            serializer.serialize_str("nan")
+        } else if x > 0.0 {
+            serializer.serialize_str("inf")
+        } else {
+            serializer.serialize_str("-inf")
+        }
+    }
+}
+
+// Mirror structs rather than the library types' own derives: the document's layout is
+// a published contract, and it must not change because a field is added to (or
+// reordered in) a comparison type, nor lose non-finite values through plain f64 fields.
+
+#[derive(Serialize)]
+struct Document<'a> {
+    format: &'static str,
+    version: u32,
+    mode: &'a str,
+    subject: &'a str,
+    exit_code: u8,
+    counts: Counts,
+    notes: &'a [String],
+    cases: Vec<CaseDocument<'a>>,
+}
+
+#[derive(Serialize)]
+struct CaseDocument<'a> {
+    id: &'a str,
+    scheme: &'a str,
+    operation: &'a str,
+    faults: &'a [u8],
+    memory_len: usize,
+    query_len: usize,
+    verdict: &'a Verdict,
+    warnings: &'a [String],
+    outputs: Vec<OutputDocument<'a>>,
+}
+
+impl<'a> From<&'a CaseReport> for CaseDocument<'a> {
+    fn from(case: &'a CaseReport) -> Self {
+        CaseDocument {
+            id: &case.case,
+            scheme: &case.scheme,
+            operation: &case.operation,
+            faults: &case.faults,
+            memory_len: case.memory_len,
+            query_len: case.query_len,
+            verdict: &case.verdict,
+            warnings: &case.warnings,
+            outputs: case.outputs.iter().map(OutputDocument::from).collect(),
+        }
+    }
+}
+
+#[derive(Serialize)]
+struct OutputDocument<'a> {
+    name: &'a str,
+    shape: &'a [usize],
+    dtype: Dtype,
+    budget_dtype: Dtype,
+    passed: bool,
+    decided_by: Criterion,
+    elements: usize,
+    over_budget: usize,
+    non_finite: usize,
+    max_abs: Real,
+    max_rel: Real,
+    max_ulp: Real,
+    allowance: Real,
+    worst: Option<WorstDocument<'a>>,
+    masking: Option<MaskingDocument>,
+    patterns: Vec<PatternDocument>,
+}
+
+impl<'a> From<&'a OutputReport> for OutputDocument<'a> {
+    fn from(output: &'a OutputReport) -> Self {
+        OutputDocument {
+            name: &output.name,
+            shape: &output.shape,
+            dtype: output.dtype,
+            budget_dtype: output.budget_dtype,
+            passed: output.passed,
+            decided_by: output.decided_by,
+            elements: output.elements,
+            over_budget: output.over_budget,
+            non_finite: output.non_finite,
+            max_abs: Real(output.max_abs),
+            max_rel: Real(output.max_rel),
+            max_ulp: Real(output.max_ulp),
+            allowance: Real(output.allowance),
+            worst: output.worst.as_deref().map(|index| WorstDocument {
+                index,
+                got: Real(output.worst_got),
+                expected: Real(output.worst_expected),
+                tolerance: Real(output.worst_tolerance),
+            }),
+            masking: output.masking.map(MaskingDocument::from),
+            patterns: output.patterns.iter().map(PatternDocument::from).collect(),
+        }
+    }
+}
+
+#[derive(Serialize)]
+struct WorstDocument<'a> {
+    index: &'a [usize],
+    got: Real,
+    expected: Real,
+    tolerance: Real,
+}
+
+#[derive(Serialize)]
+#[serde(rename_all = "snake_case", tag = "kind")]
+enum MaskingDocument {
+    NegativeInfinity,
+    Sentinel { value: Real },
+    Leak { count: usize },
+}
+
+impl From<Masking> for MaskingDocument {
+    fn from(masking: Masking) -> Self {
+        match masking {
+            Masking::NegativeInfinity => MaskingDocument::NegativeInfinity,
+            Masking::Sentinel { value } => MaskingDocument::Sentinel { value: Real(value) },
+            Masking::Leak { count } => MaskingDocument::Leak { count },
+        }
+    }
+}
+
+#[derive(Serialize)]
+#[serde(rename_all = "snake_case", tag = "kind")]
+enum PatternDocument {
+    MaskedEntriesOnly,
+    MemoryColumnsOnly,
+    DistanceBand { from: i64, to: i64 },
+    GrowsWithPosition { ratio: Real },
+    BeginsAtRow { row: usize },
+}
+
+impl From<&Pattern> for PatternDocument {
+    fn from(pattern: &Pattern) -> Self {
+        match *pattern {
+            Pattern::MaskedEntriesOnly => PatternDocument::MaskedEntriesOnly,
+            Pattern::MemoryColumnsOnly => PatternDocument::MemoryColumnsOnly,
+            Pattern::DistanceBand { from, to } => PatternDocument::DistanceBand { from, to },
+            Pattern::GrowsWithPosition { ratio } => {
+                PatternDocument::GrowsWithPosition { ratio: Real(ratio) }
+            }
+            Pattern::BeginsAtRow { row } => PatternDocument::BeginsAtRow { row },
+        }
+    }
+}

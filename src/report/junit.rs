@@ -1,1 +1,335 @@
-//! (in progress)
+//! The CI report: JUnit XML, the test-result format most CI dashboards read.
+//!
+//! One `<testsuite>` named `posconform <mode>` inside a `<testsuites>` root, with one
+//! `<testcase>` per case (`classname` is `scheme.operation`, `name` the case id):
+//!
+//! - a failing case holds `<failure message="..." type="over_budget">` whose text gives
+//!   the worst output (its worst element, the largest absolute error against the
+//!   tolerance, the masking seen and the error patterns), one line per other failing
+//!   output, and the case's warnings;
+//! - a case that could not be compared holds `<error message="..." type="not_compared">`;
+//! - a case the kernel does not support holds `<skipped message="..."/>`, so a missing
+//!   feature shows as skipped rather than failed;
+//! - warnings of a case without a failure body go to its `<system-out>`, and run-level
+//!   notes to the suite's `<system-out>`.
+//!
+//! No `time` attributes are written: the comparison does not time kernels, and a made-up
+//! duration would mislead a dashboard. Text is escaped by `escape` and `escape_text`,
+//! which also drop the control characters XML 1.0 cannot carry at all.
+//!
+//! Written by hand rather than through an XML library: the document is a fixed,
+//! shallow shape and the one subtle part, escaping, is a dozen lines tested directly.
+
+use std::fmt::Write as _;
+
+use super::Report;
+use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
+
+/// Renders `report` as a JUnit XML document ending in a newline.
+pub fn render(report: &Report) -> String {
+    let counts = report.counts();
+    let total = report.cases.len();
+    let suite_name = format!("posconform {}", report.mode);
+    let mut xml = String::from("<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n");
+    let totals = format!(
+        "tests=\"{total}\" failures=\"{}\" errors=\"{}\" skipped=\"{}\"",
+        counts.failed, counts.errors, counts.skipped
+    );
+    // `write!` into a String cannot fail, hence the ignored results throughout.
+    let _ = writeln!(
+        xml,
+        "<testsuites name=\"{}\" {totals}>",
+        escape(&suite_name)
+    );
+    let _ = writeln!(
+        xml,
+        "  <testsuite name=\"{}\" {totals}>",
+        escape(&suite_name)
+    );
+    let _ = writeln!(xml, "    <properties>");
+    let _ = writeln!(
+        xml,
+        "      <property name=\"subject\" value=\"{}\"/>",
+        escape(&report.subject)
+    );
+    let _ = writeln!(
+        xml,
+        "      <property name=\"exit_code\" value=\"{}\"/>",
+        report.exit_code()
+    );
+    let _ = writeln!(xml, "    </properties>");
+    for case in &report.cases {
+        write_case(&mut xml, case);
+    }
+    if !report.notes.is_empty() {
+        let _ = writeln!(
+            xml,
+            "    <system-out>{}</system-out>",
+            escape_text(&report.notes.join("\n"))
+        );
+    }
+    xml.push_str("  </testsuite>\n</testsuites>\n");
+    xml
+}
+
+fn write_case(xml: &mut String, case: &CaseReport) {
+    let _ = write!(
+        xml,
+        "    <testcase classname=\"{}\" name=\"{}\"",
+        escape(&format!("{}.{}", case.scheme, case.operation)),
+        escape(&case.case)
+    );
+    let mut warnings_written = false;
+    let child = match &case.verdict {
+        Verdict::Pass => None,
+        Verdict::Fail => {
+            warnings_written = true;
+            Some(format!(
+                "      <failure message=\"{}\" type=\"over_budget\">{}</failure>\n",
+                escape(&failure_message(case)),
+                escape_text(&failure_body(case))
+            ))
+        }
+        Verdict::Error(reason) => Some(format!(
+            "      <error message=\"{}\" type=\"not_compared\"/>\n",
+            escape(reason)
+        )),
+        Verdict::Skipped(reason) => {
+            Some(format!("      <skipped message=\"{}\"/>\n", escape(reason)))
+        }
+    };
+    let system_out = (!warnings_written && !case.warnings.is_empty()).then(|| {
+        format!(
+            "      <system-out>{}</system-out>\n",
+            escape_text(&warning_lines(&case.warnings))
+        )
+    });
+    if child.is_none() && system_out.is_none() {
+        xml.push_str("/>\n");
+        return;
+    }
+    xml.push_str(">\n");
+    xml.push_str(child.as_deref().unwrap_or(""));
+    xml.push_str(system_out.as_deref().unwrap_or(""));
+    xml.push_str("    </testcase>\n");
+}
+
+/// Escapes `text` for an XML attribute value, and drops the characters XML 1.0
+/// forbids even as references (C0 controls other than tab, line feed and carriage
+/// return; U+FFFE and U+FFFF).
+///
+/// Tab, line feed and carriage return are written as character references because a
+/// reader normalises them to spaces in attribute values.
+pub(crate) fn escape(text: &str) -> String {
+    escape_with(text, true)
+}
+
+/// Escapes `text` for XML character data, like [`escape`] but keeping tabs and line
+/// feeds as they are (readers keep them in content); carriage returns are still
+/// references, since end-of-line handling would drop them.
+fn escape_text(text: &str) -> String {
+    escape_with(text, false)
+}
+
+fn escape_with(text: &str, attribute: bool) -> String {
+    let mut out = String::with_capacity(text.len());
+    for c in text.chars() {
+        match c {
+            '&' => out.push_str("&amp;"),
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            '"' => out.push_str("&quot;"),
+            '\'' => out.push_str("&apos;"),
+            '\t' | '\n' if !attribute => out.push(c),
+            '\t' => out.push_str("&#9;"),
+            '\n' => out.push_str("&#10;"),
+            '\r' => out.push_str("&#13;"),
+            c if (c as u32) < 0x20 || c == '\u{FFFE}' || c == '\u{FFFF}' => {}
+            c => out.push(c),
+        }
+    }
+    out
+}
+
+/// The failing outputs, worst first: by error relative to tolerance at the worst
+/// element (non-finite values count as infinitely bad), then by elements over budget.
+fn failing_outputs(case: &CaseReport) -> Vec<&OutputReport> {
+    let mut failing: Vec<&OutputReport> = case.outputs.iter().filter(|o| !o.passed).collect();
+    failing.sort_by(|a, b| {
+        worst_ratio(b)
+            .total_cmp(&worst_ratio(a))
+            .then(b.over_budget.cmp(&a.over_budget))
+    });
+    failing
+}
+
+fn worst_ratio(output: &OutputReport) -> f64 {
+    let error = (output.worst_got - output.worst_expected).abs();
+    if !error.is_finite() || output.non_finite > 0 {
+        f64::INFINITY
+    } else if output.worst_tolerance > 0.0 {
+        error / output.worst_tolerance
+    } else if error > 0.0 {
+        f64::INFINITY
+    } else {
+        0.0
+    }
+}
+
+fn failure_message(case: &CaseReport) -> String {
+    let failing = failing_outputs(case);
+    match failing.first() {
+        Some(worst) => {
+            let others = match failing.len() {
+                1 => String::new(),
+                n => format!(" (and {} more output{})", n - 1, plural(n - 1)),
+            };
+            format!(
+                "`{}`: {} of {} elements over budget{others}",
+                worst.name, worst.over_budget, worst.elements
+            )
+        }
+        // A Fail verdict always has a failing output; say so plainly if one does not.
+        None => "over budget".to_string(),
+    }
+}
+
+fn failure_body(case: &CaseReport) -> String {
+    let failing = failing_outputs(case);
+    let mut body = String::new();
+    if let Some(worst) = failing.first() {
+        let _ = writeln!(
+            body,
+            "output `{}` {:?}, {} (budget for {}, decided by {})",
+            worst.name,
+            worst.shape,
+            worst.dtype,
+            worst.budget_dtype,
+            criterion(worst.decided_by)
+        );
+        if let Some(index) = &worst.worst {
+            let _ = writeln!(
+                body,
+                "worst element {index:?}: got {}, expected {}, tolerance {}",
+                exact(worst.worst_got),
+                exact(worst.worst_expected),
+                number(worst.worst_tolerance)
+            );
+        }
+        let _ = writeln!(
+            body,
+            "max abs error {} vs allowance {} (finite values); max rel error {}; max {} ulp",
+            number(worst.max_abs),
+            number(worst.allowance),
+            number(worst.max_rel),
+            number(worst.max_ulp)
+        );
+        let _ = writeln!(
+            body,
+            "{} of {} elements over budget, {} non-finite",
+            worst.over_budget, worst.elements, worst.non_finite
+        );
+        if let Some(masking) = worst.masking {
+            let _ = writeln!(body, "masking: {}", describe_masking(masking));
+        }
+        if !worst.patterns.is_empty() {
+            let patterns: Vec<String> = worst.patterns.iter().map(describe_pattern).collect();
+            let _ = writeln!(body, "patterns: {}", patterns.join("; "));
+        }
+    }
+    for other in failing.iter().skip(1) {
+        let _ = writeln!(
+            body,
+            "also output `{}`: {} of {} elements over budget, max abs error {}",
+            other.name,
+            other.over_budget,
+            other.elements,
+            number(other.max_abs)
+        );
+    }
+    if !case.warnings.is_empty() {
+        body.push_str(&warning_lines(&case.warnings));
+    }
+    body
+}
+
+fn warning_lines(warnings: &[String]) -> String {
+    warnings.iter().map(|w| format!("warning: {w}\n")).collect()
+}
+
+fn describe_masking(masking: Masking) -> String {
+    match masking {
+        Masking::NegativeInfinity => "-inf (or exact zero probability)".to_string(),
+        Masking::Sentinel { value } => format!("finite sentinel {}", number(value)),
+        Masking::Leak { count: 1 } => "1 masked entry carries probability".to_string(),
+        Masking::Leak { count } => format!("{count} masked entries carry probability"),
+    }
+}
+
+fn describe_pattern(pattern: &Pattern) -> String {
+    match pattern {
+        Pattern::MaskedEntriesOnly => "only masked entries are wrong".to_string(),
+        Pattern::MemoryColumnsOnly => "only memory keys (j < M) are wrong".to_string(),
+        Pattern::DistanceBand { from, to } if from == to => {
+            format!("errors at distance M + i - j = {from} only")
+        }
+        Pattern::DistanceBand { from, to } => {
+            format!("errors at distances M + i - j in {from}..={to} only")
+        }
+        Pattern::GrowsWithPosition { ratio } => {
+            format!(
+                "error grows with position ({}x from first to last third)",
+                number(*ratio)
+            )
+        }
+        Pattern::BeginsAtRow { row } => format!("rows before {row} are within budget"),
+    }
+}
+
+/// A real number to four significant figures (the JSON report has the exact values),
+/// with the same spellings for non-finite values as the JSON report.
+fn number(x: f64) -> String {
+    if x.is_nan() {
+        "nan".to_string()
+    } else if x.is_infinite() {
+        if x > 0.0 { "inf" } else { "-inf" }.to_string()
+    } else if x == 0.0 {
+        "0".to_string()
+    } else if (1e-3..1e5).contains(&x.abs()) {
+        let decimals = (3 - x.abs().log10().floor() as i32).max(0) as usize;
+        let text = format!("{x:.decimals$}");
+        if text.contains('.') {
+            text.trim_end_matches('0').trim_end_matches('.').to_string()
+        } else {
+            text
+        }
+    } else {
+        format!("{x:.3e}")
+    }
+}
+
+/// A real number written so it reads back exactly: a kernel value and its expected
+/// value may differ only in the last digits.
+fn exact(x: f64) -> String {
+    if x.is_finite() {
+        format!("{x}")
+    } else {
+        number(x)
+    }
+}
+
+fn criterion(criterion: Criterion) -> &'static str {
+    match criterion {
+        Criterion::Analytic => "the analytic bound",
+        Criterion::Baseline => "the same-precision baseline",
+        Criterion::Exact => "exact match",
+    }
+}
+
+fn plural(n: usize) -> &'static str {
+    if n == 1 {
+        ""
+    } else {
+        "s"
+    }
+}
