@@ -409,5 +409,19 @@ def handle(case: dict, dtype: str, inputs: dict) -> dict:
     return OPERATION_HANDLERS[operation](case, dtype, inputs)
 
 
+def main(argv=None) -> None:
+    import argparse
+    parser = argparse.ArgumentParser(description="numpy kernel for posconform check")
+    parser.add_argument("--dtypes", default=",".join(DTYPES),
+                        help="dtypes to declare, preferred first (default f64,f32); "
+                             "cases in an undeclared dtype are sent in the first one")
+    args = parser.parse_args(argv)
+    dtypes = [d.strip() for d in args.dtypes.split(",") if d.strip()]
+    unknown = [d for d in dtypes if d not in DTYPES]
+    if unknown or not dtypes:
+        parser.error(f"--dtypes: this kernel computes in {DTYPES} only")
+    serve(NAME, VERSION, SUPPORTS, dtypes, handle)
+
+
 if __name__ == "__main__":
-    serve(NAME, VERSION, SUPPORTS, DTYPES, handle)
+    main()
