@@ -49,6 +49,15 @@ pub enum Error {
         /// What is wrong with it.
         reason: String,
     },
+    /// The kernel under test could not answer: it crashed, hung, exited, broke the
+    /// protocol or returned malformed arrays.
+    #[error("kernel {kernel}: {reason}")]
+    Kernel {
+        /// The kernel's name (or command).
+        kernel: String,
+        /// What went wrong, including the kernel's last stderr lines when there are any.
+        reason: String,
+    },
     /// Reading or writing a file failed.
     #[error("cannot {action} {path}")]
     Io {

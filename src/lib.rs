@@ -34,9 +34,12 @@
 
 pub mod attention;
 pub mod case;
+pub mod check;
 pub mod compare;
+pub mod demo;
 mod error;
 pub mod generate;
+pub mod kernel;
 pub mod precision;
 pub mod recurrence;
 pub mod reference;

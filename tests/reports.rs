@@ -506,7 +506,7 @@ fn json_writes_non_finite_numbers_as_strings() {
     assert_eq!(output["max_ulp"], "inf");
     assert_eq!(output["worst"]["expected"], "-inf");
     assert_eq!(output["masking"]["value"], "-inf");
-    assert!(output["max_abs"].is_number(), "finite values stay numbers");
+    assert!(output["allowance"].is_number(), "finite values stay numbers");
     assert!(
         !json::render(&report).contains("null"),
         "no value of this report is absent, so none may be written as null"
@@ -626,7 +626,7 @@ fn junit_failure_says_where_and_how_much() {
     assert!(body.contains("max abs error 0.001"), "{body}");
     assert!(body.contains("vs allowance"), "{body}");
     assert!(
-        body.contains("only memory keys (j < M) are wrong"),
+        body.contains("only memory keys (key < M = 6) are wrong"),
         "{body}"
     );
     assert!(

@@ -47,6 +47,59 @@ enum Command {
     },
     /// Compare a kernel's result files with golden vectors, offline.
     Verify(VerifyArgs),
+    /// Drive a live kernel over the stdio protocol: the suite, then random cases, with
+    /// each failure shrunk to a minimal case.
+    Check(CheckArgs),
+    /// Run the bundled demo: a fictional team's kernel with a positional bug that only
+    /// shows beyond the first segment, checked through the real protocol path.
+    Demo {
+        /// Random cases after the suite.
+        #[arg(long, default_value_t = 200)]
+        fuzz: usize,
+        /// Seed of the fuzzer.
+        #[arg(long, default_value_t = 7)]
+        seed: u64,
+    },
+    /// Serve the demo kernel over the protocol on stdin/stdout (used by `demo`).
+    #[command(name = "__demo-kernel", hide = true)]
+    DemoKernel,
+}
+
+#[derive(Debug, clap::Args)]
+struct CheckArgs {
+    /// The kernel's command line, run without a shell (quote arguments with spaces).
+    #[arg(long)]
+    kernel: String,
+    /// Suite to run first.
+    #[arg(long, default_value = "core")]
+    suite: String,
+    /// Run only the cases of these vector files (for example a saved minimal case)
+    /// instead of the suite; fuzzing is off unless --fuzz is given.
+    #[arg(long, value_name = "FILE")]
+    case: Vec<PathBuf>,
+    /// Random cases after the suite (default 200; 0 turns fuzzing off).
+    #[arg(long)]
+    fuzz: Option<usize>,
+    /// Stop fuzzing after this many seconds.
+    #[arg(long, value_name = "SECONDS")]
+    fuzz_time: Option<f64>,
+    /// Seed of the fuzzer; the same seed gives the same cases.
+    #[arg(long, default_value_t = 0x5eed)]
+    seed: u64,
+    /// Seconds the kernel may take to answer one request.
+    #[arg(long, default_value_t = 30.0)]
+    timeout: f64,
+    /// Directory where minimal failing cases are saved as vector files.
+    #[arg(long, value_name = "DIR", default_value = "posconform-failures")]
+    save_failures: PathBuf,
+    /// Append the kernel's stderr to this file.
+    #[arg(long, value_name = "FILE")]
+    kernel_log: Option<PathBuf>,
+    /// No progress display.
+    #[arg(long)]
+    quiet: bool,
+    #[command(flatten)]
+    output: OutputArgs,
 }
 
 #[derive(Debug, clap::Args)]
@@ -124,9 +177,136 @@ fn dispatch(command: Command) -> anyhow::Result<u8> {
         Command::Verify(args) => {
             let options = compare_options(&args.output)?;
             let report = posconform::verify::verify(&args.vectors, &args.results, &options)?;
-            finish(&report, &args.output)
+            finish(&report, &args.output, "")
+        }
+        Command::Check(args) => check(args),
+        Command::Demo { fuzz, seed } => demo(fuzz, seed),
+        Command::DemoKernel => {
+            let stdin = std::io::stdin().lock();
+            let stdout = std::io::stdout().lock();
+            posconform::kernel::protocol::serve(&mut posconform::demo::TernKernel, stdin, stdout)?;
+            Ok(0)
         }
     }
+}
+
+fn check(args: CheckArgs) -> anyhow::Result<u8> {
+    let compare = compare_options(&args.output)?;
+    if !(args.timeout.is_finite() && args.timeout > 0.0) {
+        bail!(
+            "--timeout must be a positive number of seconds, given {}",
+            args.timeout
+        );
+    }
+    let cases = if args.case.is_empty() {
+        suite(&args.suite)?
+    } else {
+        args.case
+            .iter()
+            .map(|p| posconform::vector::VectorFile::read(p).map(|v| v.case))
+            .collect::<Result<Vec<_>, _>>()?
+    };
+    let fuzz_cases = args
+        .fuzz
+        .unwrap_or(if args.case.is_empty() { 200 } else { 0 });
+    let fuzz_time = match args.fuzz_time {
+        Some(t) if !(t.is_finite() && t >= 0.0) => {
+            bail!("--fuzz-time must be a number of seconds >= 0, given {t}")
+        }
+        Some(t) => Some(std::time::Duration::from_secs_f64(t)),
+        None => None,
+    };
+    let argv = posconform::kernel::stdio::split_command(&args.kernel)?;
+    let mut kernel = posconform::kernel::stdio::StdioKernel::new(
+        argv,
+        std::time::Duration::from_secs_f64(args.timeout),
+    );
+    if let Some(log) = &args.kernel_log {
+        kernel = kernel.with_log(log.clone());
+    }
+    let options = posconform::check::CheckOptions {
+        compare,
+        fuzz_cases,
+        fuzz_time,
+        seed: args.seed,
+        save_dir: Some(args.save_failures.clone()),
+        ..Default::default()
+    };
+    let outcome = run_check(&mut kernel, &cases, &options, args.quiet)?;
+    let extra = report::text::render_minimal(&outcome.minimal);
+    finish(&outcome.report, &args.output, &extra)
+}
+
+fn run_check(
+    kernel: &mut dyn posconform::kernel::Kernel,
+    cases: &[posconform::case::Case],
+    options: &posconform::check::CheckOptions,
+    quiet: bool,
+) -> anyhow::Result<posconform::check::CheckOutcome> {
+    use std::io::IsTerminal as _;
+    let bar = if quiet || !std::io::stderr().is_terminal() {
+        indicatif::ProgressBar::hidden()
+    } else {
+        let bar = indicatif::ProgressBar::new(0);
+        bar.set_style(
+            indicatif::ProgressStyle::with_template("{prefix:>7} [{bar:30}] {pos}/{len} {elapsed}")
+                .expect("valid template")
+                .progress_chars("=> "),
+        );
+        bar
+    };
+    let started = std::time::Instant::now();
+    let mut progress = |phase: &str, done: usize, total: usize| {
+        // Nothing is drawn for runs that finish within a second.
+        if started.elapsed() < std::time::Duration::from_secs(1) {
+            return;
+        }
+        bar.set_prefix(phase.to_string());
+        bar.set_length(total as u64);
+        bar.set_position(done as u64);
+    };
+    let outcome = posconform::check::check(kernel, cases, options, &mut progress);
+    bar.finish_and_clear();
+    Ok(outcome?)
+}
+
+fn demo(fuzz: usize, seed: u64) -> anyhow::Result<u8> {
+    let exe = std::env::current_exe()
+        .context("finding the posconform executable to start the demo kernel")?;
+    println!(
+        "Demo: Brightwater Audio (a fictional team) is porting Kestrel-XL, a streaming captioning\n\
+         model with Transformer-XL relative attention and segment memory, to their Tern runtime.\n\
+         Their fused kernel passed every single-segment test they wrote. posconform starts it as a\n\
+         child process and checks it over the stdio protocol, exactly as it would check yours.\n"
+    );
+    let argv = vec![exe.display().to_string(), "__demo-kernel".to_string()];
+    let mut kernel =
+        posconform::kernel::stdio::StdioKernel::new(argv, std::time::Duration::from_secs(30));
+    let save = std::env::temp_dir().join("posconform-demo-failures");
+    let options = posconform::check::CheckOptions {
+        fuzz_cases: fuzz,
+        seed,
+        save_dir: Some(save),
+        ..Default::default()
+    };
+    let outcome = run_check(&mut kernel, &suite("core")?, &options, false)?;
+    let mut out = std::io::stdout().lock();
+    out.write_all(report::text::render(&outcome.report).as_bytes())?;
+    out.write_all(report::text::render_minimal(&outcome.minimal).as_bytes())?;
+    let code = outcome.report.exit_code();
+    writeln!(
+        out,
+        "\nWhat this shows: cases without memory (M = 0) pass and every case with memory fails; in the\n\
+         stream the errors begin at the second segment, and the minimal case needs just one memory key.\n\
+         The kernel's causal mask is not offset by the memory length M (DESIGN.md section 5, fault 8):\n\
+         it lets query i see keys j <= i instead of j <= M + i. A real `posconform check` would exit\n\
+         {code} here; the demo exits 0 because it found the bug it was built to show."
+    )?;
+    Ok(if code == report::EXIT_NONCONFORMING {
+        0
+    } else {
+        report::EXIT_COULD_NOT_RUN
+    })
 }
 
 fn compare_options(args: &OutputArgs) -> anyhow::Result<CompareOptions> {
@@ -221,8 +401,9 @@ fn remove_stale(dir: &Path, written: &[PathBuf]) -> anyhow::Result<usize> {
     Ok(removed)
 }
 
-/// Prints the report, writes the requested files, and returns the exit code.
-fn finish(report: &Report, args: &OutputArgs) -> anyhow::Result<u8> {
+/// Prints the report (text followed by `extra`), writes the requested files, and
+/// returns the exit code.
+fn finish(report: &Report, args: &OutputArgs, extra: &str) -> anyhow::Result<u8> {
     // Files first: a broken pipe on stdout must not lose them.
     if let Some(path) = &args.junit {
         write_atomic(path, report::junit::render(report).as_bytes())?;
@@ -243,7 +424,7 @@ fn finish(report: &Report, args: &OutputArgs) -> anyhow::Result<u8> {
         }
     }
     let text = match args.format {
-        Format::Text => report::text::render(report),
+        Format::Text => report::text::render(report) + extra,
         Format::Json => report::json::render(report),
     };
     let mut stdout = std::io::stdout().lock();

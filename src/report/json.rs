@@ -226,6 +226,7 @@ enum PatternDocument {
     MemoryColumnsOnly,
     DistanceBand { from: i64, to: i64 },
     GrowsWithPosition { ratio: Real },
+    VisibleKeysMasked { count: usize, top_left: bool },
     BeginsAtRow { row: usize },
 }
 
@@ -237,6 +238,9 @@ impl From<&Pattern> for PatternDocument {
             Pattern::DistanceBand { from, to } => PatternDocument::DistanceBand { from, to },
             Pattern::GrowsWithPosition { ratio } => {
                 PatternDocument::GrowsWithPosition { ratio: Real(ratio) }
+            }
+            Pattern::VisibleKeysMasked { count, top_left } => {
+                PatternDocument::VisibleKeysMasked { count, top_left }
             }
             Pattern::BeginsAtRow { row } => PatternDocument::BeginsAtRow { row },
         }

@@ -23,7 +23,7 @@
 use std::fmt::Write as _;
 
 use super::Report;
-use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
+use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Verdict};
 
 /// Renders `report` as a JUnit XML document ending in a newline.
 pub fn render(report: &Report) -> String {
@@ -233,7 +233,11 @@ fn failure_body(case: &CaseReport) -> String {
             let _ = writeln!(body, "masking: {}", describe_masking(masking));
         }
         if !worst.patterns.is_empty() {
-            let patterns: Vec<String> = worst.patterns.iter().map(describe_pattern).collect();
+            let patterns: Vec<String> = worst
+                .patterns
+                .iter()
+                .map(|p| crate::report::text::describe_pattern(case, p))
+                .collect();
             let _ = writeln!(body, "patterns: {}", patterns.join("; "));
         }
     }
@@ -263,26 +267,6 @@ fn describe_masking(masking: Masking) -> String {
         Masking::Sentinel { value } => format!("finite sentinel {}", number(value)),
         Masking::Leak { count: 1 } => "1 masked entry carries probability".to_string(),
         Masking::Leak { count } => format!("{count} masked entries carry probability"),
-    }
-}
-
-fn describe_pattern(pattern: &Pattern) -> String {
-    match pattern {
-        Pattern::MaskedEntriesOnly => "only masked entries are wrong".to_string(),
-        Pattern::MemoryColumnsOnly => "only memory keys (j < M) are wrong".to_string(),
-        Pattern::DistanceBand { from, to } if from == to => {
-            format!("errors at distance M + i - j = {from} only")
-        }
-        Pattern::DistanceBand { from, to } => {
-            format!("errors at distances M + i - j in {from}..={to} only")
-        }
-        Pattern::GrowsWithPosition { ratio } => {
-            format!(
-                "error grows with position ({}x from first to last third)",
-                number(*ratio)
-            )
-        }
-        Pattern::BeginsAtRow { row } => format!("rows before {row} are within budget"),
     }
 }
 

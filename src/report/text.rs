@@ -87,6 +87,14 @@ pub fn describe_pattern(case: &CaseReport, p: &Pattern) -> String {
         Pattern::GrowsWithPosition { ratio } => {
             format!("the error grows with position (last third {ratio:.1}x the first)")
         }
+        Pattern::VisibleKeysMasked { count, top_left: true } => format!(
+            "{count} visible {} masked, exactly keys i < j <= M + i in every row: the causal mask is aligned \
+             top-left (j <= i) instead of offset by the memory (j <= M + i)",
+            if *count == 1 { "key is" } else { "keys are" }
+        ),
+        Pattern::VisibleKeysMasked { count, top_left: false } => {
+            format!("{count} {} the query must see masked", if *count == 1 { "key is" } else { "keys are" })
+        }
         Pattern::BeginsAtRow { row } => {
             let segment = if case.operation == "stream" && case.query_len > 0 {
                 format!(" (segment {})", row / case.query_len)
@@ -125,7 +133,16 @@ pub fn render(report: &Report) -> String {
         "  {:<7} {:<width$}  {:<8} {:>10} {:>10} {:>9}  decided by",
         "verdict", "case", "output", "max abs", "tolerance", "max ulp"
     );
+    // Skipped cases are summarised per reason so they do not bury the findings.
+    let mut skipped: Vec<(&str, Vec<&str>)> = Vec::new();
     for case in &report.cases {
+        if let Verdict::Skipped(reason) = &case.verdict {
+            match skipped.iter_mut().find(|(r, _)| r == reason) {
+                Some((_, ids)) => ids.push(&case.case),
+                None => skipped.push((reason, vec![&case.case])),
+            }
+            continue;
+        }
         match (&case.verdict, worst_output(case)) {
             (Verdict::Pass | Verdict::Fail, Some(o)) => {
                 let _ = writeln!(
@@ -159,6 +176,16 @@ pub fn render(report: &Report) -> String {
             }
         }
     }
+    for (reason, ids) in &skipped {
+        let noun = if ids.len() == 1 { "case" } else { "cases" };
+        let _ = writeln!(
+            s,
+            "  {:<7} {} {noun}: {reason} ({})",
+            "skip",
+            ids.len(),
+            few(ids)
+        );
+    }
     let findings: Vec<&CaseReport> = report
         .cases
         .iter()
@@ -170,16 +197,23 @@ pub fn render(report: &Report) -> String {
             findings_of(&mut s, case);
         }
     }
-    let warned: Vec<&CaseReport> = report
-        .cases
-        .iter()
-        .filter(|c| !c.warnings.is_empty())
-        .collect();
-    if !warned.is_empty() {
+    // The same warning on many cases is printed once, with the cases it concerns.
+    let mut warnings: Vec<(&str, Vec<&str>)> = Vec::new();
+    for case in &report.cases {
+        for w in &case.warnings {
+            match warnings.iter_mut().find(|(text, _)| text == w) {
+                Some((_, ids)) => ids.push(&case.case),
+                None => warnings.push((w, vec![&case.case])),
+            }
+        }
+    }
+    if !warnings.is_empty() {
         let _ = writeln!(s, "\nWarnings (read before trusting a pass)");
-        for case in warned {
-            for w in &case.warnings {
-                let _ = writeln!(s, "  {}: {w}", case.case);
+        for (w, ids) in &warnings {
+            if ids.len() == 1 {
+                let _ = writeln!(s, "  {}: {w}", ids[0]);
+            } else {
+                let _ = writeln!(s, "  {} cases ({}): {w}", ids.len(), few(ids));
             }
         }
     }
@@ -206,6 +240,16 @@ pub fn render(report: &Report) -> String {
         report.exit_code()
     );
     s
+}
+
+/// Up to three ids, then how many more.
+fn few(ids: &[&str]) -> String {
+    let shown = ids.iter().take(3).copied().collect::<Vec<_>>().join(", ");
+    if ids.len() > 3 {
+        format!("{shown} and {} more", ids.len() - 3)
+    } else {
+        shown
+    }
 }
 
 fn first_line(text: &str) -> &str {
@@ -293,4 +337,67 @@ fn findings_of(s: &mut String, case: &CaseReport) {
             let _ = writeln!(s, "      masking: {}", describe_masking(m));
         }
     }
+}
+
+/// The minimal failing cases found by fuzzing, with the parameters that matter.
+pub fn render_minimal(minimal: &[crate::check::MinimalFailure]) -> String {
+    let mut s = String::new();
+    if minimal.is_empty() {
+        return s;
+    }
+    let _ = writeln!(s, "\nMinimal failing cases (shrunk from random cases)");
+    for m in minimal {
+        let c = &m.case;
+        let op = match &c.operation {
+            crate::case::Operation::Stream { tokens } => format!("stream over {tokens} tokens"),
+            crate::case::Operation::Decode {
+                tokens,
+                prefill,
+                chunks,
+            } => format!("decode of {tokens} tokens, prefill {prefill}, chunks {chunks:?}"),
+            other => other.name().to_string(),
+        };
+        let _ = writeln!(
+            s,
+            "  {}: {} {op}, H = {}, L = {}, M = {}, d = {}, p0 = {}, {} (shrunk from {} in {} tries)",
+            c.id,
+            c.scheme.scheme().name(),
+            c.heads,
+            c.query_len,
+            c.memory_len,
+            c.head_dim,
+            c.query_start,
+            c.dtype,
+            m.found,
+            m.tried
+        );
+        let _ = writeln!(
+            s,
+            "    scheme parameters: {}",
+            serde_json::to_string(&c.scheme).unwrap_or_default()
+        );
+        for o in m.report.outputs.iter().filter(|o| !o.passed) {
+            if let Some(idx) = &o.worst {
+                let _ = writeln!(
+                    s,
+                    "    {}: worst at {}: got {:.6e}, expected {:.6e}",
+                    o.name,
+                    describe_index(&m.report, &o.name, idx),
+                    o.worst_got,
+                    o.worst_expected
+                );
+            }
+            for p in &o.patterns {
+                let _ = writeln!(s, "    where: {}", describe_pattern(&m.report, p));
+            }
+        }
+        if let Some(path) = &m.saved {
+            let _ = writeln!(
+                s,
+                "    saved: {} (replay: posconform check --kernel ... --case {0})",
+                path.display()
+            );
+        }
+    }
+    s
 }

@@ -1,0 +1,680 @@
+//! Checking a live kernel: the suite, then property fuzzing on random shapes, and
+//! shrinking of each failure to a minimal failing case.
+//!
+//! Everything is deterministic given the seed (and a deterministic kernel). A kernel
+//! that crashes, hangs or breaks the protocol costs one case (reported as an error) and
+//! a restart; after `max_consecutive_errors` such cases in a row the run stops and the
+//! remaining cases are reported as not run. Finished results are never dropped.
+
+use std::path::PathBuf;
+use std::time::{Duration, Instant};
+
+use crate::attention::Scale;
+use crate::case::{Arrays, Case, Operation, SchemeSpec};
+use crate::compare::{compare, CaseReport, CompareOptions, Verdict};
+use crate::error::Result;
+use crate::generate::Stream;
+use crate::kernel::{Answer, Kernel, KernelInfo};
+use crate::precision::Dtype;
+use crate::reference;
+use crate::report::Report;
+use crate::scheme::rotary::{Pairing, RotaryScaling};
+use crate::scheme::sinusoidal::SinusoidLayout;
+use crate::scheme::Scheme;
+use crate::tensor::Tensor;
+use crate::vector::VectorFile;
+
+/// How to check a kernel.
+#[derive(Debug, Clone)]
+pub struct CheckOptions {
+    /// Budget options.
+    pub compare: CompareOptions,
+    /// Random cases to try after the suite (0: no fuzzing).
+    pub fuzz_cases: usize,
+    /// Stop fuzzing after this long, whatever the count.
+    pub fuzz_time: Option<Duration>,
+    /// Seed of the fuzzer.
+    pub seed: u64,
+    /// Kernel failures in a row after which the run stops.
+    pub max_consecutive_errors: usize,
+    /// Kernel runs the shrinker may spend on one failure.
+    pub shrink_budget: usize,
+    /// Where minimal failing cases are saved as vector files.
+    pub save_dir: Option<PathBuf>,
+}
+
+impl Default for CheckOptions {
+    fn default() -> Self {
+        CheckOptions {
+            compare: CompareOptions::default(),
+            fuzz_cases: 200,
+            fuzz_time: None,
+            seed: 0x5eed,
+            max_consecutive_errors: 3,
+            shrink_budget: 300,
+            save_dir: None,
+        }
+    }
+}
+
+/// A failure found by fuzzing, shrunk.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct MinimalFailure {
+    /// The random case that failed first.
+    pub found: String,
+    /// The smallest case that still fails.
+    pub case: Case,
+    /// Its report.
+    pub report: CaseReport,
+    /// How many smaller cases the shrinker tried.
+    pub tried: usize,
+    /// Where it was saved, if it was.
+    pub saved: Option<PathBuf>,
+}
+
+/// What fuzzing did.
+#[derive(Debug, Clone, Copy, PartialEq, Default, serde::Serialize)]
+pub struct FuzzSummary {
+    /// Random cases run.
+    pub cases: usize,
+    /// Of which over budget.
+    pub failed: usize,
+    /// Of which the kernel could not answer.
+    pub errors: usize,
+    /// Of which the kernel declined.
+    pub skipped: usize,
+    /// Wall time of the fuzzing phase (shrinking included).
+    pub seconds: f64,
+}
+
+/// The result of a check run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CheckOutcome {
+    /// The kernel's handshake.
+    pub info: KernelInfo,
+    /// The suite's and fuzzing's case reports (fuzz failures appear shrunk).
+    pub report: Report,
+    /// Fuzzing statistics, when fuzzing ran.
+    pub fuzz: Option<FuzzSummary>,
+    /// Minimal failing cases, one per scheme and operation that failed under fuzzing.
+    pub minimal: Vec<MinimalFailure>,
+}
+
+/// Progress of a run: `(phase, done, total)`; total 0 when unknown.
+pub type ProgressFn<'a> = dyn FnMut(&str, usize, usize) + 'a;
+
+/// Runs one case and compares; never fails (problems become the verdict). The second
+/// value says whether the kernel itself failed (so it needs a restart).
+pub fn run_case(
+    kernel: &mut dyn Kernel,
+    info: &KernelInfo,
+    case: &Case,
+    options: &CompareOptions,
+) -> (CaseReport, bool) {
+    if !info.supports(case) {
+        let scheme = case.scheme.scheme();
+        let reason = if info.supports.iter().any(|s| s.scheme == scheme) {
+            format!(
+                "the kernel does not list {} {}",
+                scheme.name(),
+                case.operation.name()
+            )
+        } else {
+            format!("the kernel does not implement {}", scheme.name())
+        };
+        return (CaseReport::skipped(case, reason), false);
+    }
+    let dtype = info.dtype_for(case);
+    let inputs = match case.inputs() {
+        Ok(i) => i,
+        Err(e) => {
+            return (
+                CaseReport::error(case, format!("cannot build inputs: {e}")),
+                false,
+            )
+        }
+    };
+    let expected = match reference::expected(case, &inputs) {
+        Ok(e) => e,
+        Err(e) => {
+            return (
+                CaseReport::error(case, format!("reference failed: {e}")),
+                false,
+            )
+        }
+    };
+    let sent: Arrays = inputs
+        .iter()
+        .map(|(n, t)| {
+            let t = if t.dtype().is_float() {
+                Tensor::from_f64(dtype, t.view().to_owned())
+            } else {
+                t.clone()
+            };
+            (n.clone(), t)
+        })
+        .collect();
+    match kernel.run(case, dtype, &sent) {
+        Err(e) => (CaseReport::error(case, e.to_string()), true),
+        Ok(Answer::Unsupported(reason)) => (
+            CaseReport::skipped(case, format!("the kernel declined: {reason}")),
+            false,
+        ),
+        Ok(Answer::Outputs { outputs, .. }) => {
+            let mut report = match compare(case, &inputs, &expected, &outputs, options) {
+                Ok(r) => r,
+                Err(e) => {
+                    return (
+                        CaseReport::error(case, format!("comparison failed: {e}")),
+                        false,
+                    )
+                }
+            };
+            if dtype != case.dtype {
+                // Replaces compare's generic note with the reason the dtypes differ.
+                report
+                    .warnings
+                    .retain(|w| !w.starts_with("the case is written for"));
+                report.warnings.insert(
+                    0,
+                    format!("the case is written for {}, which the kernel does not list; it was run in {dtype}", case.dtype),
+                );
+            }
+            (report, false)
+        }
+    }
+}
+
+/// Runs cases with restarts and the consecutive-failure stop. Returns the reports and
+/// whether the run was stopped early.
+struct Runner<'k> {
+    kernel: &'k mut dyn Kernel,
+    info: KernelInfo,
+    consecutive: usize,
+    limit: usize,
+    stopped: Option<String>,
+    notes: Vec<String>,
+}
+
+impl Runner<'_> {
+    fn run(&mut self, case: &Case, options: &CompareOptions) -> CaseReport {
+        if let Some(why) = &self.stopped {
+            return CaseReport::error(case, format!("not run: {why}"));
+        }
+        let (report, kernel_failed) = run_case(self.kernel, &self.info, case, options);
+        if kernel_failed {
+            self.consecutive += 1;
+            if self.consecutive >= self.limit {
+                self.stopped = Some(format!(
+                    "the kernel failed {} cases in a row; the run stopped",
+                    self.consecutive
+                ));
+                self.notes.push(self.stopped.clone().expect("just set"));
+            } else if let Err(e) = self.kernel.restart() {
+                self.notes.push(format!(
+                    "restarting the kernel after case {} failed: {e}",
+                    case.id
+                ));
+                self.stopped = Some(format!("the kernel could not be restarted: {e}"));
+            } else {
+                self.notes
+                    .push(format!("the kernel was restarted after case {}", case.id));
+            }
+        } else {
+            self.consecutive = 0;
+        }
+        report
+    }
+}
+
+/// Checks `kernel` on `cases`, then fuzzes and shrinks as `options` say.
+pub fn check(
+    kernel: &mut dyn Kernel,
+    cases: &[Case],
+    options: &CheckOptions,
+    progress: &mut ProgressFn<'_>,
+) -> Result<CheckOutcome> {
+    let info = kernel.describe()?;
+    let mut runner = Runner {
+        kernel,
+        info: info.clone(),
+        consecutive: 0,
+        limit: options.max_consecutive_errors.max(1),
+        stopped: None,
+        notes: Vec::new(),
+    };
+    let mut report = Report {
+        mode: "check".into(),
+        subject: format!("{} {}", info.name, info.version).trim().to_string(),
+        cases: Vec::new(),
+        notes: Vec::new(),
+    };
+    for (n, case) in cases.iter().enumerate() {
+        progress("suite", n, cases.len());
+        report.cases.push(runner.run(case, &options.compare));
+    }
+    progress("suite", cases.len(), cases.len());
+    let mut fuzz = None;
+    let mut minimal = Vec::new();
+    if options.fuzz_cases > 0 && runner.stopped.is_none() {
+        let (summary, found) = fuzz_and_shrink(&mut runner, options, progress);
+        report.notes.push(format!(
+            "fuzzing: {} random cases ({} over budget, {} errors, {} declined) in {:.1} s, {:.1} cases/s (seed {})",
+            summary.cases,
+            summary.failed,
+            summary.errors,
+            summary.skipped,
+            summary.seconds,
+            summary.cases as f64 / summary.seconds.max(1e-9),
+            options.seed
+        ));
+        for m in &found {
+            report.cases.push(m.report.clone());
+        }
+        fuzz = Some(summary);
+        minimal = found;
+    }
+    report.notes.extend(runner.notes);
+    Ok(CheckOutcome {
+        info,
+        report,
+        fuzz,
+        minimal,
+    })
+}
+
+fn fuzz_and_shrink(
+    runner: &mut Runner<'_>,
+    options: &CheckOptions,
+    progress: &mut ProgressFn<'_>,
+) -> (FuzzSummary, Vec<MinimalFailure>) {
+    let started = Instant::now();
+    let mut stream = Stream::new(options.seed);
+    let mut summary = FuzzSummary::default();
+    let mut minimal: Vec<MinimalFailure> = Vec::new();
+    let supported: Vec<(Scheme, Operation)> = runner
+        .info
+        .supports
+        .iter()
+        .flat_map(|s| {
+            s.operations
+                .iter()
+                .filter_map(move |o| operation_named(o).map(|op| (s.scheme, op)))
+        })
+        .collect();
+    if supported.is_empty() {
+        return (summary, minimal);
+    }
+    for n in 0..options.fuzz_cases {
+        if options
+            .fuzz_time
+            .is_some_and(|limit| started.elapsed() >= limit)
+            || runner.stopped.is_some()
+        {
+            break;
+        }
+        progress("fuzz", n, options.fuzz_cases);
+        let (scheme, op) = supported[stream.below(supported.len() as u64) as usize].clone();
+        let Some(case) = random_case(&mut stream, scheme, op, &runner.info.dtypes, n) else {
+            continue;
+        };
+        let report = runner.run(&case, &options.compare);
+        summary.cases += 1;
+        match report.verdict {
+            Verdict::Fail => {
+                summary.failed += 1;
+                let key = (case.scheme.scheme(), case.operation.name());
+                if !minimal
+                    .iter()
+                    .any(|m| (m.case.scheme.scheme(), m.case.operation.name()) == key)
+                {
+                    progress("shrink", 0, 0);
+                    let mut m = shrink(runner, &case, report, options);
+                    if let Some(dir) = &options.save_dir {
+                        match VectorFile::build(&m.case, options.compare.factor)
+                            .and_then(|v| v.write(dir))
+                        {
+                            Ok(files) => m.saved = files.last().cloned(),
+                            Err(e) => runner
+                                .notes
+                                .push(format!("could not save minimal case {}: {e}", m.case.id)),
+                        }
+                    }
+                    minimal.push(m);
+                }
+            }
+            Verdict::Error(_) => summary.errors += 1,
+            Verdict::Skipped(_) => summary.skipped += 1,
+            Verdict::Pass => {}
+        }
+    }
+    progress("fuzz", options.fuzz_cases, options.fuzz_cases);
+    summary.seconds = started.elapsed().as_secs_f64();
+    (summary, minimal)
+}
+
+fn operation_named(name: &str) -> Option<Operation> {
+    Some(match name {
+        "encode" => Operation::Encode,
+        "scores" => Operation::Scores,
+        "attention" => Operation::Attention,
+        "stream" => Operation::Stream { tokens: 1 },
+        "decode" => Operation::Decode {
+            tokens: 2,
+            prefill: 1,
+            chunks: vec![1],
+        },
+        _ => return None,
+    })
+}
+
+fn pick<T: Clone>(stream: &mut Stream, items: &[T]) -> T {
+    items[stream.below(items.len() as u64) as usize].clone()
+}
+
+fn range(stream: &mut Stream, lo: usize, hi: usize) -> usize {
+    lo + stream.below((hi - lo + 1) as u64) as usize
+}
+
+/// A random valid case of `scheme` and `operation` (None after a few invalid draws).
+pub fn random_case(
+    stream: &mut Stream,
+    scheme: Scheme,
+    operation: Operation,
+    dtypes: &[Dtype],
+    n: usize,
+) -> Option<Case> {
+    let floats: Vec<Dtype> = dtypes.iter().copied().filter(|d| d.is_float()).collect();
+    for _ in 0..20 {
+        let heads = if scheme == Scheme::Alibi {
+            range(stream, 1, 12)
+        } else {
+            range(stream, 1, 3)
+        };
+        let query_len = range(stream, 1, 9);
+        let memory_len = if stream.below(4) == 0 {
+            0
+        } else {
+            range(stream, 1, 14)
+        };
+        let head_dim = 2 * range(stream, 1, 8);
+        let far = stream.below(2) == 0;
+        let query_start = if far {
+            range(stream, 100, 100_000) as i64
+        } else {
+            range(stream, 0, 40) as i64
+        };
+        let operation = match &operation {
+            Operation::Stream { .. } => Operation::Stream {
+                tokens: query_len * range(stream, 1, 3) + range(stream, 0, query_len - 1),
+            },
+            Operation::Decode { .. } => {
+                let tokens = range(stream, 2, 16);
+                let prefill = range(stream, 1, tokens - 1);
+                let mut left = tokens - prefill;
+                let mut chunks = Vec::new();
+                while left > 0 {
+                    let c = range(stream, 1, left.min(4));
+                    chunks.push(c);
+                    left -= c;
+                }
+                Operation::Decode {
+                    tokens,
+                    prefill,
+                    chunks,
+                }
+            }
+            other => other.clone(),
+        };
+        let key_len = memory_len + query_len;
+        let spec = match scheme {
+            Scheme::Sinusoidal => SchemeSpec::Sinusoidal {
+                base: 10_000.0,
+                layout: pick(
+                    stream,
+                    &[SinusoidLayout::Interleaved, SinusoidLayout::Concatenated],
+                ),
+            },
+            Scheme::Learned => SchemeSpec::Learned {
+                max_positions: query_start as usize + key_len * 4 + 8,
+            },
+            Scheme::XlRelative => SchemeSpec::XlRelative {
+                scale: if stream.below(3) == 0 {
+                    Scale::Fixed(0.25)
+                } else {
+                    Scale::InverseSqrtDim
+                },
+                clamp_len: if stream.below(3) == 0 {
+                    Some(range(stream, 0, key_len))
+                } else {
+                    None
+                },
+            },
+            Scheme::Rotary => {
+                let rotary_dim = if stream.below(3) == 0 {
+                    2 * range(stream, 1, head_dim / 2)
+                } else {
+                    head_dim
+                };
+                let scaling = match stream.below(4) {
+                    0 => RotaryScaling::LinearInterpolation {
+                        factor: range(stream, 2, 8) as f64,
+                    },
+                    1 if rotary_dim > 2 => RotaryScaling::NtkAware {
+                        factor: range(stream, 2, 8) as f64,
+                    },
+                    _ => RotaryScaling::None,
+                };
+                SchemeSpec::Rotary {
+                    rotary_dim,
+                    base: 10_000.0,
+                    pairing: pick(stream, &[Pairing::Adjacent, Pairing::HalfSplit]),
+                    scaling,
+                    scale: Scale::InverseSqrtDim,
+                }
+            }
+            Scheme::Alibi => SchemeSpec::Alibi {
+                scale: Scale::InverseSqrtDim,
+            },
+            Scheme::Bucketed => {
+                let num_buckets = pick(stream, &[8usize, 16, 32]);
+                SchemeSpec::Bucketed {
+                    num_buckets,
+                    max_distance: num_buckets * range(stream, 1, 4),
+                    bidirectional: stream.below(2) == 0,
+                    scale: Scale::Fixed(1.0),
+                }
+            }
+            Scheme::Clipped => SchemeSpec::Clipped {
+                clip_distance: range(stream, 1, 8),
+                scale: Scale::InverseSqrtDim,
+            },
+        };
+        let case = Case {
+            id: format!("fuzz.{n:04}.{}.{}", scheme.name(), operation.name()),
+            scheme: spec,
+            operation,
+            heads,
+            query_len,
+            memory_len,
+            head_dim,
+            query_start,
+            hidden_keys: Vec::new(),
+            dtype: if floats.is_empty() {
+                Dtype::F64
+            } else {
+                pick(stream, &floats)
+            },
+            seed: stream.below(u64::MAX),
+            faults: Vec::new(),
+            purpose: "random case from the fuzzer".into(),
+        };
+        if case.validate().is_ok() {
+            return Some(case);
+        }
+    }
+    None
+}
+
+/// Smaller variants of `case`, most aggressive first, all valid.
+fn smaller(case: &Case) -> Vec<Case> {
+    let mut out = Vec::new();
+    let mut push = |f: &dyn Fn(&mut Case)| {
+        let mut c = case.clone();
+        f(&mut c);
+        if c != *case && c.validate().is_ok() {
+            out.push(c);
+        }
+    };
+    let halves = |x: usize| [0, 1, x / 2, x.saturating_sub(1)];
+    for v in halves(case.memory_len) {
+        push(&|c| c.memory_len = v);
+    }
+    for v in halves(case.query_len) {
+        push(&|c| c.query_len = v.max(1));
+    }
+    for v in halves(case.heads) {
+        push(&|c| c.heads = v.max(1));
+    }
+    for v in [2, case.head_dim / 2, case.head_dim.saturating_sub(2)] {
+        push(&|c| {
+            c.head_dim = v.max(2) & !1;
+            if let SchemeSpec::Rotary { rotary_dim, .. } = &mut c.scheme {
+                *rotary_dim = (*rotary_dim).min(c.head_dim);
+            }
+        });
+    }
+    for v in [
+        0,
+        case.query_start / 2,
+        case.query_start - case.query_start.signum(),
+    ] {
+        push(&|c| c.query_start = v);
+    }
+    match &case.operation {
+        Operation::Stream { tokens } => {
+            for v in halves(*tokens) {
+                push(&|c| c.operation = Operation::Stream { tokens: v.max(1) });
+            }
+        }
+        Operation::Decode {
+            tokens,
+            prefill,
+            chunks,
+        } => {
+            let (tokens, prefill, chunks) = (*tokens, *prefill, chunks.clone());
+            if chunks.len() > 1 {
+                push(&|c| {
+                    let mut shorter = chunks.clone();
+                    let last = shorter.pop().unwrap_or(0);
+                    c.operation = Operation::Decode {
+                        tokens: tokens - last,
+                        prefill,
+                        chunks: shorter,
+                    };
+                });
+            }
+            if prefill > 1 {
+                push(&|c| {
+                    c.operation = Operation::Decode {
+                        tokens: tokens - prefill + 1,
+                        prefill: 1,
+                        chunks: chunks.clone(),
+                    }
+                });
+            }
+        }
+        _ => {}
+    }
+    match &case.scheme {
+        SchemeSpec::XlRelative { scale, clamp_len } => {
+            let (scale, clamp_len) = (*scale, *clamp_len);
+            push(&|c| {
+                c.scheme = SchemeSpec::XlRelative {
+                    scale,
+                    clamp_len: None,
+                }
+            });
+            push(&|c| {
+                c.scheme = SchemeSpec::XlRelative {
+                    scale: Scale::InverseSqrtDim,
+                    clamp_len,
+                }
+            });
+        }
+        SchemeSpec::Rotary { .. } => {
+            push(&|c| {
+                let d = c.head_dim;
+                if let SchemeSpec::Rotary { rotary_dim, .. } = &mut c.scheme {
+                    *rotary_dim = d;
+                }
+            });
+            push(&|c| {
+                if let SchemeSpec::Rotary { scaling, .. } = &mut c.scheme {
+                    *scaling = RotaryScaling::None;
+                }
+            });
+        }
+        _ => {}
+    }
+    out
+}
+
+/// How far a case is from the simplest one: element count, then distance of the
+/// positions from 0, then how many parameters differ from their plain defaults.
+fn complexity(case: &Case) -> (usize, i64, usize) {
+    let elements =
+        case.heads * case.tokens().max(case.query_len) * (case.key_len() + case.head_dim);
+    let extras = match &case.scheme {
+        SchemeSpec::XlRelative { scale, clamp_len } => {
+            (*scale != Scale::InverseSqrtDim) as usize + clamp_len.is_some() as usize
+        }
+        SchemeSpec::Rotary {
+            rotary_dim,
+            scaling,
+            ..
+        } => (*rotary_dim != case.head_dim) as usize + (*scaling != RotaryScaling::None) as usize,
+        _ => 0,
+    } + case.hidden_keys.len();
+    (elements, case.query_start.abs(), extras)
+}
+
+fn shrink(
+    runner: &mut Runner<'_>,
+    found: &Case,
+    report: CaseReport,
+    options: &CheckOptions,
+) -> MinimalFailure {
+    let mut best = found.clone();
+    let mut best_report = report;
+    let mut tried = 0;
+    'outer: loop {
+        for candidate in smaller(&best) {
+            if tried >= options.shrink_budget || runner.stopped.is_some() {
+                break 'outer;
+            }
+            if complexity(&candidate) >= complexity(&best) {
+                continue;
+            }
+            tried += 1;
+            let r = runner.run(&candidate, &options.compare);
+            if r.verdict == Verdict::Fail {
+                best = candidate;
+                best_report = r;
+                continue 'outer;
+            }
+        }
+        break;
+    }
+    let id = format!("{}.minimal", found.id);
+    best.id = id.clone();
+    best.purpose = format!("smallest failing case shrunk from {}", found.id);
+    best_report.case = id;
+    MinimalFailure {
+        found: found.id.clone(),
+        case: best,
+        report: best_report,
+        tried,
+        saved: None,
+    }
+}

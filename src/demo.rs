@@ -1,0 +1,159 @@
+//! The bundled demo kernel, in an invented scenario.
+//!
+//! Brightwater Audio (a fictional team) is porting Kestrel-XL, their streaming
+//! captioning model with Transformer-XL relative attention and segment memory, to their
+//! own runtime, Tern. Their fused attention kernel builds the causal mask the way a
+//! plain decoder does, `j <= i`, instead of offsetting it by the memory length,
+//! `j <= M + i` (DESIGN.md §5, fault class 8). On the first segment there is no memory,
+//! `M = 0`, and the two masks agree: every single-segment test they wrote passes. From
+//! the second segment on, each query sees only the oldest `i + 1` memory rows and none
+//! of its own segment. The model still trains; it is just worse.
+//!
+//! The kernel computes in f64 and answers in f32, as their runtime does.
+
+use ndarray::{s, Array3};
+
+use crate::attention::{attend, masked_softmax};
+use crate::case::{fixed, Arrays, Case, Operation, SchemeSpec};
+use crate::error::{Error, Result};
+use crate::kernel::{Answer, Kernel, KernelInfo, Support};
+use crate::precision::Dtype;
+use crate::scheme::xl_relative::{scores, RelativeInputs, RelativeParams};
+use crate::scheme::Scheme;
+use crate::tensor::Tensor;
+
+/// The demo team's kernel (see the module docs for the story and the bug).
+#[derive(Debug, Clone, Default)]
+pub struct TernKernel;
+
+fn get3(inputs: &Arrays, name: &str) -> Result<Array3<f64>> {
+    let t = inputs
+        .get(name)
+        .ok_or_else(|| Error::format("run request", format!("missing input `{name}`")))?;
+    fixed(name, t.view().to_owned())
+}
+
+impl TernKernel {
+    /// Relative attention of one window with the kernel's (wrong) top-left mask.
+    fn window(
+        &self,
+        params: &RelativeParams,
+        inputs: &Arrays,
+        q: ndarray::ArrayView3<'_, f64>,
+        k: ndarray::ArrayView3<'_, f64>,
+        v: ndarray::ArrayView3<'_, f64>,
+        hidden: &[usize],
+    ) -> Result<(Array3<f64>, Array3<f64>, Array3<f64>)> {
+        let (r, u, pos) = (
+            get3(inputs, "r")?,
+            fixed::<ndarray::Ix2>("content_bias", inputs["content_bias"].view().to_owned())?,
+            fixed::<ndarray::Ix2>("position_bias", inputs["position_bias"].view().to_owned())?,
+        );
+        let relative = RelativeInputs {
+            q: q.view(),
+            k: k.view(),
+            r: r.view(),
+            u: u.view(),
+            v: pos.view(),
+        };
+        let mut s = scores(&relative, params)?;
+        for mut head in s.outer_iter_mut() {
+            for (i, mut row) in head.outer_iter_mut().enumerate() {
+                // The bug: a decoder-style mask that ignores the memory in front.
+                row.slice_mut(s![i + 1..]).fill(f64::NEG_INFINITY);
+                for &j in hidden {
+                    row[j] = f64::NEG_INFINITY;
+                }
+            }
+        }
+        let probs = masked_softmax(s.view())?;
+        let out = attend(probs.view(), v)?;
+        Ok((s, probs, out))
+    }
+}
+
+impl Kernel for TernKernel {
+    fn describe(&mut self) -> Result<KernelInfo> {
+        Ok(KernelInfo {
+            name: "tern-fused-relattn (Brightwater Audio, Kestrel-XL port)".into(),
+            version: "0.9.2".into(),
+            supports: vec![Support {
+                scheme: Scheme::XlRelative,
+                operations: vec!["scores".into(), "attention".into(), "stream".into()],
+            }],
+            dtypes: vec![Dtype::F32],
+        })
+    }
+
+    fn run(&mut self, case: &Case, _dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
+        let SchemeSpec::XlRelative { scale, clamp_len } = &case.scheme else {
+            return Ok(Answer::Unsupported(
+                "Tern implements xl_relative only".into(),
+            ));
+        };
+        let params = RelativeParams {
+            scale: *scale,
+            clamp_len: *clamp_len,
+        };
+        let (q, k) = (get3(inputs, "q")?, get3(inputs, "k")?);
+        let mut outputs = Arrays::new();
+        let mut put = |name: &str, x: Array3<f64>| {
+            outputs.insert(name.into(), Tensor::from_f64(Dtype::F32, x.into_dyn()));
+        };
+        match &case.operation {
+            Operation::Scores => {
+                let v = Array3::zeros(k.raw_dim());
+                let (s, _, _) = self.window(
+                    &params,
+                    inputs,
+                    q.view(),
+                    k.view(),
+                    v.view(),
+                    &case.hidden_keys,
+                )?;
+                put("scores", s);
+            }
+            Operation::Attention => {
+                let v = get3(inputs, "v")?;
+                let (_, p, o) = self.window(
+                    &params,
+                    inputs,
+                    q.view(),
+                    k.view(),
+                    v.view(),
+                    &case.hidden_keys,
+                )?;
+                put("probs", p);
+                put("output", o);
+            }
+            Operation::Stream { tokens } => {
+                let v = get3(inputs, "v")?;
+                let mut out = Array3::zeros(q.raw_dim());
+                for start in (0..*tokens).step_by(case.query_len) {
+                    let end = (start + case.query_len).min(*tokens);
+                    let first = start.saturating_sub(case.memory_len);
+                    let (_, _, o) = self.window(
+                        &params,
+                        inputs,
+                        q.slice(s![.., start..end, ..]),
+                        k.slice(s![.., first..end, ..]),
+                        v.slice(s![.., first..end, ..]),
+                        &[],
+                    )?;
+                    out.slice_mut(s![.., start..end, ..]).assign(&o);
+                }
+                put("output", out);
+            }
+            other => {
+                return Ok(Answer::Unsupported(format!(
+                    "Tern has no `{}` entry point",
+                    other.name()
+                )))
+            }
+        }
+        Ok(Answer::Outputs {
+            outputs,
+            elapsed_ms: None,
+        })
+    }
+}

@@ -1,0 +1,160 @@
+//! Kernels under test: the `Kernel` trait, the in-process reference, the stdio client
+//! that drives a team's kernel over the protocol of docs/protocol.md, and the server
+//! side of that protocol for kernels written in Rust.
+//!
+//! The same checks run against every implementation of the trait.
+
+use crate::case::{Arrays, Case};
+use crate::error::Result;
+use crate::precision::Dtype;
+use crate::reference;
+use crate::scheme::Scheme;
+use crate::tensor::Tensor;
+
+pub mod protocol;
+pub mod stdio;
+
+/// One scheme and the operations a kernel implements for it.
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub struct Support {
+    /// The scheme.
+    pub scheme: Scheme,
+    /// Operation names (`encode`, `scores`, `attention`, `stream`, `decode`).
+    pub operations: Vec<String>,
+}
+
+/// What a kernel says about itself in the handshake.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct KernelInfo {
+    /// The kernel's name.
+    pub name: String,
+    /// The kernel's version.
+    pub version: String,
+    /// The schemes and operations it implements.
+    pub supports: Vec<Support>,
+    /// The dtypes it computes in, preferred first.
+    pub dtypes: Vec<Dtype>,
+}
+
+impl KernelInfo {
+    /// Whether the kernel lists the case's scheme and operation.
+    pub fn supports(&self, case: &Case) -> bool {
+        let scheme = case.scheme.scheme();
+        let operation = case.operation.name();
+        self.supports
+            .iter()
+            .any(|s| s.scheme == scheme && s.operations.iter().any(|o| o == operation))
+    }
+
+    /// The dtype to ask for: the case's own if listed, else the kernel's first.
+    pub fn dtype_for(&self, case: &Case) -> Dtype {
+        if self.dtypes.contains(&case.dtype) {
+            case.dtype
+        } else {
+            self.dtypes.first().copied().unwrap_or(Dtype::F64)
+        }
+    }
+}
+
+/// A kernel's answer to one case.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Answer {
+    /// The outputs, and the kernel's own timing when it gave one.
+    Outputs {
+        /// Named output arrays.
+        outputs: Arrays,
+        /// Milliseconds the kernel says the computation took.
+        elapsed_ms: Option<f64>,
+    },
+    /// The kernel does not implement this case.
+    Unsupported(String),
+}
+
+/// Something that computes cases: the reference, a planted-fault variant, or a team's
+/// kernel behind the stdio protocol.
+pub trait Kernel {
+    /// The handshake: what the kernel is and supports.
+    fn describe(&mut self) -> Result<KernelInfo>;
+
+    /// Computes one case in `dtype`. `Err` means the kernel could not answer (crash,
+    /// timeout, protocol violation); a wrong answer is `Ok` and judged by the caller.
+    fn run(&mut self, case: &Case, dtype: Dtype, inputs: &Arrays) -> Result<Answer>;
+
+    /// Brings the kernel back after an error (the stdio client starts a new process).
+    fn restart(&mut self) -> Result<()> {
+        Ok(())
+    }
+}
+
+/// The in-process reference: answers every case with the f64 oracle, or with the
+/// same-precision reference when asked for a narrower dtype.
+#[derive(Debug, Clone)]
+pub struct ReferenceKernel {
+    dtypes: Vec<Dtype>,
+}
+
+impl ReferenceKernel {
+    /// A reference computing in `dtypes` (preferred first).
+    pub fn new(dtypes: &[Dtype]) -> Self {
+        ReferenceKernel {
+            dtypes: dtypes.to_vec(),
+        }
+    }
+}
+
+impl Default for ReferenceKernel {
+    fn default() -> Self {
+        Self::new(&[Dtype::F64, Dtype::F32, Dtype::F16, Dtype::Bf16])
+    }
+}
+
+/// Every scheme with every operation.
+pub fn full_support() -> Vec<Support> {
+    Scheme::ALL
+        .iter()
+        .map(|&scheme| Support {
+            scheme,
+            operations: ["encode", "scores", "attention", "stream", "decode"]
+                .map(String::from)
+                .to_vec(),
+        })
+        .collect()
+}
+
+/// Outputs as tensors declared in `dtype` (integer outputs as i64).
+pub fn outputs_in(outputs: reference::Outputs, dtype: Dtype) -> Arrays {
+    outputs
+        .into_iter()
+        .map(|(name, values)| {
+            let dtype = if matches!(name.as_str(), "buckets" | "indices") {
+                Dtype::I64
+            } else {
+                dtype
+            };
+            (name, Tensor::from_f64(dtype, values))
+        })
+        .collect()
+}
+
+impl Kernel for ReferenceKernel {
+    fn describe(&mut self) -> Result<KernelInfo> {
+        Ok(KernelInfo {
+            name: "posconform reference".into(),
+            version: env!("CARGO_PKG_VERSION").into(),
+            supports: full_support(),
+            dtypes: self.dtypes.clone(),
+        })
+    }
+
+    fn run(&mut self, case: &Case, dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
+        let outputs = if dtype == Dtype::F64 {
+            reference::expected(case, inputs)?
+        } else {
+            reference::baseline(case, inputs, dtype)?
+        };
+        Ok(Answer::Outputs {
+            outputs: outputs_in(outputs, dtype),
+            elapsed_ms: None,
+        })
+    }
+}
