@@ -5,10 +5,10 @@
 //! Budgets (DESIGN.md §4), per output array, for the dtype the kernel declares:
 //! - *analytic*: the per-element bound of [`crate::reference::analytic_bounds`]
 //!   (scores and encoding tables);
-//! - *baseline*: `c × max(baseline error, γ_n · max|expected|)`, where the baseline
-//!   error is the largest deviation of the same-precision reference
-//!   ([`crate::reference::baseline`]) from the f64 oracle, and the `γ_n` floor keeps an
-//!   f64 budget from being zero (common practice: c = 2);
+//! - *baseline*: `c × max(baseline error, floor)`, where the baseline error is the
+//!   largest deviation of the same-precision reference ([`crate::reference::baseline`])
+//!   from the f64 oracle (common practice: c = 2), and the floor `sqrt(n)·u·max|expected|`
+//!   keeps an f64 budget from being zero;
 //! - *exact*: integer outputs (buckets, indices) must match exactly.
 //!
 //! An element is within budget when its error is at most the larger of its analytic
@@ -54,7 +54,7 @@ pub struct Budget {
     pub factor: f64,
     /// Largest deviation of the same-precision baseline from the oracle.
     pub baseline_error: f64,
-    /// `γ_n · max|expected|`.
+    /// `sqrt(n)·u·max|expected|` (u of the accumulation precision).
     pub floor: f64,
     /// Per-element analytic bound, where one exists.
     pub analytic: Option<ArrayD<f64>>,
@@ -104,6 +104,7 @@ pub fn budgets(
     let mut out = BTreeMap::new();
     for (name, want) in expected {
         let exact = matches!(name.as_str(), "buckets" | "indices");
+        let dtype = if exact { Dtype::I64 } else { dtype };
         let baseline_error = baseline
             .get(name)
             .map(|b| {
@@ -118,7 +119,12 @@ pub fn budgets(
             .iter()
             .filter(|x| x.is_finite())
             .fold(0.0f64, |m, x| m.max(x.abs()));
-        let floor = dtype.gamma(reference::reduction_length(case, name)) * largest;
+        // The worst case is the analytic bound's job; the floor only keeps an f64
+        // baseline budget (where the baseline is the oracle itself) from being zero, so
+        // it uses the probabilistic size sqrt(n)·u of a sum's rounding error (Higham and
+        // Mary 2019, from memory), in the accumulation precision.
+        let n = reference::reduction_length(case, name) as f64;
+        let floor = n.sqrt() * crate::precision::accumulation_gamma(dtype, 1) * largest;
         out.insert(
             name.clone(),
             Budget {

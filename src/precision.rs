@@ -164,6 +164,21 @@ pub fn ulp_distance(a: f64, b: f64, dtype: Dtype) -> f64 {
     (a - b).abs() / dtype.ulp(b)
 }
 
+/// `γ_n` for a reduction of `n` terms computed by a kernel of `dtype`, accumulating
+/// in f32 or wider (common practice in fused attention kernels: half-precision inputs,
+/// f32 accumulators). Once `n·u >= 1/2`, where the deterministic bound degrades, the
+/// probabilistic `sqrt(n)·u` (Higham and Mary 2019, "A new approach to probabilistic
+/// rounding error analysis", from memory) keeps it finite.
+pub fn accumulation_gamma(dtype: Dtype, n: usize) -> f64 {
+    let u = dtype.unit_roundoff().min(Dtype::F32.unit_roundoff());
+    let nu = n as f64 * u;
+    if nu < 0.5 {
+        nu / (1.0 - nu)
+    } else {
+        (n as f64).sqrt() * u
+    }
+}
+
 thread_local! {
     static PORTABLE: Cell<bool> = const { Cell::new(false) };
 }

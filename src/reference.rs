@@ -5,10 +5,12 @@
 //! - [`baseline`]: the same pipeline with inputs and every stage tensor (scores,
 //!   probabilities, outputs, tables) rounded to a dtype. A kernel computing honestly
 //!   in that dtype lands near it; the budget accepts `c ×` its error.
-//! - [`analytic_bounds`]: `(γ_n + 2u)·Σ|x_i y_i| + u·|result|` per score element
-//!   (Higham 2002, §3.1), plus the phase error of angles formed in f32 (the narrowest
+//! - [`analytic_bounds`]: per element, `(γ_n + 2u)·Σ|x_i y_i| + u·|result|` for scores
+//!   (Higham 2002, §3.1), with the phase error of angles formed in f32 (the narrowest
 //!   precision DESIGN.md §4 allows for `pos·θ`) for sinusoid, rotary and relative
-//!   tables. Probabilities and outputs have no analytic bound here; the baseline decides.
+//!   tables; probabilities and outputs carry the score bounds through the softmax
+//!   (see `window_bounds`). `γ_n` is taken in the accumulation precision: f32 or wider
+//!   ([`crate::precision::accumulation_gamma`]).
 
 use std::collections::BTreeMap;
 
@@ -17,7 +19,7 @@ use ndarray::{s, Array1, Array2, Array3, ArrayD, ArrayView3, Axis, Zip};
 use crate::attention::{attend, dot_scores, masked_softmax, Scale, Window};
 use crate::case::{fixed, input, Arrays, Case, Operation, SchemeSpec};
 use crate::error::Result;
-use crate::precision::{with_portable_arithmetic, Dtype};
+use crate::precision::{accumulation_gamma, with_portable_arithmetic, Dtype};
 use crate::scheme::{alibi, bucketed, clipped, learned, rotary, sinusoidal, xl_relative};
 
 /// Output arrays by name, in f64.
@@ -41,7 +43,7 @@ pub fn analytic_bounds(case: &Case, inputs: &Arrays, dtype: Dtype) -> Result<Out
 }
 
 /// The reduction length behind each output element, for the baseline's floor
-/// `γ_n · max|expected|`.
+/// `sqrt(n)·u·max|expected|`.
 pub fn reduction_length(case: &Case, output: &str) -> usize {
     let d = case.head_dim;
     match output {
@@ -252,15 +254,21 @@ impl<'a> Pipeline<'a> {
     }
 
     /// Outputs of one window from its probabilities (clipped adds value embeddings).
+    ///
+    /// With `absolute`, the value embeddings enter as `|w|` (for error magnitudes).
     fn window_output(
         &self,
         probs: &Array3<f64>,
         v: ArrayView3<'_, f64>,
         window: Window,
+        absolute: bool,
     ) -> Result<Array3<f64>> {
         let mut out = attend(probs.view(), v)?;
         if let SchemeSpec::Clipped { clip_distance, .. } = &self.case.scheme {
-            let w_value = self.get3("w_value")?;
+            let mut w_value = self.get3("w_value")?;
+            if absolute {
+                w_value.mapv_inplace(f64::abs);
+            }
             for ((h, i, j), &p) in probs.indexed_iter() {
                 if p != 0.0 {
                     let relative = j as i64 - (window.memory_len() + i) as i64;
@@ -288,7 +296,7 @@ impl<'a> Pipeline<'a> {
         }
         let scores = self.round(scores);
         let probs = self.round(masked_softmax(scores.view())?);
-        let output = self.round(self.window_output(&probs, v, window)?);
+        let output = self.round(self.window_output(&probs, v, window, false)?);
         Ok((scores, probs, output))
     }
 
@@ -422,7 +430,6 @@ impl<'a> Pipeline<'a> {
 
     fn bounds(&self, dtype: Dtype) -> Result<Outputs> {
         let case = self.case;
-        let u = dtype.unit_roundoff();
         let ua = angle_roundoff(dtype);
         let mut out = Outputs::new();
         match &case.operation {
@@ -433,21 +440,115 @@ impl<'a> Pipeline<'a> {
             }
             Operation::Scores => {
                 let (q, k) = (self.get3("q")?, self.get3("k")?);
-                let scores = self.window_scores(q.view(), k.view(), case.query_start)?;
-                let gamma = dtype.gamma(reduction_length(case, "scores")) + 2.0 * u;
-                let magnitude = self.score_magnitude(q.view(), k.view(), ua)?;
-                let bound = Zip::from(&magnitude).and(&scores).map_collect(|&m, &s| {
-                    if s.is_finite() {
-                        gamma * m + u * s.abs()
-                    } else {
-                        0.0
-                    }
-                });
+                let bound = self.score_bounds(q.view(), k.view(), case.query_start, dtype)?;
                 out.insert("scores".into(), bound.into_dyn());
             }
-            _ => {}
+            Operation::Attention => {
+                let (q, k, v) = (self.get3("q")?, self.get3("k")?, self.get3("v")?);
+                let (probs, output) =
+                    self.window_bounds(q.view(), k.view(), v.view(), case.query_start, dtype)?;
+                out.insert("probs".into(), probs.into_dyn());
+                out.insert("output".into(), output.into_dyn());
+            }
+            Operation::Stream { tokens } => {
+                let (q, k, v) = (self.get3("q")?, self.get3("k")?, self.get3("v")?);
+                let mut output = Array3::zeros((case.heads, *tokens, case.head_dim));
+                for start in (0..*tokens).step_by(case.query_len) {
+                    let end = (start + case.query_len).min(*tokens);
+                    let first_key = start.saturating_sub(case.memory_len);
+                    let (_, o) = self.window_bounds(
+                        q.slice(s![.., start..end, ..]),
+                        k.slice(s![.., first_key..end, ..]),
+                        v.slice(s![.., first_key..end, ..]),
+                        case.query_start + start as i64,
+                        dtype,
+                    )?;
+                    output.slice_mut(s![.., start..end, ..]).assign(&o);
+                }
+                out.insert("output".into(), output.into_dyn());
+            }
+            Operation::Decode { prefill, .. } => {
+                let (q, k, v) = (self.get3("q")?, self.get3("k")?, self.get3("v")?);
+                let (_, o) =
+                    self.window_bounds(q.view(), k.view(), v.view(), case.query_start, dtype)?;
+                out.insert(
+                    "output".into(),
+                    o.slice(s![.., *prefill.., ..]).to_owned().into_dyn(),
+                );
+            }
         }
         Ok(out)
+    }
+
+    /// Per-element bound on each visible score: `(γ_n + 2u)·magnitude + u·|s|`, with
+    /// `γ_n` in the accumulation precision and `u` the dtype's (inputs and the result
+    /// are rounded to it). 0 on hidden entries.
+    fn score_bounds(
+        &self,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        p0: i64,
+        dtype: Dtype,
+    ) -> Result<Array3<f64>> {
+        let u = dtype.unit_roundoff();
+        let scores = self.window_scores(q, k, p0)?;
+        let gamma = accumulation_gamma(dtype, reduction_length(self.case, "scores")) + 2.0 * u;
+        let magnitude = self.score_magnitude(q, k, p0, angle_roundoff(dtype))?;
+        Ok(Zip::from(&magnitude).and(&scores).map_collect(|&m, &s| {
+            if s.is_finite() {
+                gamma * m + u * s.abs()
+            } else {
+                0.0
+            }
+        }))
+    }
+
+    /// Bounds on probabilities and outputs of one window, propagated from the score
+    /// bounds: if every score of row `i` is off by at most `S_i`, each probability is
+    /// off by a factor within `e^(±2 S_i)`, i.e. by about `2 S_i · p_ij`; the softmax's
+    /// own exp, sum and division add `γ_(K+2)` relatively, the output's weighted sum
+    /// `γ_K · Σ_j p_ij |v_j|`, and each result is rounded once to the dtype.
+    fn window_bounds(
+        &self,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        v: ArrayView3<'_, f64>,
+        p0: i64,
+        dtype: Dtype,
+    ) -> Result<(Array3<f64>, Array3<f64>)> {
+        let u = dtype.unit_roundoff();
+        let window = crate::attention::window_for(q, k)?;
+        let mut score_bound = self.score_bounds(q, k, p0, dtype)?;
+        let (_, probs, output) = self.attend_window(q, k, v, p0)?;
+        for &j in &self.case.hidden_keys {
+            score_bound.slice_mut(s![.., .., j]).fill(0.0);
+        }
+        let key_len = window.key_len();
+        let relative = |row_bound: f64| {
+            let growth = (2.0 * row_bound).exp_m1();
+            if growth.is_finite() {
+                growth
+            } else {
+                f64::MAX
+            }
+        };
+        let row_max = score_bound.map_axis(ndarray::Axis(2), |row| {
+            row.iter().copied().fold(0.0, f64::max)
+        });
+        let softmax_gamma = accumulation_gamma(dtype, key_len + 2);
+        let probs_bound = Array3::from_shape_fn(probs.raw_dim(), |(h, i, j)| {
+            let p = probs[[h, i, j]];
+            p * (relative(row_max[[h, i]]) + softmax_gamma) + u * p
+        });
+        // Σ_j p_ij (|v_jc| + |value embedding|): the magnitude of each output element.
+        let magnitude = self.window_output(&probs, v.mapv(f64::abs).view(), window, true)?;
+        let output_gamma = accumulation_gamma(dtype, key_len) + u;
+        let output_bound = Array3::from_shape_fn(output.raw_dim(), |(h, i, c)| {
+            let m = magnitude[[h, i, c]];
+            m * (relative(row_max[[h, i]]) + softmax_gamma + output_gamma)
+                + u * output[[h, i, c]].abs()
+        });
+        Ok((probs_bound, output_bound))
     }
 
     /// `Σ|x_i y_i|`-type magnitude of each score, plus the phase-error contribution of
@@ -456,11 +557,12 @@ impl<'a> Pipeline<'a> {
         &self,
         q: ArrayView3<'_, f64>,
         k: ArrayView3<'_, f64>,
+        p0: i64,
         u_angle: f64,
     ) -> Result<Array3<f64>> {
         let case = self.case;
         let window = crate::attention::window_for(q, k)?;
-        let (qp, kp) = xl_relative::standard_positions(window, case.query_start);
+        let (qp, kp) = xl_relative::standard_positions(window, p0);
         let factor = case.scheme.scale().factor(case.head_dim).abs();
         let plain = |a: Array3<f64>, b: Array3<f64>| -> Result<Array3<f64>> {
             Ok(dot_scores(a.view(), b.view(), Scale::Fixed(factor))?
@@ -550,7 +652,7 @@ impl<'a> Pipeline<'a> {
                     &alibi::slopes(case.heads)?,
                     window,
                     alibi::BiasForm::Distance,
-                    case.query_start,
+                    p0,
                 )?;
                 Ok(plain(abs3(q), abs3(k))?
                     + bias.mapv(|b| if b.is_finite() { b.abs() } else { 0.0 }))
@@ -625,7 +727,7 @@ impl<'a> Pipeline<'a> {
                 let x = self.get3("x")?;
                 let positions = self.positions("positions")?;
                 let mut bound = values.mapv(|v| u * v.abs());
-                let gamma = dtype.gamma(4);
+                let gamma = accumulation_gamma(dtype, 4);
                 for ((h, n, c), _) in x.indexed_iter() {
                     if c >= *rotary_dim {
                         // The tail passes through: only the rounding to the dtype.
@@ -659,7 +761,7 @@ impl<'a> Pipeline<'a> {
                     let omega = pe.frequencies()[c % half];
                     angle_error(n as f64, omega, omega.ln(), u_angle)
                 });
-                let gamma = dtype.gamma(case.head_dim + 2);
+                let gamma = accumulation_gamma(dtype, case.head_dim + 2);
                 let mut bound = Array3::zeros((case.heads, case.key_len(), case.head_dim));
                 for (mut b, wh) in bound.outer_iter_mut().zip(w.outer_iter()) {
                     b.assign(&(table.dot(&wh) * gamma + errors.dot(&wh)));

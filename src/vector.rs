@@ -44,7 +44,7 @@ pub struct StoredBudget {
     pub factor: f64,
     /// Largest deviation of the same-precision baseline from the oracle.
     pub baseline_error: f64,
-    /// `γ_n · max|expected|`.
+    /// `sqrt(n)·u·max|expected|`.
     pub floor: f64,
     /// Per-element tolerance (`max(analytic, c · max(baseline, floor))`); a scalar
     /// array when no analytic bound exists.

@@ -506,7 +506,10 @@ fn json_writes_non_finite_numbers_as_strings() {
     assert_eq!(output["max_ulp"], "inf");
     assert_eq!(output["worst"]["expected"], "-inf");
     assert_eq!(output["masking"]["value"], "-inf");
-    assert!(output["allowance"].is_number(), "finite values stay numbers");
+    assert!(
+        output["allowance"].is_number(),
+        "finite values stay numbers"
+    );
     assert!(
         !json::render(&report).contains("null"),
         "no value of this report is absent, so none may be written as null"
