@@ -63,6 +63,10 @@ enum Command {
     /// Serve the demo kernel over the protocol on stdin/stdout (used by `demo`).
     #[command(name = "__demo-kernel", hide = true)]
     DemoKernel,
+    /// Serve the reference over the protocol on stdin/stdout (a conforming kernel for
+    /// testing a setup end to end).
+    #[command(name = "__reference-kernel", hide = true)]
+    ReferenceKernel,
 }
 
 #[derive(Debug, clap::Args)]
@@ -181,13 +185,15 @@ fn dispatch(command: Command) -> anyhow::Result<u8> {
         }
         Command::Check(args) => check(args),
         Command::Demo { fuzz, seed } => demo(fuzz, seed),
-        Command::DemoKernel => {
-            let stdin = std::io::stdin().lock();
-            let stdout = std::io::stdout().lock();
-            posconform::kernel::protocol::serve(&mut posconform::demo::TernKernel, stdin, stdout)?;
-            Ok(0)
-        }
+        Command::DemoKernel => serve(&mut posconform::demo::TernKernel),
+        Command::ReferenceKernel => serve(&mut posconform::kernel::ReferenceKernel::default()),
     }
+}
+
+fn serve(kernel: &mut dyn posconform::kernel::Kernel) -> anyhow::Result<u8> {
+    let (stdin, stdout) = (std::io::stdin().lock(), std::io::stdout().lock());
+    posconform::kernel::protocol::serve(kernel, stdin, stdout)?;
+    Ok(0)
 }
 
 fn check(args: CheckArgs) -> anyhow::Result<u8> {

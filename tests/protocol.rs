@@ -1,0 +1,199 @@
+//! The live-kernel path: one suite run against in-process kernels and against the same
+//! kernels behind the stdio protocol, and a misbehaving kernel for every way a process
+//! can fail (crash, hang, garbage, wrong sizes, wrong id, unsupported, bad handshake).
+
+use std::path::PathBuf;
+use std::time::Duration;
+
+use posconform::case::Case;
+use posconform::check::{check, CheckOptions, CheckOutcome};
+use posconform::compare::Verdict;
+use posconform::demo::TernKernel;
+use posconform::kernel::stdio::{split_command, StdioKernel};
+use posconform::kernel::{Kernel, ReferenceKernel};
+use posconform::report::{EXIT_CONFORMING, EXIT_COULD_NOT_RUN, EXIT_NONCONFORMING};
+use posconform::suite::suite;
+use posconform::vector::VectorFile;
+
+fn binary() -> String {
+    env!("CARGO_BIN_EXE_posconform").to_string()
+}
+
+fn stdio(args: &[&str], timeout: f64) -> StdioKernel {
+    StdioKernel::new(args.iter().map(|s| s.to_string()).collect(), Duration::from_secs_f64(timeout))
+}
+
+fn run(kernel: &mut dyn Kernel, cases: &[Case], options: &CheckOptions) -> CheckOutcome {
+    check(kernel, cases, options, &mut |_, _, _| {}).unwrap()
+}
+
+fn options(fuzz: usize) -> CheckOptions {
+    CheckOptions { fuzz_cases: fuzz, seed: 11, ..Default::default() }
+}
+
+/// The conforming reference conforms on the whole core suite and under fuzzing.
+fn conforms(kernel: &mut dyn Kernel) {
+    let outcome = run(kernel, &suite("core").unwrap(), &options(60));
+    let report = &outcome.report;
+    let text = posconform::report::text::render(report);
+    assert_eq!(report.counts().passed, report.cases.len(), "{text}");
+    assert_eq!(report.exit_code(), EXIT_CONFORMING, "{text}");
+    assert_eq!(outcome.fuzz.unwrap().failed, 0);
+}
+
+#[test]
+fn reference_conforms_in_process() {
+    conforms(&mut ReferenceKernel::default());
+}
+
+#[test]
+fn reference_conforms_over_stdio() {
+    conforms(&mut stdio(&[&binary(), "__reference-kernel"], 30.0));
+}
+
+/// The demo kernel's verdicts are the same in process and over the protocol: the
+/// transport changes nothing.
+#[test]
+fn demo_kernel_gives_the_same_verdicts_in_process_and_over_stdio() {
+    let cases = suite("core").unwrap();
+    let local = run(&mut TernKernel, &cases, &options(0));
+    let remote = run(&mut stdio(&[&binary(), "__demo-kernel"], 30.0), &cases, &options(0));
+    let verdicts = |o: &CheckOutcome| o.report.cases.iter().map(|c| (c.case.clone(), c.verdict.clone())).collect::<Vec<_>>();
+    assert_eq!(verdicts(&local), verdicts(&remote));
+    assert_eq!(local.report.exit_code(), EXIT_NONCONFORMING);
+}
+
+/// Fuzzing finds the demo bug, shrinks it to one query and one memory key, saves it as
+/// a vector that replays the failure, and does the same again for the same seed.
+#[test]
+fn fuzzing_shrinks_the_demo_bug_deterministically_and_saves_a_replayable_case() {
+    let dir = std::env::temp_dir().join(format!("posconform-protocol-shrink-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    let opts = CheckOptions { save_dir: Some(dir.clone()), ..options(80) };
+    let first = run(&mut TernKernel, &[], &opts);
+    let again = run(&mut TernKernel, &[], &CheckOptions { save_dir: None, ..options(80) });
+    assert!(!first.minimal.is_empty(), "the bug was not found");
+    let cases: Vec<&Case> = first.minimal.iter().map(|m| &m.case).collect();
+    let repeated: Vec<&Case> = again.minimal.iter().map(|m| &m.case).collect();
+    assert_eq!(cases, repeated, "shrinking is not deterministic for a fixed seed");
+    for m in &first.minimal {
+        assert_eq!((m.case.query_len, m.case.memory_len, m.case.heads), (1, 1, 1), "not minimal: {:?}", m.case);
+        let saved = m.saved.as_ref().expect("saved");
+        let replay = VectorFile::read(saved).unwrap().case;
+        assert_eq!(replay, m.case);
+        let outcome = run(&mut TernKernel, &[replay], &options(0));
+        assert_eq!(outcome.report.cases[0].verdict, Verdict::Fail);
+    }
+}
+
+fn fixture() -> String {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/misbehaving_kernel.py").display().to_string()
+}
+
+fn misbehaving(mode: &str, extra: &[&str], timeout: f64) -> StdioKernel {
+    let mut args = vec!["python3".to_string(), fixture(), mode.to_string()];
+    args.extend(extra.iter().map(|s| s.to_string()));
+    StdioKernel::new(args, Duration::from_secs_f64(timeout))
+}
+
+fn three_cases() -> Vec<Case> {
+    suite("core").unwrap().into_iter().filter(|c| c.scheme.scheme().name() == "alibi").take(3).collect()
+}
+
+fn error_text(outcome: &CheckOutcome, n: usize) -> String {
+    match &outcome.report.cases[n].verdict {
+        Verdict::Error(e) => e.clone(),
+        other => panic!("case {n}: expected an error, got {other:?}"),
+    }
+}
+
+#[test]
+fn a_crash_is_an_error_with_stderr_and_the_run_goes_on_after_a_restart() {
+    let state = std::env::temp_dir().join(format!("posconform-crash-once-{}", std::process::id()));
+    let _ = std::fs::remove_file(&state);
+    let mut kernel = misbehaving("crash-once", &[&state.display().to_string()], 10.0);
+    let outcome = run(&mut kernel, &three_cases(), &options(0));
+    let e = error_text(&outcome, 0);
+    assert!(e.contains("exited") && e.contains("about to crash on alibi"), "{e}");
+    assert!(matches!(outcome.report.cases[1].verdict, Verdict::Skipped(_)));
+    assert!(matches!(outcome.report.cases[2].verdict, Verdict::Skipped(_)));
+    assert!(outcome.report.notes.iter().any(|n| n.contains("restarted")), "{:?}", outcome.report.notes);
+    assert_eq!(kernel.starts(), 2);
+    assert_eq!(outcome.report.exit_code(), EXIT_COULD_NOT_RUN);
+}
+
+#[test]
+fn repeated_crashes_stop_the_run_and_keep_every_result() {
+    let mut cases = three_cases();
+    cases.extend(suite("core").unwrap().into_iter().take(3));
+    let outcome = run(&mut misbehaving("crash-always", &[], 10.0), &cases, &options(0));
+    assert_eq!(outcome.report.cases.len(), cases.len(), "results were lost");
+    for n in 0..3 {
+        assert!(error_text(&outcome, n).contains("segfault-like crash"));
+    }
+    for n in 3..cases.len() {
+        assert!(error_text(&outcome, n).contains("not run: the kernel failed 3 cases in a row"));
+    }
+}
+
+#[test]
+fn a_hang_times_out_and_the_kernel_is_replaced() {
+    let mut kernel = misbehaving("hang", &[], 0.5);
+    let outcome = run(&mut kernel, &three_cases(), &options(0));
+    let e = error_text(&outcome, 0);
+    assert!(e.contains("within 0.5 s (timeout)"), "{e}");
+    // The replacement hangs too (every process hangs on its first run).
+    assert!(error_text(&outcome, 1).contains("timeout"));
+    assert!(kernel.starts() >= 2);
+}
+
+#[test]
+fn garbage_on_stdout_is_an_error_quoting_it() {
+    let outcome = run(&mut misbehaving("garbage", &[], 10.0), &three_cases(), &options(0));
+    let e = error_text(&outcome, 0);
+    assert!(e.contains("not a JSON-RPC response") && e.contains("DEBUG: entering kernel"), "{e}");
+}
+
+#[test]
+fn wrong_array_sizes_are_an_error_naming_the_field() {
+    let outcome = run(&mut misbehaving("wrong-shape", &[], 10.0), &three_cases(), &options(0));
+    let e = error_text(&outcome, 0);
+    assert!(e.contains("malformed reply") && e.contains("outputs.") && e.contains("needs 32 bytes, found 24"), "{e}");
+}
+
+#[test]
+fn a_reply_with_the_wrong_id_is_an_error() {
+    let outcome = run(&mut misbehaving("wrong-id", &[], 10.0), &three_cases(), &options(0));
+    assert!(error_text(&outcome, 0).contains("with id"));
+}
+
+#[test]
+fn unsupported_answers_are_skips_and_nothing_passing_means_could_not_run() {
+    let outcome = run(&mut misbehaving("unsupported", &[], 10.0), &three_cases(), &options(5));
+    assert!(outcome.report.cases.iter().all(|c| matches!(c.verdict, Verdict::Skipped(_))));
+    assert_eq!(outcome.fuzz.unwrap().skipped, 5);
+    assert_eq!(outcome.report.exit_code(), EXIT_COULD_NOT_RUN);
+}
+
+#[test]
+fn a_wrong_protocol_version_is_refused_clearly() {
+    let err = check(&mut misbehaving("bad-protocol", &[], 10.0), &three_cases(), &options(0), &mut |_, _, _| {})
+        .unwrap_err()
+        .to_string();
+    assert!(err.contains("speaks protocol 99"), "{err}");
+}
+
+#[test]
+fn a_missing_program_is_a_clear_error() {
+    let err = check(&mut stdio(&["/nonexistent/kernel"], 5.0), &three_cases(), &options(0), &mut |_, _, _| {})
+        .unwrap_err()
+        .to_string();
+    assert!(err.contains("cannot start `/nonexistent/kernel`"), "{err}");
+}
+
+#[test]
+fn command_lines_split_without_a_shell() {
+    assert_eq!(split_command("python3 k.py --flag 'a b' \"c d\"").unwrap(), ["python3", "k.py", "--flag", "a b", "c d"]);
+    assert!(split_command("python3 'unclosed").is_err());
+    assert!(split_command("   ").is_err());
+}
