@@ -22,14 +22,30 @@ fn numpy_available() -> bool {
 #[test]
 fn numpy_example_kernel_conforms() {
     if !numpy_available() {
-        assert!(std::env::var_os("CI").is_none(), "CI must install numpy (see .ci/run)");
+        assert!(
+            std::env::var_os("CI").is_none(),
+            "CI must install numpy (see .ci/run)"
+        );
         eprintln!("skipped: python3 with numpy is not available (pip install numpy)");
         return;
     }
     let script = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("examples/python/numpy_kernel.py");
-    let mut kernel = StdioKernel::new(vec!["python3".into(), script.display().to_string()], Duration::from_secs(60));
-    let options = CheckOptions { fuzz_cases: 150, seed: 2026, ..Default::default() };
-    let outcome = check(&mut kernel, &suite("core").unwrap(), &options, &mut |_, _, _| {}).unwrap();
+    let mut kernel = StdioKernel::new(
+        vec!["python3".into(), script.display().to_string()],
+        Duration::from_secs(60),
+    );
+    let options = CheckOptions {
+        fuzz_cases: 150,
+        seed: 2026,
+        ..Default::default()
+    };
+    let outcome = check(
+        &mut kernel,
+        &suite("core").unwrap(),
+        &options,
+        &mut |_, _, _| {},
+    )
+    .unwrap();
     let text = posconform::report::text::render(&outcome.report);
     assert_eq!(outcome.report.exit_code(), EXIT_CONFORMING, "{text}");
     assert_eq!(outcome.report.counts().passed, 44, "{text}");

@@ -20,7 +20,10 @@ fn binary() -> String {
 }
 
 fn stdio(args: &[&str], timeout: f64) -> StdioKernel {
-    StdioKernel::new(args.iter().map(|s| s.to_string()).collect(), Duration::from_secs_f64(timeout))
+    StdioKernel::new(
+        args.iter().map(|s| s.to_string()).collect(),
+        Duration::from_secs_f64(timeout),
+    )
 }
 
 fn run(kernel: &mut dyn Kernel, cases: &[Case], options: &CheckOptions) -> CheckOutcome {
@@ -28,7 +31,11 @@ fn run(kernel: &mut dyn Kernel, cases: &[Case], options: &CheckOptions) -> Check
 }
 
 fn options(fuzz: usize) -> CheckOptions {
-    CheckOptions { fuzz_cases: fuzz, seed: 11, ..Default::default() }
+    CheckOptions {
+        fuzz_cases: fuzz,
+        seed: 11,
+        ..Default::default()
+    }
 }
 
 /// The conforming reference conforms on the whole core suite and under fuzzing.
@@ -57,8 +64,18 @@ fn reference_conforms_over_stdio() {
 fn demo_kernel_gives_the_same_verdicts_in_process_and_over_stdio() {
     let cases = suite("core").unwrap();
     let local = run(&mut TernKernel, &cases, &options(0));
-    let remote = run(&mut stdio(&[&binary(), "__demo-kernel"], 30.0), &cases, &options(0));
-    let verdicts = |o: &CheckOutcome| o.report.cases.iter().map(|c| (c.case.clone(), c.verdict.clone())).collect::<Vec<_>>();
+    let remote = run(
+        &mut stdio(&[&binary(), "__demo-kernel"], 30.0),
+        &cases,
+        &options(0),
+    );
+    let verdicts = |o: &CheckOutcome| {
+        o.report
+            .cases
+            .iter()
+            .map(|c| (c.case.clone(), c.verdict.clone()))
+            .collect::<Vec<_>>()
+    };
     assert_eq!(verdicts(&local), verdicts(&remote));
     assert_eq!(local.report.exit_code(), EXIT_NONCONFORMING);
 }
@@ -67,17 +84,36 @@ fn demo_kernel_gives_the_same_verdicts_in_process_and_over_stdio() {
 /// a vector that replays the failure, and does the same again for the same seed.
 #[test]
 fn fuzzing_shrinks_the_demo_bug_deterministically_and_saves_a_replayable_case() {
-    let dir = std::env::temp_dir().join(format!("posconform-protocol-shrink-{}", std::process::id()));
+    let dir =
+        std::env::temp_dir().join(format!("posconform-protocol-shrink-{}", std::process::id()));
     let _ = std::fs::remove_dir_all(&dir);
-    let opts = CheckOptions { save_dir: Some(dir.clone()), ..options(80) };
+    let opts = CheckOptions {
+        save_dir: Some(dir.clone()),
+        ..options(80)
+    };
     let first = run(&mut TernKernel, &[], &opts);
-    let again = run(&mut TernKernel, &[], &CheckOptions { save_dir: None, ..options(80) });
+    let again = run(
+        &mut TernKernel,
+        &[],
+        &CheckOptions {
+            save_dir: None,
+            ..options(80)
+        },
+    );
     assert!(!first.minimal.is_empty(), "the bug was not found");
     let cases: Vec<&Case> = first.minimal.iter().map(|m| &m.case).collect();
     let repeated: Vec<&Case> = again.minimal.iter().map(|m| &m.case).collect();
-    assert_eq!(cases, repeated, "shrinking is not deterministic for a fixed seed");
+    assert_eq!(
+        cases, repeated,
+        "shrinking is not deterministic for a fixed seed"
+    );
     for m in &first.minimal {
-        assert_eq!((m.case.query_len, m.case.memory_len, m.case.heads), (1, 1, 1), "not minimal: {:?}", m.case);
+        assert_eq!(
+            (m.case.query_len, m.case.memory_len, m.case.heads),
+            (1, 1, 1),
+            "not minimal: {:?}",
+            m.case
+        );
         let saved = m.saved.as_ref().expect("saved");
         let replay = VectorFile::read(saved).unwrap().case;
         assert_eq!(replay, m.case);
@@ -87,7 +123,10 @@ fn fuzzing_shrinks_the_demo_bug_deterministically_and_saves_a_replayable_case() 
 }
 
 fn fixture() -> String {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/misbehaving_kernel.py").display().to_string()
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/fixtures/misbehaving_kernel.py")
+        .display()
+        .to_string()
 }
 
 fn misbehaving(mode: &str, extra: &[&str], timeout: f64) -> StdioKernel {
@@ -97,7 +136,12 @@ fn misbehaving(mode: &str, extra: &[&str], timeout: f64) -> StdioKernel {
 }
 
 fn three_cases() -> Vec<Case> {
-    suite("core").unwrap().into_iter().filter(|c| c.scheme.scheme().name() == "alibi").take(3).collect()
+    suite("core")
+        .unwrap()
+        .into_iter()
+        .filter(|c| c.scheme.scheme().name() == "alibi")
+        .take(3)
+        .collect()
 }
 
 fn error_text(outcome: &CheckOutcome, n: usize) -> String {
@@ -114,10 +158,23 @@ fn a_crash_is_an_error_with_stderr_and_the_run_goes_on_after_a_restart() {
     let mut kernel = misbehaving("crash-once", &[&state.display().to_string()], 10.0);
     let outcome = run(&mut kernel, &three_cases(), &options(0));
     let e = error_text(&outcome, 0);
-    assert!(e.contains("exited") && e.contains("about to crash on alibi"), "{e}");
-    assert!(matches!(outcome.report.cases[1].verdict, Verdict::Skipped(_)));
-    assert!(matches!(outcome.report.cases[2].verdict, Verdict::Skipped(_)));
-    assert!(outcome.report.notes.iter().any(|n| n.contains("restarted")), "{:?}", outcome.report.notes);
+    assert!(
+        e.contains("exited") && e.contains("about to crash on alibi"),
+        "{e}"
+    );
+    assert!(matches!(
+        outcome.report.cases[1].verdict,
+        Verdict::Skipped(_)
+    ));
+    assert!(matches!(
+        outcome.report.cases[2].verdict,
+        Verdict::Skipped(_)
+    ));
+    assert!(
+        outcome.report.notes.iter().any(|n| n.contains("restarted")),
+        "{:?}",
+        outcome.report.notes
+    );
     assert_eq!(kernel.starts(), 2);
     assert_eq!(outcome.report.exit_code(), EXIT_COULD_NOT_RUN);
 }
@@ -126,7 +183,11 @@ fn a_crash_is_an_error_with_stderr_and_the_run_goes_on_after_a_restart() {
 fn repeated_crashes_stop_the_run_and_keep_every_result() {
     let mut cases = three_cases();
     cases.extend(suite("core").unwrap().into_iter().take(3));
-    let outcome = run(&mut misbehaving("crash-always", &[], 10.0), &cases, &options(0));
+    let outcome = run(
+        &mut misbehaving("crash-always", &[], 10.0),
+        &cases,
+        &options(0),
+    );
     assert_eq!(outcome.report.cases.len(), cases.len(), "results were lost");
     for n in 0..3 {
         assert!(error_text(&outcome, n).contains("segfault-like crash"));
@@ -149,51 +210,119 @@ fn a_hang_times_out_and_the_kernel_is_replaced() {
 
 #[test]
 fn garbage_on_stdout_is_an_error_quoting_it() {
-    let outcome = run(&mut misbehaving("garbage", &[], 10.0), &three_cases(), &options(0));
+    let outcome = run(
+        &mut misbehaving("garbage", &[], 10.0),
+        &three_cases(),
+        &options(0),
+    );
     let e = error_text(&outcome, 0);
-    assert!(e.contains("not a JSON-RPC response") && e.contains("DEBUG: entering kernel"), "{e}");
+    assert!(
+        e.contains("not a JSON-RPC response") && e.contains("DEBUG: entering kernel"),
+        "{e}"
+    );
 }
 
 #[test]
 fn wrong_array_sizes_are_an_error_naming_the_field() {
-    let outcome = run(&mut misbehaving("wrong-shape", &[], 10.0), &three_cases(), &options(0));
+    let outcome = run(
+        &mut misbehaving("wrong-shape", &[], 10.0),
+        &three_cases(),
+        &options(0),
+    );
     let e = error_text(&outcome, 0);
-    assert!(e.contains("malformed reply") && e.contains("outputs.") && e.contains("needs 32 bytes, found 24"), "{e}");
+    assert!(
+        e.contains("malformed reply")
+            && e.contains("outputs.")
+            && e.contains("needs 32 bytes, found 24"),
+        "{e}"
+    );
 }
 
 #[test]
 fn a_reply_with_the_wrong_id_is_an_error() {
-    let outcome = run(&mut misbehaving("wrong-id", &[], 10.0), &three_cases(), &options(0));
+    let outcome = run(
+        &mut misbehaving("wrong-id", &[], 10.0),
+        &three_cases(),
+        &options(0),
+    );
     assert!(error_text(&outcome, 0).contains("with id"));
 }
 
 #[test]
 fn unsupported_answers_are_skips_and_nothing_passing_means_could_not_run() {
-    let outcome = run(&mut misbehaving("unsupported", &[], 10.0), &three_cases(), &options(5));
-    assert!(outcome.report.cases.iter().all(|c| matches!(c.verdict, Verdict::Skipped(_))));
+    let outcome = run(
+        &mut misbehaving("unsupported", &[], 10.0),
+        &three_cases(),
+        &options(5),
+    );
+    assert!(outcome
+        .report
+        .cases
+        .iter()
+        .all(|c| matches!(c.verdict, Verdict::Skipped(_))));
     assert_eq!(outcome.fuzz.unwrap().skipped, 5);
     assert_eq!(outcome.report.exit_code(), EXIT_COULD_NOT_RUN);
 }
 
 #[test]
 fn a_wrong_protocol_version_is_refused_clearly() {
-    let err = check(&mut misbehaving("bad-protocol", &[], 10.0), &three_cases(), &options(0), &mut |_, _, _| {})
-        .unwrap_err()
-        .to_string();
+    let err = check(
+        &mut misbehaving("bad-protocol", &[], 10.0),
+        &three_cases(),
+        &options(0),
+        &mut |_, _, _| {},
+    )
+    .unwrap_err()
+    .to_string();
     assert!(err.contains("speaks protocol 99"), "{err}");
 }
 
 #[test]
 fn a_missing_program_is_a_clear_error() {
-    let err = check(&mut stdio(&["/nonexistent/kernel"], 5.0), &three_cases(), &options(0), &mut |_, _, _| {})
-        .unwrap_err()
-        .to_string();
+    let err = check(
+        &mut stdio(&["/nonexistent/kernel"], 5.0),
+        &three_cases(),
+        &options(0),
+        &mut |_, _, _| {},
+    )
+    .unwrap_err()
+    .to_string();
     assert!(err.contains("cannot start `/nonexistent/kernel`"), "{err}");
 }
 
 #[test]
 fn command_lines_split_without_a_shell() {
-    assert_eq!(split_command("python3 k.py --flag 'a b' \"c d\"").unwrap(), ["python3", "k.py", "--flag", "a b", "c d"]);
+    assert_eq!(
+        split_command("python3 k.py --flag 'a b' \"c d\"").unwrap(),
+        ["python3", "k.py", "--flag", "a b", "c d"]
+    );
     assert!(split_command("python3 'unclosed").is_err());
     assert!(split_command("   ").is_err());
+}
+
+/// The minimal Rust adapter (examples/rust_kernel.rs, built by `cargo test` next to the
+/// test binaries) conforms on the rotary encode cases it implements and declines the
+/// rest.
+#[test]
+fn rust_example_adapter_conforms_on_what_it_implements() {
+    let exe = PathBuf::from(binary());
+    let example = exe
+        .parent()
+        .unwrap()
+        .join("examples")
+        .join(format!("rust_kernel{}", std::env::consts::EXE_SUFFIX));
+    assert!(
+        example.exists(),
+        "cargo test builds examples; {} is missing",
+        example.display()
+    );
+    let mut kernel = stdio(&[&example.display().to_string()], 10.0);
+    let outcome = run(&mut kernel, &suite("core").unwrap(), &options(40));
+    let report = &outcome.report;
+    let counts = report.counts();
+    let text = posconform::report::text::render(report);
+    assert_eq!(counts.failed + counts.errors, 0, "{text}");
+    // Four core rotary encode cases are unscaled; two use scaling and are declined.
+    assert_eq!(counts.passed, 4, "{text}");
+    assert_eq!(report.exit_code(), EXIT_CONFORMING);
 }

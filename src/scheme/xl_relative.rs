@@ -280,7 +280,9 @@ pub fn scores(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Ar
         ..
     } = check(inputs, params)?;
     let (l, key_len, m) = (window.query_len(), window.key_len(), window.memory_len());
-    let mut out = Array3::from_elem((heads, l, key_len), f64::NEG_INFINITY);
+    // Zeroed allocation maps pages lazily; every entry is then written exactly once:
+    // by the product (visible part of each block) or by the -inf fill (hidden tail).
+    let mut out = Array3::zeros((heads, l, key_len));
     let mut bd = Array2::zeros((QUERY_BLOCK.min(l), key_len));
     for h in 0..heads {
         let q = inputs.q.index_axis(Axis(0), h);
@@ -295,17 +297,22 @@ pub fn scores(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Ar
         for i0 in (0..l).step_by(QUERY_BLOCK) {
             let i1 = (i0 + QUERY_BLOCK).min(l);
             let width = m + i1;
-            let mut ac = head.slice_mut(s![i0..i1, ..width]);
             let mut bd = bd.slice_mut(s![..i1 - i0, ..width]);
             let (qu, qv) = (qu.slice(s![i0..i1, ..]), qv.slice(s![i0..i1, ..]));
-            gemm(scale, &qu, &k.slice(s![..width, ..]).t(), 0.0, &mut ac);
+            gemm(
+                scale,
+                &qu,
+                &k.slice(s![..width, ..]).t(),
+                0.0,
+                &mut head.slice_mut(s![i0..i1, ..width]),
+            );
             let r_block = r_desc.slice(s![l - i1.., ..]);
             gemm(scale, &qv, &r_block.t(), 0.0, &mut bd);
             // Shift as a remap (see `rel_shift`): y[i][j] = BD[i][L-1-i+j] for j <= M+i.
             // `bd` starts at column L-i1, so BD[i][L-1-i+j] is bd[i-i0][i1-1-i+j].
             for i in i0..i1 {
                 let visible = m + i + 1;
-                let mut row = ac.row_mut(i - i0);
+                let mut row = head.row_mut(i);
                 let shifted = bd.slice(s![i - i0, i1 - 1 - i..i1 - 1 - i + visible]);
                 Zip::from(row.slice_mut(s![..visible]))
                     .and(&shifted)
@@ -319,7 +326,7 @@ pub fn scores(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Ar
 
 /// Query rows per block in [`scores`]: large enough for efficient matrix products,
 /// small enough that skipping hidden columns pays off.
-const QUERY_BLOCK: usize = 64;
+const QUERY_BLOCK: usize = 32;
 
 /// The four unscaled terms, each computed with matrix products and the shift remap.
 pub fn terms(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<RelativeTerms> {

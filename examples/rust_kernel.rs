@@ -1,0 +1,97 @@
+//! A minimal Rust kernel behind the posconform protocol.
+//!
+//! It implements one operation, rotary `encode`, with its own arithmetic (nothing
+//! borrowed from posconform's reference), and lets `posconform::kernel::protocol::serve`
+//! do all the plumbing. Try it:
+//!
+//! ```sh
+//! cargo build --release --example rust_kernel
+//! ./target/release/posconform check --kernel target/release/examples/rust_kernel
+//! ```
+//!
+//! Cases it does not implement (every other scheme and operation, and scaled rotary) are
+//! declined and reported as skipped.
+
+use ndarray::{Array1, Array3};
+use posconform::case::{Arrays, Case, Operation, SchemeSpec};
+use posconform::kernel::{Answer, Kernel, KernelInfo, Support};
+use posconform::precision::Dtype;
+use posconform::rotary::{Pairing, RotaryScaling};
+use posconform::tensor::Tensor;
+use posconform::{Result, Scheme};
+
+/// Rotates each pair `(a, b)` of the first `rotary_dim` dims by `p·θ_j`.
+struct MyRope;
+
+impl Kernel for MyRope {
+    fn describe(&mut self) -> Result<KernelInfo> {
+        Ok(KernelInfo {
+            name: "example-rust-rope".into(),
+            version: "0.1.0".into(),
+            supports: vec![Support {
+                scheme: Scheme::Rotary,
+                operations: vec!["encode".into()],
+            }],
+            dtypes: vec![Dtype::F64],
+        })
+    }
+
+    fn run(&mut self, case: &Case, _dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
+        let (
+            SchemeSpec::Rotary {
+                rotary_dim,
+                base,
+                pairing,
+                scaling,
+                ..
+            },
+            Operation::Encode,
+        ) = (&case.scheme, &case.operation)
+        else {
+            return Ok(Answer::Unsupported("only rotary encode".into()));
+        };
+        if *scaling != RotaryScaling::None {
+            return Ok(Answer::Unsupported("no context-extension scaling".into()));
+        }
+        let x = inputs["x"]
+            .view()
+            .into_dimensionality::<ndarray::Ix3>()
+            .expect("x is [H, L, d]");
+        let positions: Array1<f64> = inputs["positions"].view().iter().copied().collect();
+        let half = rotary_dim / 2;
+        let mut out: Array3<f64> = x.to_owned();
+        for ((h, n, _), _) in x.indexed_iter().filter(|((_, _, c), _)| *c == 0) {
+            for j in 0..half {
+                let theta = base.powf(-((2 * j) as f64) / *rotary_dim as f64);
+                let (sin, cos) = (positions[n] * theta).sin_cos();
+                let (a, b) = match pairing {
+                    Pairing::Adjacent => (2 * j, 2 * j + 1),
+                    Pairing::HalfSplit => (j, j + half),
+                };
+                let (xa, xb) = (x[[h, n, a]], x[[h, n, b]]);
+                out[[h, n, a]] = xa * cos - xb * sin;
+                out[[h, n, b]] = xa * sin + xb * cos;
+            }
+        }
+        let mut outputs = Arrays::new();
+        outputs.insert(
+            "rotated".into(),
+            Tensor::from_f64(Dtype::F64, out.into_dyn()),
+        );
+        Ok(Answer::Outputs {
+            outputs,
+            elapsed_ms: None,
+        })
+    }
+}
+
+fn main() -> std::process::ExitCode {
+    let (stdin, stdout) = (std::io::stdin().lock(), std::io::stdout().lock());
+    match posconform::kernel::protocol::serve(&mut MyRope, stdin, stdout) {
+        Ok(()) => std::process::ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("example-rust-rope: {e}");
+            std::process::ExitCode::FAILURE
+        }
+    }
+}
