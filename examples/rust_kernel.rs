@@ -33,6 +33,7 @@ impl Kernel for MyRope {
                 operations: vec!["encode".into()],
             }],
             dtypes: vec![Dtype::F64],
+            conventions: Vec::new(),
         })
     }
 

@@ -274,6 +274,12 @@ pub fn check(
         fuzz = Some(summary);
         minimal = found;
     }
+    if !info.conventions.is_empty() {
+        report.notes.insert(
+            0,
+            format!("the kernel declares: {}", info.conventions.join("; ")),
+        );
+    }
     report.notes.extend(runner.notes);
     Ok(CheckOutcome {
         info,

@@ -82,6 +82,10 @@ impl Kernel for TernKernel {
                 operations: vec!["scores".into(), "attention".into(), "stream".into()],
             }],
             dtypes: vec![Dtype::F32],
+            conventions: vec![
+                "masked scores are -inf".into(),
+                "causal mask as in our decoder".into(),
+            ],
         })
     }
 

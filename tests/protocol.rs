@@ -311,11 +311,19 @@ fn rust_example_adapter_conforms_on_what_it_implements() {
         .unwrap()
         .join("examples")
         .join(format!("rust_kernel{}", std::env::consts::EXE_SUFFIX));
-    assert!(
-        example.exists(),
-        "cargo test builds examples; {} is missing",
-        example.display()
-    );
+    if !example.exists() {
+        // A full `cargo test` builds examples; `cargo test --test protocol` alone does not.
+        assert!(
+            std::env::var_os("CI").is_none(),
+            "{} is missing under CI",
+            example.display()
+        );
+        eprintln!(
+            "skipped: {} is not built (run the full `cargo test`)",
+            example.display()
+        );
+        return;
+    }
     let mut kernel = stdio(&[&example.display().to_string()], 10.0);
     let outcome = run(&mut kernel, &suite("core").unwrap(), &options(40));
     let report = &outcome.report;

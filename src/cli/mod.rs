@@ -99,6 +99,9 @@ struct CheckArgs {
     /// Append the kernel's stderr to this file.
     #[arg(long, value_name = "FILE")]
     kernel_log: Option<PathBuf>,
+    /// Record every protocol line sent and received in this file.
+    #[arg(long, value_name = "FILE")]
+    trace: Option<PathBuf>,
     /// No progress display.
     #[arg(long)]
     quiet: bool,
@@ -229,6 +232,9 @@ fn check(args: CheckArgs) -> anyhow::Result<u8> {
     );
     if let Some(log) = &args.kernel_log {
         kernel = kernel.with_log(log.clone());
+    }
+    if let Some(trace) = &args.trace {
+        kernel = kernel.with_trace(trace)?;
     }
     let options = posconform::check::CheckOptions {
         compare,

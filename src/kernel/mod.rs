@@ -34,6 +34,9 @@ pub struct KernelInfo {
     pub supports: Vec<Support>,
     /// The dtypes it computes in, preferred first.
     pub dtypes: Vec<Dtype>,
+    /// Conventions the kernel declares, free text (e.g. "masked scores hold -1e9").
+    /// Informational: the harness observes conventions itself and reports what it saw.
+    pub conventions: Vec<String>,
 }
 
 impl KernelInfo {
@@ -143,6 +146,7 @@ impl Kernel for ReferenceKernel {
             version: env!("CARGO_PKG_VERSION").into(),
             supports: full_support(),
             dtypes: self.dtypes.clone(),
+            conventions: vec!["masked scores are -inf".into()],
         })
     }
 

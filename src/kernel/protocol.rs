@@ -46,6 +46,7 @@ pub fn handshake_result(info: &KernelInfo) -> Value {
         "version": info.version,
         "supports": info.supports,
         "dtypes": info.dtypes,
+        "conventions": info.conventions,
     })
 }
 
@@ -89,11 +90,17 @@ pub fn parse_handshake(result: &Value, who: &str) -> Result<KernelInfo> {
     if dtypes.is_empty() {
         return Err(bad("`dtypes` is empty".into()));
     }
+    let conventions: Vec<String> = match result.get("conventions") {
+        None | Some(Value::Null) => Vec::new(),
+        Some(v) => serde_json::from_value(v.clone())
+            .map_err(|e| bad(format!("`conventions` must be a list of strings: {e}")))?,
+    };
     Ok(KernelInfo {
         name: text("name").ok_or_else(|| bad("missing `name`".into()))?,
         version: text("version").unwrap_or_default(),
         supports,
         dtypes,
+        conventions,
     })
 }
 

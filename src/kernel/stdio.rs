@@ -41,6 +41,7 @@ pub struct StdioKernel {
     next_id: u64,
     stderr_tail: Arc<Mutex<VecDeque<String>>>,
     log: Option<PathBuf>,
+    trace: Option<std::fs::File>,
     starts: usize,
 }
 
@@ -103,7 +104,21 @@ impl StdioKernel {
             next_id: 0,
             stderr_tail: Arc::new(Mutex::new(VecDeque::new())),
             log: None,
+            trace: None,
             starts: 0,
+        }
+    }
+
+    /// Also records every protocol line, sent (`->`) and received (`<-`), in this file.
+    pub fn with_trace(mut self, path: &std::path::Path) -> Result<Self> {
+        let file = std::fs::File::create(path).map_err(|e| Error::io("create", path, e))?;
+        self.trace = Some(file);
+        Ok(self)
+    }
+
+    fn record(&mut self, direction: &str, line: &str) {
+        if let Some(f) = self.trace.as_mut() {
+            let _ = writeln!(f, "{direction} {}", line.trim_end());
         }
     }
 
@@ -231,6 +246,7 @@ impl StdioKernel {
         let id = self.next_id;
         self.next_id += 1;
         let line = protocol::request(id, method, params);
+        self.record("->", &line);
         let timeout = self.timeout;
         let running = self.running.as_mut().expect("started");
         if writeln!(running.stdin, "{line}")
@@ -250,6 +266,7 @@ impl StdioKernel {
             let remaining = deadline.saturating_duration_since(std::time::Instant::now());
             match running.lines.recv_timeout(remaining) {
                 Ok(Ok(text)) => {
+                    self.record("<-", &text);
                     let trimmed = text.trim();
                     if trimmed.is_empty() {
                         continue;
@@ -337,6 +354,12 @@ impl Kernel for StdioKernel {
 
 impl Drop for StdioKernel {
     fn drop(&mut self) {
+        if self.running.is_some() {
+            self.record(
+                "->",
+                &json!({"jsonrpc": "2.0", "method": "shutdown"}).to_string(),
+            );
+        }
         if let Some(mut r) = self.running.take() {
             let _ = writeln!(
                 r.stdin,
