@@ -564,6 +564,11 @@ impl Case {
     }
 }
 
+/// Whether an output holds integers (bucket and clip indices), compared exactly.
+pub fn is_integer_output(name: &str) -> bool {
+    matches!(name, "buckets" | "indices")
+}
+
 /// Looks up a named input, as an error naming the case and array when it is missing.
 pub(crate) fn input<'a>(arrays: &'a Arrays, case: &Case, name: &str) -> Result<&'a Tensor> {
     arrays.get(name).ok_or_else(|| {

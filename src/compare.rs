@@ -103,7 +103,7 @@ pub fn budgets(
     let mut analytic = reference::analytic_bounds(case, inputs, dtype)?;
     let mut out = BTreeMap::new();
     for (name, want) in expected {
-        let exact = matches!(name.as_str(), "buckets" | "indices");
+        let exact = crate::case::is_integer_output(name);
         let dtype = if exact { Dtype::I64 } else { dtype };
         let baseline_error = baseline
             .get(name)
@@ -376,7 +376,7 @@ pub fn compare(
             ));
             continue;
         }
-        let exact = matches!(name.as_str(), "buckets" | "indices");
+        let exact = crate::case::is_integer_output(name);
         if !exact && !tensor.dtype().is_float() {
             structural.push(format!(
                 "output `{name}` is declared i64; a float dtype is expected"
@@ -422,7 +422,7 @@ pub fn compare(
     let answered: std::collections::BTreeSet<Dtype> = report
         .outputs
         .iter()
-        .filter(|o| !matches!(o.name.as_str(), "buckets" | "indices"))
+        .filter(|o| !crate::case::is_integer_output(&o.name))
         .map(|o| o.dtype)
         .collect();
     if answered.iter().any(|d| *d != case.dtype) {

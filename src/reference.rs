@@ -154,6 +154,19 @@ impl<'a> Pipeline<'a> {
         }
     }
 
+    /// The bucketing rule of a bucketed case.
+    fn buckets(&self) -> Result<bucketed::Buckets> {
+        match &self.case.scheme {
+            SchemeSpec::Bucketed {
+                num_buckets,
+                max_distance,
+                bidirectional,
+                ..
+            } => bucketed::Buckets::new(*num_buckets, *max_distance, *bidirectional),
+            _ => unreachable!("buckets() on a bucketed case only"),
+        }
+    }
+
     /// The absolute-position additive table (sinusoid or learned) at `positions`.
     fn absolute_table(&self, positions: &[i64]) -> Result<Array2<f64>> {
         match &self.case.scheme {
@@ -217,13 +230,8 @@ impl<'a> Pipeline<'a> {
                 };
                 alibi::scores(q, k, &slopes, &params)
             }
-            SchemeSpec::Bucketed {
-                num_buckets,
-                max_distance,
-                bidirectional,
-                scale,
-            } => {
-                let buckets = bucketed::Buckets::new(*num_buckets, *max_distance, *bidirectional)?;
+            SchemeSpec::Bucketed { scale, .. } => {
+                let buckets = self.buckets()?;
                 let table = self.get2("bias_table")?;
                 bucketed::scores(
                     q,
@@ -400,13 +408,8 @@ impl<'a> Pipeline<'a> {
                 "slopes",
                 Array1::from(alibi::slopes(case.heads)?).into_dyn(),
             ),
-            SchemeSpec::Bucketed {
-                num_buckets,
-                max_distance,
-                bidirectional,
-                ..
-            } => {
-                let rule = bucketed::Buckets::new(*num_buckets, *max_distance, *bidirectional)?;
+            SchemeSpec::Bucketed { .. } => {
+                let rule = self.buckets()?;
                 let rel = self.positions("relative_positions")?;
                 (
                     "buckets",
@@ -657,13 +660,8 @@ impl<'a> Pipeline<'a> {
                 Ok(plain(abs3(q), abs3(k))?
                     + bias.mapv(|b| if b.is_finite() { b.abs() } else { 0.0 }))
             }
-            SchemeSpec::Bucketed {
-                num_buckets,
-                max_distance,
-                bidirectional,
-                ..
-            } => {
-                let rule = bucketed::Buckets::new(*num_buckets, *max_distance, *bidirectional)?;
+            SchemeSpec::Bucketed { .. } => {
+                let rule = self.buckets()?;
                 let bias = bucketed::bias(self.get2("bias_table")?.view(), window, &rule)?;
                 Ok(plain(abs3(q), abs3(k))?
                     + bias.mapv(|b| if b.is_finite() { b.abs() } else { 0.0 }))

@@ -88,17 +88,7 @@ impl VectorFile {
                 )
             })
             .collect();
-        let expected = expected
-            .into_iter()
-            .map(|(name, values)| {
-                let dtype = if matches!(name.as_str(), "buckets" | "indices") {
-                    Dtype::I64
-                } else {
-                    Dtype::F64
-                };
-                (name, Tensor::from_f64(dtype, values))
-            })
-            .collect();
+        let expected = crate::kernel::outputs_in(expected, Dtype::F64);
         let provenance = json!({
             "generator": format!("posconform {}", env!("CARGO_PKG_VERSION")),
             "seed": case.seed,

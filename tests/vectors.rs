@@ -26,17 +26,7 @@ fn scratch(name: &str) -> PathBuf {
 }
 
 fn as_results(outputs: &reference::Outputs, dtype: Dtype) -> Arrays {
-    outputs
-        .iter()
-        .map(|(name, values)| {
-            let dtype = if matches!(name.as_str(), "buckets" | "indices") {
-                Dtype::I64
-            } else {
-                dtype
-            };
-            (name.clone(), Tensor::from_f64(dtype, values.clone()))
-        })
-        .collect()
+    posconform::kernel::outputs_in(outputs.clone(), dtype)
 }
 
 fn check(case: &Case, got: &Arrays, options: &CompareOptions) -> posconform::compare::CaseReport {

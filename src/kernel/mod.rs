@@ -129,7 +129,7 @@ pub fn outputs_in(outputs: reference::Outputs, dtype: Dtype) -> Arrays {
     outputs
         .into_iter()
         .map(|(name, values)| {
-            let dtype = if matches!(name.as_str(), "buckets" | "indices") {
+            let dtype = if crate::case::is_integer_output(&name) {
                 Dtype::I64
             } else {
                 dtype
