@@ -478,3 +478,81 @@ fn text_report_of_a_failing_case_matches_snapshot() {
         .expect("snapshot missing: run with POSCONFORM_BLESS=1 and review it");
     assert_eq!(rendered, want);
 }
+
+/// The core suite targets every fault class of DESIGN.md §5 (1 to 26) and every
+/// scheme, with the shape variety the suite promises.
+#[test]
+fn core_suite_covers_every_fault_class_scheme_and_shape_corner() {
+    let cases = suite("core").unwrap();
+    let faults: std::collections::BTreeSet<u8> = cases
+        .iter()
+        .flat_map(|c| c.faults.iter().copied())
+        .collect();
+    let missing: Vec<u8> = (1..=26).filter(|f| !faults.contains(f)).collect();
+    assert!(
+        missing.is_empty(),
+        "fault classes without a case: {missing:?}"
+    );
+    for scheme in posconform::Scheme::ALL {
+        assert!(
+            cases.iter().any(|c| c.scheme.scheme() == *scheme),
+            "{scheme:?}"
+        );
+    }
+    let window_ops: Vec<&Case> = cases
+        .iter()
+        .filter(|c| {
+            matches!(
+                c.operation,
+                posconform::case::Operation::Scores | posconform::case::Operation::Attention
+            )
+        })
+        .collect();
+    assert!(window_ops.iter().any(|c| c.memory_len == 0), "M = 0");
+    assert!(
+        window_ops
+            .iter()
+            .any(|c| c.memory_len > 0 && c.memory_len < c.query_len),
+        "M < L"
+    );
+    assert!(
+        window_ops.iter().any(|c| c.memory_len > c.query_len),
+        "M > L"
+    );
+    assert!(window_ops.iter().any(|c| c.query_len == 1), "L = 1");
+    assert!(
+        window_ops
+            .iter()
+            .any(|c| c.query_len % 2 == 1 && c.query_len > 1),
+        "odd L"
+    );
+    for d in [64, 80, 96] {
+        assert!(cases.iter().any(|c| c.head_dim == d), "head width {d}");
+    }
+    assert!(cases
+        .iter()
+        .any(|c| c.scheme.scale() != posconform::Scale::InverseSqrtDim
+            && c.scheme.scale() != posconform::Scale::Fixed(1.0)));
+    assert!(cases
+        .iter()
+        .any(|c| c.scheme.scheme() == posconform::Scheme::Alibi && !c.heads.is_power_of_two()));
+    assert!(
+        cases.iter().any(|c| !c.hidden_keys.is_empty()),
+        "fully masked rows"
+    );
+    assert!(
+        cases.iter().any(|c| c.query_start >= 1000),
+        "positions far from 0"
+    );
+    for dtype in [Dtype::F32, Dtype::F16, Dtype::Bf16] {
+        assert!(cases.iter().any(|c| c.dtype == dtype), "{dtype}");
+    }
+    // Committed vectors stay small (DESIGN.md §6: well under 10 MB).
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("vectors/core");
+    let bytes: u64 = std::fs::read_dir(&dir)
+        .unwrap()
+        .filter_map(|e| e.ok()?.metadata().ok())
+        .map(|m| m.len())
+        .sum();
+    assert!(bytes < 5_000_000, "vectors/core is {bytes} bytes");
+}
