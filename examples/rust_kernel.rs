@@ -54,11 +54,28 @@ impl Kernel for MyRope {
         if *scaling != RotaryScaling::None {
             return Ok(Answer::Unsupported("no context-extension scaling".into()));
         }
-        let x = inputs["x"]
+        // Malformed requests become JSON-RPC errors, never a panic.
+        case.validate()?;
+        let bad = |what: &str| posconform::Error::Kernel {
+            kernel: "example-rust-rope".into(),
+            reason: what.into(),
+        };
+        let (x, positions) = match (inputs.get("x"), inputs.get("positions")) {
+            (Some(x), Some(p)) => (x, p),
+            _ => return Err(bad("inputs `x` and `positions` are required")),
+        };
+        let x = x
             .view()
             .into_dimensionality::<ndarray::Ix3>()
-            .expect("x is [H, L, d]");
-        let positions: Array1<f64> = inputs["positions"].view().iter().copied().collect();
+            .map_err(|_| bad("`x` must be [H, L, d]"))?;
+        let positions: Array1<f64> = positions.view().iter().copied().collect();
+        if x.dim() != (case.heads, case.query_len, case.head_dim)
+            || positions.len() != case.query_len
+        {
+            return Err(bad(
+                "`x` must be [H, L, d] and `positions` [L] for this case",
+            ));
+        }
         let half = rotary_dim / 2;
         let mut out: Array3<f64> = x.to_owned();
         for ((h, n, _), _) in x.indexed_iter().filter(|((_, _, c), _)| *c == 0) {

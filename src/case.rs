@@ -44,6 +44,28 @@ use crate::tensor::Tensor;
 /// Named arrays: a case's inputs, expected outputs, or a kernel's results.
 pub type Arrays = BTreeMap<String, Tensor>;
 
+/// How an input array is filled.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Fill {
+    /// Uniform in `[-scale, scale)` from the seed's stream, rounded to the case dtype.
+    Uniform(f64),
+    /// Absolute positions `p0, p0 + 1, …` (i64).
+    Positions,
+    /// The relative positions of [`Case::relative_positions`] (i64).
+    RelativePositions,
+}
+
+/// One input array of a case.
+#[derive(Debug, Clone, PartialEq)]
+pub struct InputSpec {
+    /// Its name.
+    pub name: String,
+    /// Its shape.
+    pub shape: Vec<usize>,
+    /// How it is filled.
+    pub fill: Fill,
+}
+
 /// What the kernel is asked to compute.
 #[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(tag = "kind", rename_all = "snake_case")]
@@ -431,110 +453,125 @@ impl Case {
         Ok(())
     }
 
-    /// The seeded inputs of this case, in the case dtype (positions in i64).
-    pub fn inputs(&self) -> Result<Arrays> {
-        self.validate()?;
-        let mut stream = Stream::new(self.seed);
-        let mut arrays = Arrays::new();
-        let dtype = self.dtype;
-        let (h, d) = (self.heads, self.head_dim);
-        let add =
-            |arrays: &mut Arrays, name: &str, shape: &[usize], scale: f64, stream: &mut Stream| {
-                let values = stream.array(IxDyn(shape), scale);
-                arrays.insert(name.to_string(), Tensor::from_f64(dtype, values));
-            };
-        let positions = |n: usize| -> Tensor {
-            let p = Array1::from_iter((0..n as i64).map(|i| (self.query_start + i) as f64));
-            Tensor::from_f64(Dtype::I64, p.into_dyn())
+    /// The inputs of this case, in generation order: name, shape and how each is
+    /// filled. The order is part of the vector format (it fixes which part of the seed's
+    /// stream each array takes), so new arrays go at the end of their branch.
+    pub fn input_specs(&self) -> Vec<InputSpec> {
+        let (h, d, l) = (self.heads, self.head_dim, self.query_len);
+        let uniform = |name: &str, shape: Vec<usize>, scale: f64| InputSpec {
+            name: name.into(),
+            shape,
+            fill: Fill::Uniform(scale),
         };
+        let positions = |n: usize| InputSpec {
+            name: "positions".into(),
+            shape: vec![n],
+            fill: Fill::Positions,
+        };
+        let mut specs = Vec::new();
         if self.operation == Operation::Encode {
             match &self.scheme {
-                SchemeSpec::Sinusoidal { .. } => {
-                    arrays.insert("positions".into(), positions(self.query_len));
-                }
+                SchemeSpec::Sinusoidal { .. } => specs.push(positions(l)),
                 SchemeSpec::Learned { max_positions } => {
-                    add(&mut arrays, "table", &[*max_positions, d], 1.0, &mut stream);
-                    arrays.insert("positions".into(), positions(self.query_len));
+                    specs.push(uniform("table", vec![*max_positions, d], 1.0));
+                    specs.push(positions(l));
                 }
                 SchemeSpec::Rotary { .. } => {
-                    add(&mut arrays, "x", &[h, self.query_len, d], 1.0, &mut stream);
-                    arrays.insert("positions".into(), positions(self.query_len));
+                    specs.push(uniform("x", vec![h, l, d], 1.0));
+                    specs.push(positions(l));
                 }
                 SchemeSpec::XlRelative { .. } => {
-                    add(
-                        &mut arrays,
-                        "w_kr",
-                        &[h, d, d],
-                        1.0 / (d as f64).sqrt(),
-                        &mut stream,
-                    );
+                    specs.push(uniform("w_kr", vec![h, d, d], 1.0 / (d as f64).sqrt()))
                 }
                 SchemeSpec::Alibi { .. } => {}
-                SchemeSpec::Bucketed { .. } | SchemeSpec::Clipped { .. } => {
-                    let rel =
-                        Array1::from_iter(self.relative_positions().into_iter().map(|x| x as f64));
-                    arrays.insert(
-                        "relative_positions".into(),
-                        Tensor::from_f64(Dtype::I64, rel.into_dyn()),
-                    );
-                }
+                SchemeSpec::Bucketed { .. } | SchemeSpec::Clipped { .. } => specs.push(InputSpec {
+                    name: "relative_positions".into(),
+                    shape: vec![self.relative_positions().len()],
+                    fill: Fill::RelativePositions,
+                }),
             }
-            return Ok(arrays);
+            return specs;
         }
         let (queries, keys) = match &self.operation {
-            Operation::Scores | Operation::Attention => (self.query_len, self.key_len()),
+            Operation::Scores | Operation::Attention => (l, self.key_len()),
             _ => (self.tokens(), self.tokens()),
         };
-        add(&mut arrays, "q", &[h, queries, d], 1.0, &mut stream);
-        add(&mut arrays, "k", &[h, keys, d], 1.0, &mut stream);
+        specs.push(uniform("q", vec![h, queries, d], 1.0));
+        specs.push(uniform("k", vec![h, keys, d], 1.0));
         if self.operation != Operation::Scores {
-            add(&mut arrays, "v", &[h, keys, d], 1.0, &mut stream);
+            specs.push(uniform("v", vec![h, keys, d], 1.0));
         }
         match &self.scheme {
             SchemeSpec::Sinusoidal { .. }
             | SchemeSpec::Rotary { .. }
             | SchemeSpec::Alibi { .. } => {}
             SchemeSpec::Learned { max_positions } => {
-                add(&mut arrays, "table", &[*max_positions, d], 1.0, &mut stream);
+                specs.push(uniform("table", vec![*max_positions, d], 1.0))
             }
             SchemeSpec::XlRelative { .. } => {
-                add(
-                    &mut arrays,
-                    "r",
-                    &[h, self.relative_rows(), d],
-                    1.0,
-                    &mut stream,
-                );
-                add(&mut arrays, "content_bias", &[h, d], 0.5, &mut stream);
-                add(&mut arrays, "position_bias", &[h, d], 0.5, &mut stream);
+                specs.push(uniform("r", vec![h, self.relative_rows(), d], 1.0));
+                specs.push(uniform("content_bias", vec![h, d], 0.5));
+                specs.push(uniform("position_bias", vec![h, d], 0.5));
             }
             SchemeSpec::Bucketed { num_buckets, .. } => {
-                add(
-                    &mut arrays,
-                    "bias_table",
-                    &[h, *num_buckets],
-                    2.0,
-                    &mut stream,
-                );
+                specs.push(uniform("bias_table", vec![h, *num_buckets], 2.0))
             }
             SchemeSpec::Clipped { clip_distance, .. } => {
-                add(
-                    &mut arrays,
-                    "w_key",
-                    &[h, 2 * clip_distance + 1, d],
-                    0.5,
-                    &mut stream,
-                );
-                add(
-                    &mut arrays,
-                    "w_value",
-                    &[h, 2 * clip_distance + 1, d],
-                    0.5,
-                    &mut stream,
-                );
+                specs.push(uniform("w_key", vec![h, 2 * clip_distance + 1, d], 0.5));
+                specs.push(uniform("w_value", vec![h, 2 * clip_distance + 1, d], 0.5));
             }
         }
+        specs
+    }
+
+    /// The seeded inputs of this case, in the case dtype (positions in i64).
+    pub fn inputs(&self) -> Result<Arrays> {
+        self.validate()?;
+        let mut stream = Stream::new(self.seed);
+        let mut arrays = Arrays::new();
+        for spec in self.input_specs() {
+            let tensor = match spec.fill {
+                Fill::Uniform(scale) => {
+                    Tensor::from_f64(self.dtype, stream.array(IxDyn(&spec.shape), scale))
+                }
+                Fill::Positions => {
+                    let p = Array1::from_iter(
+                        (0..spec.shape[0] as i64).map(|i| (self.query_start + i) as f64),
+                    );
+                    Tensor::from_f64(Dtype::I64, p.into_dyn())
+                }
+                Fill::RelativePositions => {
+                    let rel =
+                        Array1::from_iter(self.relative_positions().into_iter().map(|x| x as f64));
+                    Tensor::from_f64(Dtype::I64, rel.into_dyn())
+                }
+            };
+            arrays.insert(spec.name, tensor);
+        }
         Ok(arrays)
+    }
+
+    /// Checks that `inputs` has every input of the case with the right shape, naming
+    /// the first array that does not (extra arrays are allowed and ignored).
+    pub fn check_inputs(&self, inputs: &Arrays) -> Result<()> {
+        for spec in self.input_specs() {
+            match inputs.get(&spec.name) {
+                None => {
+                    return Err(Error::format(
+                        format!("case {}", self.id),
+                        format!("missing input array `{}`", spec.name),
+                    ))
+                }
+                Some(t) if t.shape() != spec.shape.as_slice() => {
+                    return Err(Error::format(
+                        format!("case {}, input `{}`", self.id, spec.name),
+                        format!("shape {:?}, the case needs {:?}", t.shape(), spec.shape),
+                    ))
+                }
+                Some(_) => {}
+            }
+        }
+        Ok(())
     }
 
     /// Names and shapes of the outputs a kernel must return for this case.

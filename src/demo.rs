@@ -26,11 +26,16 @@ use crate::tensor::Tensor;
 #[derive(Debug, Clone, Default)]
 pub struct TernKernel;
 
-fn get3(inputs: &Arrays, name: &str) -> Result<Array3<f64>> {
+/// A named input of the expected rank, or an error naming it (never a panic).
+fn get<D: ndarray::Dimension>(inputs: &Arrays, name: &str) -> Result<ndarray::Array<f64, D>> {
     let t = inputs
         .get(name)
         .ok_or_else(|| Error::format("run request", format!("missing input `{name}`")))?;
     fixed(name, t.view().to_owned())
+}
+
+fn get3(inputs: &Arrays, name: &str) -> Result<Array3<f64>> {
+    get(inputs, name)
 }
 
 impl TernKernel {
@@ -46,8 +51,8 @@ impl TernKernel {
     ) -> Result<(Array3<f64>, Array3<f64>, Array3<f64>)> {
         let (r, u, pos) = (
             get3(inputs, "r")?,
-            fixed::<ndarray::Ix2>("content_bias", inputs["content_bias"].view().to_owned())?,
-            fixed::<ndarray::Ix2>("position_bias", inputs["position_bias"].view().to_owned())?,
+            get::<ndarray::Ix2>(inputs, "content_bias")?,
+            get::<ndarray::Ix2>(inputs, "position_bias")?,
         );
         let relative = RelativeInputs {
             q: q.view(),

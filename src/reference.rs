@@ -79,6 +79,7 @@ fn angle_roundoff(dtype: Dtype) -> f64 {
 impl<'a> Pipeline<'a> {
     fn new(case: &'a Case, inputs: &Arrays, stage: Option<Dtype>) -> Result<Self> {
         case.validate()?;
+        case.check_inputs(inputs)?;
         let mut arrays = BTreeMap::new();
         for (name, _) in inputs.iter() {
             let tensor = input(inputs, case, name)?;

@@ -185,14 +185,14 @@ impl VectorFile {
         };
         let inputs = arrays("inputs")?;
         let expected = arrays("expected")?;
-        let want_inputs = case.inputs()?;
-        for (name, t) in &want_inputs {
-            match inputs.get(name) {
-                None => return Err(Error::format(at(&format!("inputs.{name}")), "missing")),
-                Some(got) if got.shape() != t.shape() => {
+        for spec in case.input_specs() {
+            let field = at(&format!("inputs.{}", spec.name));
+            match inputs.get(&spec.name) {
+                None => return Err(Error::format(field, "missing")),
+                Some(got) if got.shape() != spec.shape.as_slice() => {
                     return Err(Error::format(
-                        at(&format!("inputs.{name}")),
-                        format!("shape {:?}, the case needs {:?}", got.shape(), t.shape()),
+                        field,
+                        format!("shape {:?}, the case needs {:?}", got.shape(), spec.shape),
                     ))
                 }
                 _ => {}

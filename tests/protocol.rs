@@ -334,3 +334,41 @@ fn rust_example_adapter_conforms_on_what_it_implements() {
     assert_eq!(counts.passed, 4, "{text}");
     assert_eq!(report.exit_code(), EXIT_CONFORMING);
 }
+
+/// A `run` request whose arrays disagree with its case is answered with an error,
+/// never a panic, by the reference served over the protocol.
+#[test]
+fn served_reference_rejects_inputs_that_disagree_with_the_case() {
+    use posconform::kernel::protocol::{run_params, serve};
+    let case = suite("core")
+        .unwrap()
+        .into_iter()
+        .find(|c| c.id == "xl_relative.attention.padded_rows")
+        .unwrap();
+    let mut inputs = case.inputs().unwrap();
+    let k = inputs["k"]
+        .view()
+        .slice_move(ndarray::s![.., ..2, ..])
+        .to_owned()
+        .into_dyn();
+    inputs.insert(
+        "k".into(),
+        posconform::tensor::Tensor::from_f64(posconform::precision::Dtype::F32, k),
+    );
+    let request =
+        posconform::kernel::protocol::request(1, "run", run_params(&case, case.dtype, &inputs));
+    let mut out = Vec::new();
+    serve(
+        &mut ReferenceKernel::default(),
+        std::io::Cursor::new(request + "\n"),
+        &mut out,
+    )
+    .unwrap();
+    let reply: serde_json::Value = serde_json::from_slice(&out).unwrap();
+    let message = reply["error"]["message"].as_str().unwrap();
+    assert_eq!(reply["error"]["code"], -32000);
+    assert!(
+        message.contains("input `k`") && message.contains("shape [2, 2, 64]"),
+        "{message}"
+    );
+}
