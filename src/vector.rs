@@ -312,8 +312,16 @@ fn read_array(value: &Value, dir: &Path, location: &str) -> Result<Tensor> {
             ));
         }
         let path = dir.join(file);
-        let bytes = std::fs::read(&path).map_err(|e| Error::io("read", &path, e))?;
-        return Tensor::from_npy(&bytes, &path.display());
+        let bytes = std::fs::read(&path).map_err(|e| {
+            Error::format(
+                location,
+                format!("cannot read side file {}: {e}", path.display()),
+            )
+        })?;
+        return Tensor::from_npy(
+            &bytes,
+            &format!("{location} (side file {})", path.display()),
+        );
     }
     Tensor::from_json(value, &location)
 }

@@ -246,3 +246,103 @@ proptest! {
         }
     }
 }
+
+/// Renders a random JSON value of bounded depth (numbers, strings, arrays, objects with
+/// the keys the array format uses).
+fn json_value() -> impl Strategy<Value = serde_json::Value> {
+    use serde_json::Value;
+    let leaf = prop_oneof![
+        Just(Value::Null),
+        any::<bool>().prop_map(Value::Bool),
+        any::<i64>().prop_map(|n| Value::from(n)),
+        any::<f64>()
+            .prop_map(|x| serde_json::Number::from_f64(x).map_or(Value::Null, Value::Number)),
+        prop_oneof![
+            Just("f64"),
+            Just("bf16"),
+            Just("i64"),
+            Just("AAAA"),
+            Just("-inf"),
+            Just("nan"),
+            Just("x.npy")
+        ]
+        .prop_map(|s| Value::String(s.to_string())),
+    ];
+    leaf.prop_recursive(3, 24, 6, |inner| {
+        prop_oneof![
+            proptest::collection::vec(inner.clone(), 0..6).prop_map(serde_json::Value::Array),
+            proptest::collection::vec(
+                (
+                    prop_oneof![
+                        Just("dtype"),
+                        Just("shape"),
+                        Just("data"),
+                        Just("values"),
+                        Just("npy"),
+                        Just("x")
+                    ],
+                    inner
+                ),
+                0..5
+            )
+            .prop_map(|kv| serde_json::Value::Object(
+                kv.into_iter().map(|(k, v)| (k.to_string(), v)).collect()
+            )),
+        ]
+    })
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(512))]
+
+    /// Arbitrary bytes given to the .npy reader give an array or an error, never a
+    /// panic, including inputs that start with a valid header.
+    #[test]
+    fn npy_reader_never_panics(mut bytes in proptest::collection::vec(any::<u8>(), 0..200), prefix in any::<bool>()) {
+        if prefix {
+            let mut valid = posconform::tensor::Tensor::from_f64(
+                posconform::precision::Dtype::F32,
+                ndarray::ArrayD::zeros(ndarray::IxDyn(&[2, 3])),
+            )
+            .to_npy()
+            .unwrap();
+            valid.truncate(valid.len().min(10 + bytes.len() % 80));
+            valid.extend_from_slice(&bytes);
+            bytes = valid;
+        }
+        let outcome = std::panic::catch_unwind(|| posconform::tensor::Tensor::from_npy(&bytes, &"fuzz.npy").is_ok());
+        prop_assert!(outcome.is_ok());
+    }
+
+    /// Arbitrary JSON given to the array decoder gives an array or an error naming the
+    /// location, never a panic.
+    #[test]
+    fn array_decoder_never_panics(value in json_value()) {
+        let outcome = std::panic::catch_unwind(|| posconform::tensor::Tensor::from_json(&value, &"fuzz field"));
+        prop_assert!(outcome.is_ok());
+        if let Ok(Err(e)) = outcome {
+            prop_assert!(e.to_string().contains("fuzz field"), "{e}");
+        }
+    }
+
+    /// A real vector file with one field replaced by arbitrary JSON is read or
+    /// refused with an error naming the file, never a panic.
+    #[test]
+    fn vector_reader_never_panics_on_mutated_files(field in 0usize..8, value in json_value()) {
+        let dir = std::env::temp_dir().join(format!("posconform-mutate-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let case = posconform::suite::suite("core").unwrap().into_iter().find(|c| c.id == "alibi.scores.h12").unwrap();
+        let path = posconform::vector::VectorFile::build(&case, 2.0).unwrap().write(&dir).unwrap().pop().unwrap();
+        let mut doc: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&path).unwrap()).unwrap();
+        let pointer = ["/format", "/version", "/case", "/case/heads", "/case/operation", "/inputs/q", "/expected/scores", "/budget/scores/tolerance"][field];
+        if let Some(slot) = doc.pointer_mut(pointer) {
+            *slot = value;
+        }
+        std::fs::write(&path, serde_json::to_string(&doc).unwrap()).unwrap();
+        let outcome = std::panic::catch_unwind(|| posconform::vector::VectorFile::read(&path).map(drop));
+        prop_assert!(outcome.is_ok(), "panicked with {pointer} replaced");
+        if let Ok(Err(e)) = outcome {
+            prop_assert!(e.to_string().contains("alibi.scores.h12"), "{e}");
+        }
+    }
+}
