@@ -254,7 +254,7 @@ fn json_value() -> impl Strategy<Value = serde_json::Value> {
     let leaf = prop_oneof![
         Just(Value::Null),
         any::<bool>().prop_map(Value::Bool),
-        any::<i64>().prop_map(|n| Value::from(n)),
+        any::<i64>().prop_map(Value::from),
         any::<f64>()
             .prop_map(|x| serde_json::Number::from_f64(x).map_or(Value::Null, Value::Number)),
         prop_oneof![
