@@ -110,9 +110,15 @@ impl Kernel for TernKernel {
             outputs.insert(name.into(), Tensor::from_f64(Dtype::F32, x.into_dyn()));
         };
         match &case.operation {
-            Operation::Scores => {
-                let v = Array3::zeros(k.raw_dim());
-                let (s, _, _) = self.window(
+            Operation::Scores | Operation::Attention => {
+                let attention = case.operation == Operation::Attention;
+                // Scores need no values; zeros keep one code path for both operations.
+                let v = if attention {
+                    get3(inputs, "v")?
+                } else {
+                    Array3::zeros(k.raw_dim())
+                };
+                let (s, p, o) = self.window(
                     &params,
                     inputs,
                     q.view(),
@@ -120,20 +126,12 @@ impl Kernel for TernKernel {
                     v.view(),
                     &case.hidden_keys,
                 )?;
-                put("scores", s);
-            }
-            Operation::Attention => {
-                let v = get3(inputs, "v")?;
-                let (_, p, o) = self.window(
-                    &params,
-                    inputs,
-                    q.view(),
-                    k.view(),
-                    v.view(),
-                    &case.hidden_keys,
-                )?;
-                put("probs", p);
-                put("output", o);
+                if attention {
+                    put("probs", p);
+                    put("output", o);
+                } else {
+                    put("scores", s);
+                }
             }
             Operation::Stream { tokens } => {
                 let v = get3(inputs, "v")?;
