@@ -152,7 +152,7 @@ fn softmax_row(row: &mut [f64]) {
     let mut sum = 0.0;
     for x in row.iter_mut() {
         // exp(-inf) is exactly 0, so masked entries carry no weight.
-        *x = (*x - max).exp();
+        *x = libm::exp(*x - max);
         sum += *x;
     }
     for x in row.iter_mut() {

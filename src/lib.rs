@@ -32,6 +32,7 @@
 //! ```
 #![deny(missing_docs)]
 
+pub mod angle;
 pub mod attention;
 pub mod case;
 pub mod check;

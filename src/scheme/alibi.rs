@@ -82,7 +82,7 @@ pub fn slopes(heads: usize) -> Result<Vec<f64>> {
 /// `start · ratio^h`, so no rounding accumulates along the heads.
 fn power_of_two_slopes(n: usize) -> Vec<f64> {
     (1..=n)
-        .map(|h| (-8.0 * h as f64 / n as f64).exp2())
+        .map(|h| libm::exp2(-8.0 * h as f64 / n as f64))
         .collect()
 }
 

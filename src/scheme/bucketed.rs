@@ -166,8 +166,8 @@ pub fn bucket(relative_position: i64, rule: &Buckets) -> usize {
         n as usize
     } else {
         // The published operation order; see the module docs for why it matters.
-        let fraction = (n as f64 / max_exact as f64).ln()
-            / (rule.max_distance as f64 / max_exact as f64).ln()
+        let fraction = libm::log(n as f64 / max_exact as f64)
+            / libm::log(rule.max_distance as f64 / max_exact as f64)
             * (per_direction - max_exact) as f64;
         // `as` truncates toward zero like `int()` and saturates instead of wrapping.
         max_exact

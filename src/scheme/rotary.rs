@@ -29,9 +29,10 @@
 
 use ndarray::{Array2, Array3, ArrayView3, Axis};
 
+use crate::angle::{self, DoubleDouble};
 use crate::attention::{attend, dot_scores, masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
-use crate::scheme::sinusoidal::frequencies;
+use crate::scheme::sinusoidal::precise_frequencies;
 
 /// The base of the paper's `θ_i = 10000^(-2(i-1)/d)` (Su et al. 2021, under eq. 15,
 /// from memory; the same base as Vaswani et al. 2017, §3.5).
@@ -125,7 +126,7 @@ pub fn ntk_base(base: f64, factor: f64, rotary_dim: usize) -> Result<f64> {
     check_positive("base", base)?;
     check_positive("scaling.factor", factor)?;
     let d = rotary_dim as f64;
-    Ok(base * factor.powf(d / (d - 2.0)))
+    Ok(base * libm::pow(factor, d / (d - 2.0)))
 }
 
 fn check_positive(name: &'static str, x: f64) -> Result<()> {
@@ -141,6 +142,7 @@ fn check_positive(name: &'static str, x: f64) -> Result<()> {
 pub struct Rotary {
     params: RotaryParams,
     frequencies: Vec<f64>,
+    precise: Vec<DoubleDouble>,
     position_divisor: f64,
 }
 
@@ -190,17 +192,27 @@ impl Rotary {
             ));
         }
         check_positive("base", base)?;
-        let (effective_base, position_divisor) = match scaling {
-            RotaryScaling::None => (base, 1.0),
+        let ln_base = DoubleDouble::from_f64(base).ln();
+        let (ln_effective_base, position_divisor) = match scaling {
+            RotaryScaling::None => (ln_base, 1.0),
             RotaryScaling::LinearInterpolation { factor } => {
                 check_positive("scaling.factor", factor)?;
-                (base, factor)
+                (ln_base, factor)
             }
-            RotaryScaling::NtkAware { factor } => (ntk_base(base, factor, rotary_dim)?, 1.0),
+            RotaryScaling::NtkAware { factor } => {
+                // Validates as ntk_base does; ln b' = ln b + d_rot/(d_rot-2) · ln s.
+                ntk_base(base, factor, rotary_dim)?;
+                let d = DoubleDouble::from_f64(rotary_dim as f64);
+                let exponent = d.div(d.sub(DoubleDouble::from_f64(2.0)));
+                let ln_factor = DoubleDouble::from_f64(factor).ln();
+                (ln_base.add(exponent.mul(ln_factor)), 1.0)
+            }
         };
+        let precise = precise_frequencies(rotary_dim, ln_effective_base);
         Ok(Rotary {
             params,
-            frequencies: frequencies(rotary_dim, effective_base),
+            frequencies: precise.iter().map(|w| w.to_f64()).collect(),
+            precise,
             position_divisor,
         })
     }
@@ -216,13 +228,14 @@ impl Rotary {
     }
 
     /// The rotation angles `p'·θ_j` of one position, where `p' = p` or `p/s` under
-    /// linear interpolation.
+    /// linear interpolation (formed in double-double, rounded to f64).
     pub fn angles(&self, position: i64) -> Result<Vec<f64>> {
         let p = self.scaled_position(position)?;
-        Ok(self.frequencies.iter().map(|theta| p * theta).collect())
+        Ok(self.precise.iter().map(|&w| p.mul(w).to_f64()).collect())
     }
 
-    fn scaled_position(&self, position: i64) -> Result<f64> {
+    /// `p' = p / s` in double-double (`p` itself without linear interpolation).
+    fn scaled_position(&self, position: i64) -> Result<DoubleDouble> {
         if position.unsigned_abs() > MAX_POSITION as u64 {
             return Err(Error::PositionOutOfRange {
                 name: "rotary",
@@ -230,19 +243,23 @@ impl Rotary {
                 reason: format!("|p| must be <= 2^53 = {MAX_POSITION} to convert to f64 exactly"),
             });
         }
-        // Dividing by 1.0 is exact, so an unscaled encoding sees `p` itself.
-        Ok(position as f64 / self.position_divisor)
+        let p = DoubleDouble::from_f64(position as f64);
+        Ok(if self.position_divisor == 1.0 {
+            p
+        } else {
+            p.div(DoubleDouble::from_f64(self.position_divisor))
+        })
     }
 
     /// `(cos, sin)` of every angle of every position: `[positions.len(), d_rot/2]` each.
     fn rotation_table(&self, positions: &[i64]) -> Result<(Array2<f64>, Array2<f64>)> {
-        let pairs = self.frequencies.len();
+        let pairs = self.precise.len();
         let mut cos = Array2::zeros((positions.len(), pairs));
         let mut sin = Array2::zeros((positions.len(), pairs));
         for (n, &position) in positions.iter().enumerate() {
             let p = self.scaled_position(position)?;
-            for (j, theta) in self.frequencies.iter().enumerate() {
-                let (s, c) = (p * theta).sin_cos();
+            for (j, &theta) in self.precise.iter().enumerate() {
+                let (s, c) = angle::sin_cos(p, theta);
                 cos[[n, j]] = c;
                 sin[[n, j]] = s;
             }

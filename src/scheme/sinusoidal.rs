@@ -7,12 +7,14 @@
 //! Transformer-XL authors' code builds for its relative embeddings. An odd width is an
 //! error: there is no cosine partner for the last sine.
 //!
-//! Positions are any `i64` (negative, zero, up to 2^40 and beyond): `p` converts to
-//! `f64` exactly for `|p| <= 2^53`, and `sin`/`cos` of large arguments use the
-//! platform's correctly reduced libm.
+//! Positions are any `i64` with `|p| <= 2^53` (so `p` converts to `f64` exactly). The
+//! angles `p·ω_i` are formed in double-double arithmetic and reduced modulo `2π` before
+//! the sine and cosine ([`crate::angle`]), so every table entry is within about one unit
+//! in the last place of the true value for `|p·ω| <= 2^40`, on every machine.
 
 use ndarray::Array2;
 
+use crate::angle::{self, DoubleDouble};
 use crate::error::{Error, Result};
 
 /// Where the sine and cosine of one frequency sit in the encoding vector.
@@ -42,6 +44,7 @@ pub struct Sinusoid {
     base: f64,
     layout: SinusoidLayout,
     frequencies: Vec<f64>,
+    precise: Vec<DoubleDouble>,
 }
 
 /// The base used by the paper (Vaswani et al. 2017, §3.5).
@@ -58,12 +61,13 @@ impl Sinusoid {
         if !(base.is_finite() && base > 0.0) {
             return Err(Error::param("base", "a finite number > 0", base));
         }
-        let frequencies = frequencies(width, base);
+        let precise = precise_frequencies(width, DoubleDouble::from_f64(base).ln());
         Ok(Sinusoid {
             width,
             base,
             layout,
-            frequencies,
+            frequencies: precise.iter().map(|w| w.to_f64()).collect(),
+            precise,
         })
     }
 
@@ -87,16 +91,17 @@ impl Sinusoid {
         self.layout
     }
 
-    /// `ω_i = base^(-2i/width)` for `i = 0..width/2`.
+    /// `ω_i = base^(-2i/width)` for `i = 0..width/2`, rounded to f64 (the table itself
+    /// uses them in double-double).
     pub fn frequencies(&self) -> &[f64] {
         &self.frequencies
     }
 
     /// Writes `PE(position)` into `out` (length `width`).
     fn encode_into(&self, position: i64, out: &mut [f64]) {
-        let p = position as f64;
-        for (i, &omega) in self.frequencies.iter().enumerate() {
-            let (s, c) = (p * omega).sin_cos();
+        let p = DoubleDouble::from_f64(position as f64);
+        for (i, &omega) in self.precise.iter().enumerate() {
+            let (s, c) = angle::sin_cos(p, omega);
             let (is, ic) = self.layout.pair_indices(i, self.width);
             out[is] = s;
             out[ic] = c;
@@ -121,10 +126,10 @@ impl Sinusoid {
     }
 }
 
-/// `base^(-2i/width)` for `i = 0..width/2`, the frequency progression shared by the
-/// sinusoid and rotary schemes.
-pub(crate) fn frequencies(width: usize, base: f64) -> Vec<f64> {
+/// `base^(-2i/width)` for `i = 0..width/2` in double-double, from `ln base`: the
+/// frequency progression shared by the sinusoid and rotary schemes.
+pub(crate) fn precise_frequencies(width: usize, ln_base: DoubleDouble) -> Vec<DoubleDouble> {
     (0..width / 2)
-        .map(|i| base.powf(-((2 * i) as f64) / width as f64))
+        .map(|i| angle::frequency(ln_base, (2 * i) as f64, width as f64))
         .collect()
 }

@@ -3,6 +3,7 @@
 mod common;
 
 mod alibi;
+mod angles;
 mod bucketed;
 mod clipped;
 mod rotary;
