@@ -25,6 +25,27 @@
 //! used by the QD library (Hida, Li, Bailey 2001). No fused multiply-add is used, so the
 //! results do not depend on the processor.
 
+use std::cell::Cell;
+
+thread_local! {
+    static SINGLE_PRECISION: Cell<bool> = const { Cell::new(false) };
+}
+
+/// Runs `f` with angles formed the way a plain f32 kernel forms them: `p` and `ω`
+/// rounded to f32, their product in f32, and `sinf`/`cosf` of it. The same-precision
+/// baseline of a narrow dtype uses this to emulate a kernel at the edge of the
+/// numerical contract (docs/budgets.md); the flag is per thread and restored afterwards.
+pub fn with_single_precision_angles<R>(f: impl FnOnce() -> R) -> R {
+    struct Restore(bool);
+    impl Drop for Restore {
+        fn drop(&mut self) {
+            SINGLE_PRECISION.with(|p| p.set(self.0));
+        }
+    }
+    let _restore = Restore(SINGLE_PRECISION.with(|p| p.replace(true)));
+    f()
+}
+
 /// A double-double number `hi + lo` with `|lo| <= ulp(hi)/2`.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct DoubleDouble {
@@ -36,13 +57,13 @@ pub struct DoubleDouble {
 
 /// `ln 2` as a double-double (mpmath 1.3.0, 60 digits, split into two doubles).
 const LN2: DoubleDouble = DoubleDouble {
-    hi: 0.693_147_180_559_945_3,
+    hi: std::f64::consts::LN_2,
     lo: 2.319_046_813_846_299_6e-17,
 };
 
 /// `2π` as three doubles (mpmath 1.3.0, 60 digits, split into three doubles).
 const TWO_PI: [f64; 3] = [
-    6.283_185_307_179_586,
+    std::f64::consts::TAU,
     2.449_293_598_294_706_4e-16,
     -5.989_539_619_436_679e-33,
 ];
@@ -86,48 +107,10 @@ impl DoubleDouble {
         DoubleDouble { hi, lo }
     }
 
-    /// `self + other`.
-    pub fn add(self, other: Self) -> Self {
-        let (s, e) = two_sum(self.hi, other.hi);
-        let (t, f) = two_sum(self.lo, other.lo);
-        let (s, e) = quick_two_sum(s, e + t);
-        Self::renormalised(s, e + f)
-    }
-
-    /// `-self`.
-    pub fn neg(self) -> Self {
-        DoubleDouble {
-            hi: -self.hi,
-            lo: -self.lo,
-        }
-    }
-
-    /// `self - other`.
-    pub fn sub(self, other: Self) -> Self {
-        self.add(other.neg())
-    }
-
-    /// `self · other`.
-    pub fn mul(self, other: Self) -> Self {
-        let (p, e) = two_prod(self.hi, other.hi);
-        Self::renormalised(p, e + (self.hi * other.lo + self.lo * other.hi))
-    }
-
     /// `self · x` for an f64 `x`.
     pub fn mul_f64(self, x: f64) -> Self {
         let (p, e) = two_prod(self.hi, x);
         Self::renormalised(p, e + self.lo * x)
-    }
-
-    /// `self / other` (three quotient digits, as in the QD library's accurate division).
-    pub fn div(self, other: Self) -> Self {
-        let q1 = self.hi / other.hi;
-        let r = self.sub(other.mul_f64(q1));
-        let q2 = r.hi / other.hi;
-        let r = r.sub(other.mul_f64(q2));
-        let q3 = r.hi / other.hi;
-        let (q1, q2) = quick_two_sum(q1, q2);
-        DoubleDouble { hi: q1, lo: q2 }.add(DoubleDouble::from_f64(q3))
     }
 
     /// `e^self`, for `|self| < 700`.
@@ -135,7 +118,7 @@ impl DoubleDouble {
     /// `x = k·ln 2 + r`; `e^r` from its Taylor series on `r/2^10`, squared ten times.
     pub fn exp(self) -> Self {
         let k = libm::floor(self.hi / LN2.hi + 0.5);
-        let r = self.sub(LN2.mul_f64(k));
+        let r = self - LN2.mul_f64(k);
         let r = DoubleDouble {
             hi: r.hi / 1024.0,
             lo: r.lo / 1024.0,
@@ -144,17 +127,17 @@ impl DoubleDouble {
         let mut term = r;
         let mut s = r;
         for n in 2..=12 {
-            term = term.mul(r).div(DoubleDouble::from_f64(n as f64));
-            s = s.add(term);
+            term = term * r / DoubleDouble::from_f64(n as f64);
+            s = s + term;
             if term.hi.abs() < 1e-36 {
                 break;
             }
         }
         // (1 + s)^2 - 1 = 2s + s^2, ten times: e^(1024 r) - 1.
         for _ in 0..10 {
-            s = s.mul_f64(2.0).add(s.mul(s));
+            s = s.mul_f64(2.0) + s * s;
         }
-        let one_plus = s.add(DoubleDouble::from_f64(1.0));
+        let one_plus = s + DoubleDouble::from_f64(1.0);
         let scale = libm::exp2(k);
         DoubleDouble {
             hi: one_plus.hi * scale,
@@ -165,8 +148,7 @@ impl DoubleDouble {
     /// `ln(self)`, for `self > 0`: one Newton step `x + a·e^(-x) - 1` from the f64 log.
     pub fn ln(self) -> Self {
         let x = DoubleDouble::from_f64(libm::log(self.hi));
-        x.add(self.mul(x.neg().exp()))
-            .sub(DoubleDouble::from_f64(1.0))
+        x + self * (-x).exp() - DoubleDouble::from_f64(1.0)
     }
 
     /// The nearest f64.
@@ -175,17 +157,77 @@ impl DoubleDouble {
     }
 }
 
+impl std::ops::Add for DoubleDouble {
+    type Output = Self;
+
+    fn add(self, other: Self) -> Self {
+        let (s, e) = two_sum(self.hi, other.hi);
+        let (t, f) = two_sum(self.lo, other.lo);
+        let (s, e) = quick_two_sum(s, e + t);
+        Self::renormalised(s, e + f)
+    }
+}
+
+impl std::ops::Neg for DoubleDouble {
+    type Output = Self;
+
+    fn neg(self) -> Self {
+        DoubleDouble {
+            hi: -self.hi,
+            lo: -self.lo,
+        }
+    }
+}
+
+impl std::ops::Sub for DoubleDouble {
+    type Output = Self;
+
+    fn sub(self, other: Self) -> Self {
+        self + -other
+    }
+}
+
+impl std::ops::Mul for DoubleDouble {
+    type Output = Self;
+
+    fn mul(self, other: Self) -> Self {
+        let (p, e) = two_prod(self.hi, other.hi);
+        Self::renormalised(p, e + (self.hi * other.lo + self.lo * other.hi))
+    }
+}
+
+impl std::ops::Div for DoubleDouble {
+    type Output = Self;
+
+    /// Three quotient digits, as in the QD library's accurate division.
+    fn div(self, other: Self) -> Self {
+        let q1 = self.hi / other.hi;
+        let r = self - other.mul_f64(q1);
+        let q2 = r.hi / other.hi;
+        let r = r - other.mul_f64(q2);
+        let q3 = r.hi / other.hi;
+        let (q1, q2) = quick_two_sum(q1, q2);
+        DoubleDouble { hi: q1, lo: q2 } + DoubleDouble::from_f64(q3)
+    }
+}
+
 /// `base^(-numerator/denominator)` in double-double: the frequency `ω_i = base^(-2i/d)`
 /// of the sinusoid and rotary schemes, with `numerator = 2i`, `denominator = d`.
 pub fn frequency(ln_base: DoubleDouble, numerator: f64, denominator: f64) -> DoubleDouble {
-    let exponent = DoubleDouble::from_f64(numerator).div(DoubleDouble::from_f64(denominator));
-    ln_base.mul(exponent).neg().exp()
+    let exponent = DoubleDouble::from_f64(numerator) / DoubleDouble::from_f64(denominator);
+    (-(ln_base * exponent)).exp()
 }
 
 /// `(sin θ, cos θ)` for the angle `θ = position · ω`, both within about one unit in
 /// the last place for `|θ| <= 2^40`.
+///
+/// Inside [`with_single_precision_angles`], the f32 recipe instead.
 pub fn sin_cos(position: DoubleDouble, omega: DoubleDouble) -> (f64, f64) {
-    reduced_sin_cos(position.mul(omega))
+    if SINGLE_PRECISION.with(|p| p.get()) {
+        let theta = position.to_f64() as f32 * omega.to_f64() as f32;
+        return (libm::sinf(theta) as f64, libm::cosf(theta) as f64);
+    }
+    reduced_sin_cos(position * omega)
 }
 
 /// `(sin θ, cos θ)` of a double-double angle, reduced modulo `2π` first.
@@ -196,7 +238,7 @@ pub fn reduced_sin_cos(theta: DoubleDouble) -> (f64, f64) {
     let mut r = theta;
     for part in TWO_PI {
         let (p, e) = two_prod(k, part);
-        r = r.sub(DoubleDouble::renormalised(p, e));
+        r = r - DoubleDouble::renormalised(p, e);
     }
     let (s, c) = (libm::sin(r.hi), libm::cos(r.hi));
     // sin(h + l) = sin h + l·cos h, cos(h + l) = cos h - l·sin h, to first order in
@@ -212,7 +254,7 @@ mod tests {
     fn exp_and_ln_invert_each_other_to_double_double_precision() {
         for x in [-9.21, -1.0, -0.3, 1e-5, 0.5, 2.0, 9.21] {
             let y = DoubleDouble::from_f64(x).exp().ln();
-            let err = y.sub(DoubleDouble::from_f64(x)).to_f64().abs();
+            let err = (y - DoubleDouble::from_f64(x)).to_f64().abs();
             assert!(err < 1e-30 * x.abs().max(1.0), "x = {x}: {err:e}");
         }
     }
@@ -221,13 +263,13 @@ mod tests {
     fn ln2_constant_matches_its_own_exp() {
         // e^(ln 2) = 2 to double-double precision (constant from mpmath 1.3.0).
         let two = LN2.exp();
-        assert!((two.sub(DoubleDouble::from_f64(2.0))).to_f64().abs() < 1e-31);
+        assert!((two - DoubleDouble::from_f64(2.0)).to_f64().abs() < 1e-31);
     }
 
     #[test]
     fn division_recovers_the_dividend() {
-        let a = DoubleDouble::from_f64(1.0).div(DoubleDouble::from_f64(3.0));
-        let back = a.mul_f64(3.0).sub(DoubleDouble::from_f64(1.0));
+        let a = DoubleDouble::from_f64(1.0) / DoubleDouble::from_f64(3.0);
+        let back = a.mul_f64(3.0) - DoubleDouble::from_f64(1.0);
         assert!(back.to_f64().abs() < 1e-31);
     }
 }

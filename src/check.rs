@@ -161,7 +161,11 @@ pub fn run_case(
             false,
         ),
         Ok(Answer::Outputs { outputs, .. }) => {
-            let mut report = match compare(case, &inputs, &expected, &outputs, options) {
+            let options = CompareOptions {
+                declared: Some(dtype),
+                ..*options
+            };
+            let mut report = match compare(case, &inputs, &expected, &outputs, &options) {
                 Ok(r) => r,
                 Err(e) => {
                     return (

@@ -2,9 +2,9 @@
 //! and the mismatch report. A mismatch is a result (a value in a [`CaseReport`]), not
 //! an error.
 //!
-//! Budgets (DESIGN.md §4), per output array, for the dtype the kernel declares:
-//! - *analytic*: the per-element bound of [`crate::reference::analytic_bounds`]
-//!   (scores and encoding tables);
+//! Budgets (docs/budgets.md), per output array, for the dtype the kernel declares:
+//! - *analytic*: the per-element bound of [`crate::reference::analytic_bounds`],
+//!   derived from the numerical contract for every output;
 //! - *baseline*: `c × max(baseline error, floor)`, where the baseline error is the
 //!   largest deviation of the same-precision reference ([`crate::reference::baseline`])
 //!   from the f64 oracle (common practice: c = 2), and the floor `sqrt(n)·u·max|expected|`
@@ -14,9 +14,12 @@
 //! An element is within budget when its error is at most the larger of its analytic
 //! bound and the baseline allowance. The report says which criterion decided.
 //!
-//! Masked entries (expected `-inf` scores, or probabilities the reference gives exactly
-//! 0): a score passes when it is `-inf` or a finite sentinel carrying zero
-//! probability in the budget dtype; a probability must be exactly 0.
+//! Masked entries are the ones the case hides (the causal mask over `[memory ; current]`
+//! and the case's hidden keys), never the ones whose expected value happens to be 0: a
+//! masked score passes when it is `-inf` or a finite sentinel carrying zero probability
+//! in the budget dtype; a masked probability must be exactly 0. A visible probability
+//! that underflows to 0 in the reference is compared like any other element (a kernel
+//! may return a subnormal there).
 
 use std::collections::BTreeMap;
 
@@ -34,6 +37,10 @@ pub struct CompareOptions {
     pub factor: f64,
     /// Derive budgets for this dtype instead of the one the kernel declares.
     pub budget_dtype: Option<Dtype>,
+    /// The dtype the kernel computes in for this case (what it was asked for and
+    /// declared in its handshake). Budgets follow it whatever dtype the returned arrays
+    /// carry; `None` takes each array's own dtype as the declaration (result files).
+    pub declared: Option<Dtype>,
 }
 
 impl Default for CompareOptions {
@@ -41,6 +48,7 @@ impl Default for CompareOptions {
         CompareOptions {
             factor: 2.0,
             budget_dtype: None,
+            declared: None,
         }
     }
 }
@@ -99,7 +107,12 @@ pub fn budgets(
     dtype: Dtype,
     factor: f64,
 ) -> Result<BTreeMap<String, Budget>> {
-    let baseline = reference::baseline(case, inputs, dtype)?;
+    // The f64 baseline is the oracle itself: its error is 0 by construction.
+    let baseline = if dtype == Dtype::F64 {
+        Outputs::new()
+    } else {
+        reference::baseline(case, inputs, dtype)?
+    };
     let mut analytic = reference::analytic_bounds(case, inputs, dtype)?;
     let mut out = BTreeMap::new();
     for (name, want) in expected {
@@ -140,7 +153,8 @@ pub fn budgets(
     Ok(out)
 }
 
-/// Which criterion accepted (or would have had to accept) an output.
+/// Which criterion accepted an output (a pass), or whose tolerance applied at the worst
+/// element (a failure).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Criterion {
@@ -214,13 +228,15 @@ pub struct OutputReport {
     pub name: String,
     /// Its shape.
     pub shape: Vec<usize>,
-    /// The dtype the kernel declared.
+    /// The dtype the kernel declared for this case.
     pub dtype: Dtype,
+    /// The dtype of the array the kernel returned.
+    pub array_dtype: Dtype,
     /// The dtype the budget was derived for.
     pub budget_dtype: Dtype,
     /// Whether every element is within budget and no visible entry is non-finite.
     pub passed: bool,
-    /// The criterion that accepted it (or, failing, the analytic one if defined).
+    /// The criterion that accepted it, or (failing) whose tolerance applied at `worst`.
     pub decided_by: Criterion,
     /// Largest absolute error over compared elements.
     pub max_abs: f64,
@@ -228,8 +244,13 @@ pub struct OutputReport {
     pub max_rel: f64,
     /// Largest error in ULPs of the declared dtype.
     pub max_ulp: f64,
-    /// Coordinates of the element with the largest error relative to its budget.
+    /// Coordinates of the element with the largest error relative to its own
+    /// tolerance.
     pub worst: Option<Vec<usize>>,
+    /// `|got - expected|` at `worst`.
+    pub worst_error: f64,
+    /// `worst_error / worst_tolerance` (how far over or under its budget).
+    pub worst_ratio: f64,
     /// Kernel value at `worst`.
     pub worst_got: f64,
     /// Expected value at `worst`.
@@ -343,7 +364,8 @@ fn smallest_positive(dtype: Dtype) -> f64 {
     }
 }
 
-/// Compares a kernel's `got` outputs for `case` with `expected`.
+/// Compares a kernel's `got` outputs for `case` with `expected`, deriving the budgets
+/// from the case's inputs.
 ///
 /// Structural problems (a missing output, a wrong shape or an integer dtype for a
 /// float output) make the verdict [`Verdict::Error`] naming the output; extra outputs
@@ -355,6 +377,23 @@ pub fn compare(
     got: &Arrays,
     options: &CompareOptions,
 ) -> Result<CaseReport> {
+    compare_with_budgets(case, expected, got, options, &mut |dtype| {
+        budgets(case, inputs, expected, dtype, options.factor)
+    })
+}
+
+/// Budgets of every output of a case for one dtype, on demand.
+pub type BudgetSource<'a> = dyn FnMut(Dtype) -> Result<BTreeMap<String, Budget>> + 'a;
+
+/// [`compare`] with the budgets supplied by `budgets_for` (per budget dtype; e.g. the
+/// ones stored in a vector file).
+pub fn compare_with_budgets(
+    case: &Case,
+    expected: &Outputs,
+    got: &Arrays,
+    options: &CompareOptions,
+    budgets_for: &mut BudgetSource<'_>,
+) -> Result<CaseReport> {
     let mut report = CaseReport::empty(case, Verdict::Pass);
     for name in got.keys().filter(|n| !expected.contains_key(*n)) {
         report.warnings.push(format!(
@@ -363,6 +402,7 @@ pub fn compare(
     }
     let mut structural = Vec::new();
     let mut budget_cache: BTreeMap<Dtype, BTreeMap<String, Budget>> = BTreeMap::new();
+    let visibility = Visibility::of(case);
     for (name, want) in expected {
         let Some(tensor) = got.get(name) else {
             structural.push(format!("missing output `{name}`"));
@@ -383,41 +423,55 @@ pub fn compare(
             ));
             continue;
         }
-        let declared = tensor.dtype();
+        let array_dtype = tensor.dtype();
+        let declared = if exact {
+            array_dtype
+        } else {
+            options.declared.unwrap_or(array_dtype)
+        };
         let budget_dtype = if exact {
-            declared
+            Dtype::I64
         } else {
             options.budget_dtype.unwrap_or(declared)
         };
         if !exact {
             warn_about_dtypes(
-                case,
                 name,
                 declared,
+                array_dtype,
                 budget_dtype,
                 tensor,
                 &mut report.warnings,
             );
         }
-        let budgets_for_dtype = match budget_cache.entry(budget_dtype) {
-            std::collections::btree_map::Entry::Occupied(e) => e.into_mut(),
-            std::collections::btree_map::Entry::Vacant(e) => e.insert(budgets(
-                case,
-                inputs,
-                expected,
-                budget_dtype,
-                options.factor,
-            )?),
+        // Integer outputs have the same (exact) budget whatever the float dtype.
+        let source_dtype = if exact {
+            options
+                .budget_dtype
+                .or(options.declared)
+                .unwrap_or(case.dtype)
+        } else {
+            budget_dtype
         };
-        let budget = &budgets_for_dtype[name];
-        report.outputs.push(compare_output(
+        let budgets_for_dtype = match budget_cache.entry(source_dtype) {
+            std::collections::btree_map::Entry::Occupied(e) => e.into_mut(),
+            std::collections::btree_map::Entry::Vacant(e) => e.insert(budgets_for(source_dtype)?),
+        };
+        let Some(budget) = budgets_for_dtype.get(name) else {
+            structural.push(format!("no budget for output `{name}`"));
+            continue;
+        };
+        let mut output = compare_output(
             case,
             name,
             want,
-            &tensor.view().to_owned(),
+            tensor.view(),
             declared,
             budget,
-        ));
+            &visibility,
+        );
+        output.array_dtype = array_dtype;
+        report.outputs.push(output);
     }
     let answered: std::collections::BTreeSet<Dtype> = report
         .outputs
@@ -428,7 +482,7 @@ pub fn compare(
     if answered.iter().any(|d| *d != case.dtype) {
         let names: Vec<&str> = answered.iter().map(|d| d.name()).collect();
         report.warnings.push(format!(
-            "the case is written for {}; the kernel answered in {}, and budgets follow the dtype it answered in",
+            "the case is written for {}; the kernel computes it in {}, and budgets follow that dtype",
             case.dtype,
             names.join(", ")
         ));
@@ -441,14 +495,53 @@ pub fn compare(
     Ok(report)
 }
 
+/// Which entries of the key-indexed outputs (`scores`, `probs` of `scores` and
+/// `attention` cases) the case hides: the causal mask over `[memory ; current]` and
+/// the hidden keys.
+struct Visibility {
+    mask: Option<ndarray::Array2<bool>>,
+}
+
+impl Visibility {
+    fn of(case: &Case) -> Self {
+        let mask = matches!(case.operation, Operation::Scores | Operation::Attention).then(|| {
+            ndarray::Array2::from_shape_fn((case.query_len, case.key_len()), |(i, j)| {
+                j <= case.memory_len + i && !case.hidden_keys.contains(&j)
+            })
+        });
+        Visibility { mask }
+    }
+
+    /// Whether the element at `index` of `output` is hidden from its query.
+    fn hidden(&self, output: &str, index: &[usize]) -> bool {
+        match (&self.mask, output, index) {
+            (Some(mask), "scores" | "probs", [_, i, j]) => {
+                !mask.get([*i, *j]).copied().unwrap_or(true)
+            }
+            _ => false,
+        }
+    }
+}
+
 fn warn_about_dtypes(
-    _case: &Case,
     name: &str,
     declared: Dtype,
+    array_dtype: Dtype,
     budget_dtype: Dtype,
     tensor: &crate::tensor::Tensor,
     warnings: &mut Vec<String>,
 ) {
+    if array_dtype != declared {
+        let consequence = if array_dtype.unit_roundoff() < declared.unit_roundoff() {
+            String::new()
+        } else {
+            format!("; values rounded to {array_dtype} cannot be expected to meet it")
+        };
+        warnings.push(format!(
+            "output `{name}` came back as {array_dtype} although the kernel computes this case in {declared}; \
+             judged at the {declared} budget{consequence}"
+        ));
+    }
     if budget_dtype.unit_roundoff() > declared.unit_roundoff() {
         warnings.push(format!(
             "output `{name}`: tolerance derived for {budget_dtype}; your kernel claimed {declared}. \
@@ -482,9 +575,10 @@ fn compare_output(
     case: &Case,
     name: &str,
     want: &ArrayD<f64>,
-    got: &ArrayD<f64>,
+    got: ndarray::ArrayViewD<'_, f64>,
     declared: Dtype,
     budget: &Budget,
+    visibility: &Visibility,
 ) -> OutputReport {
     let is_scores = name == "scores";
     let is_probs = name == "probs";
@@ -492,6 +586,7 @@ fn compare_output(
         name: name.to_string(),
         shape: want.shape().to_vec(),
         dtype: declared,
+        array_dtype: declared,
         budget_dtype: budget.dtype,
         passed: true,
         decided_by: if budget.exact {
@@ -503,6 +598,8 @@ fn compare_output(
         max_rel: 0.0,
         max_ulp: 0.0,
         worst: None,
+        worst_error: 0.0,
+        worst_ratio: 0.0,
         worst_got: 0.0,
         worst_expected: 0.0,
         worst_tolerance: 0.0,
@@ -521,17 +618,38 @@ fn compare_output(
     let mut saw_mask = false;
     let mut worst_ratio = -1.0;
     let mut analytic_holds = budget.analytic.is_some();
-    let row_max = scores_row_max(want, got, is_scores);
+    let row_max = scores_row_max(want, &got, is_scores, visibility);
     // A probability rounds to zero in the dtype when it is below half the smallest
     // positive value; compared as 2p < smallest, since half of f64's smallest
     // subnormal is itself 0.
     let smallest = smallest_positive(budget.dtype);
+    // The worst element is the one furthest over its own tolerance; among infinite
+    // ratios a visible entry is shown before a masked one (a wrong value where one is
+    // expected says more than a leak).
+    let mut worst_masked = false;
+    let mut record_worst = |stats: &mut OutputReport,
+                            ratio: f64,
+                            idx: &[usize],
+                            g: f64,
+                            w: f64,
+                            tolerance: f64,
+                            masked: bool| {
+        if ratio > worst_ratio || (worst_masked && !masked && ratio >= worst_ratio) {
+            worst_masked = masked;
+            worst_ratio = ratio;
+            stats.worst = Some(idx.to_vec());
+            stats.worst_got = g;
+            stats.worst_expected = w;
+            stats.worst_tolerance = tolerance;
+            stats.worst_error = if g == w { 0.0 } else { (g - w).abs() };
+            stats.worst_ratio = ratio;
+        }
+    };
     for (index, &w) in want.indexed_iter() {
-        let idx = index.slice().to_vec();
-        let g = got[index.slice()];
-        let masked = (is_scores && w == f64::NEG_INFINITY) || (is_probs && w == 0.0);
+        let idx = index.slice();
+        let g = got[idx];
         stats.elements += 1;
-        if masked {
+        if (is_scores || is_probs) && (visibility.hidden(name, idx) || w == f64::NEG_INFINITY) {
             saw_mask = true;
             let ok = if is_scores {
                 if g == f64::NEG_INFINITY {
@@ -550,25 +668,27 @@ fn compare_output(
                 g == 0.0
             };
             if !ok {
+                if g.is_nan() || g == f64::INFINITY {
+                    stats.non_finite += 1;
+                }
                 leaks += 1;
-                error_map[index.slice()] = f64::INFINITY;
-                failing.push(idx);
+                error_map[idx] = f64::INFINITY;
+                record_worst(&mut stats, f64::INFINITY, idx, g, w, 0.0, true);
+                failing.push(idx.to_vec());
             }
             continue;
         }
+        let (analytic, allowance) = budget.at(idx);
+        let tolerance = analytic.max(allowance);
         if !g.is_finite() {
             // A non-finite answer where a finite one is expected is an infinite error.
             stats.max_abs = f64::INFINITY;
             stats.max_rel = f64::INFINITY;
             stats.max_ulp = f64::INFINITY;
             stats.non_finite += 1;
-            error_map[index.slice()] = f64::INFINITY;
-            if worst_ratio < f64::INFINITY {
-                worst_ratio = f64::INFINITY;
-                (stats.worst, stats.worst_got, stats.worst_expected) = (Some(idx.clone()), g, w);
-                stats.worst_tolerance = budget.at(&idx).0.max(budget.at(&idx).1);
-            }
-            failing.push(idx);
+            error_map[idx] = f64::INFINITY;
+            record_worst(&mut stats, f64::INFINITY, idx, g, w, tolerance, false);
+            failing.push(idx.to_vec());
             continue;
         }
         let err = (g - w).abs();
@@ -577,11 +697,9 @@ fn compare_output(
             stats.max_rel = stats.max_rel.max(err / w.abs());
         }
         stats.max_ulp = stats.max_ulp.max(ulp_distance(g, w, declared));
-        let (analytic, allowance) = budget.at(&idx);
         if err > analytic {
             analytic_holds = false;
         }
-        let tolerance = analytic.max(allowance);
         let ratio = if tolerance > 0.0 {
             err / tolerance
         } else if err > 0.0 {
@@ -589,24 +707,24 @@ fn compare_output(
         } else {
             0.0
         };
-        error_map[index.slice()] = ratio;
-        if ratio > worst_ratio {
-            worst_ratio = ratio;
-            (
-                stats.worst,
-                stats.worst_got,
-                stats.worst_expected,
-                stats.worst_tolerance,
-            ) = (Some(idx.clone()), g, w, tolerance);
-        }
+        error_map[idx] = ratio;
+        record_worst(&mut stats, ratio, idx, g, w, tolerance, false);
         if err > tolerance {
-            failing.push(idx);
+            failing.push(idx.to_vec());
         }
     }
     stats.over_budget = failing.len();
     stats.passed = failing.is_empty();
     if !budget.exact {
-        stats.decided_by = if analytic_holds {
+        // A pass names what accepted it; a failure names the criterion whose tolerance
+        // applied at the worst element (the larger of the two there).
+        let analytic_governs = if stats.passed {
+            analytic_holds
+        } else {
+            let at_worst = stats.worst.as_deref().map(|idx| budget.at(idx));
+            at_worst.is_some_and(|(analytic, allowance)| analytic >= allowance)
+        };
+        stats.decided_by = if analytic_governs {
             Criterion::Analytic
         } else {
             Criterion::Baseline
@@ -626,7 +744,9 @@ fn compare_output(
         }
     }
     if !stats.passed {
-        stats.patterns = patterns(case, name, want, got, &failing, &error_map, leaks);
+        stats.patterns = patterns(
+            case, name, want, &got, &failing, &error_map, leaks, visibility,
+        );
     }
     if want.ndim() == 3 && (is_scores || is_probs) {
         stats.error_map = Some(error_map);
@@ -637,16 +757,17 @@ fn compare_output(
 /// Largest kernel score over the visible entries of each row (key `[h, i]`).
 fn scores_row_max(
     want: &ArrayD<f64>,
-    got: &ArrayD<f64>,
+    got: &ndarray::ArrayViewD<'_, f64>,
     is_scores: bool,
+    visibility: &Visibility,
 ) -> BTreeMap<Vec<usize>, f64> {
     let mut out = BTreeMap::new();
     if !is_scores || want.ndim() == 0 {
         return out;
     }
     for (index, &w) in want.indexed_iter() {
-        if w.is_finite() {
-            let idx = index.slice();
+        let idx = index.slice();
+        if w.is_finite() && !visibility.hidden("scores", idx) {
             let g = got[idx];
             let entry = out
                 .entry(idx[..idx.len() - 1].to_vec())
@@ -660,7 +781,7 @@ fn scores_row_max(
 }
 
 /// Whether the kernel's value at `idx` is a masked one (`-inf` score, zero probability).
-fn masked_in(got: &ArrayD<f64>, idx: &[usize], name: &str) -> bool {
+fn masked_in(got: &ndarray::ArrayViewD<'_, f64>, idx: &[usize], name: &str) -> bool {
     let g = got[idx];
     if name == "probs" {
         g == 0.0
@@ -669,14 +790,16 @@ fn masked_in(got: &ArrayD<f64>, idx: &[usize], name: &str) -> bool {
     }
 }
 
+#[allow(clippy::too_many_arguments)]
 fn patterns(
     case: &Case,
     name: &str,
     want: &ArrayD<f64>,
-    got: &ArrayD<f64>,
+    got: &ndarray::ArrayViewD<'_, f64>,
     failing: &[Vec<usize>],
     error_map: &ArrayD<f64>,
     leaks: usize,
+    visibility: &Visibility,
 ) -> Vec<Pattern> {
     let mut out = Vec::new();
     let window_op = matches!(case.operation, Operation::Scores | Operation::Attention);
@@ -691,10 +814,7 @@ fn patterns(
         }
         let masked_visible: Vec<&Vec<usize>> = failing
             .iter()
-            .filter(|idx| {
-                let w = want[idx.as_slice()];
-                w.is_finite() && w != 0.0 && masked_in(got, idx, name)
-            })
+            .filter(|idx| !visibility.hidden(name, idx) && masked_in(got, idx, name))
             .collect();
         if !masked_visible.is_empty() {
             // Top-left alignment hides exactly i < j <= M + i in every row of every head.

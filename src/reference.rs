@@ -1,16 +1,17 @@
 //! The reference pipeline: a case's expected outputs, the same-precision baseline, and
-//! the analytic per-element error bounds (DESIGN.md §4).
+//! the analytic per-element error bounds (docs/budgets.md).
 //!
-//! - [`expected`]: the f64 oracle from the case's inputs.
-//! - [`baseline`]: the same pipeline with inputs and every stage tensor (scores,
-//!   probabilities, outputs, tables) rounded to a dtype. A kernel computing honestly
-//!   in that dtype lands near it; the budget accepts `c ×` its error.
-//! - [`analytic_bounds`]: per element, `(γ_n + 2u)·Σ|x_i y_i| + u·|result|` for scores
-//!   (Higham 2002, §3.1), with the phase error of angles formed in f32 (the narrowest
-//!   precision DESIGN.md §4 allows for `pos·θ`) for sinusoid, rotary and relative
-//!   tables; probabilities and outputs carry the score bounds through the softmax
-//!   (see `window_bounds`). `γ_n` is taken in the accumulation precision: f32 or wider
-//!   ([`crate::precision::accumulation_gamma`]).
+//! - [`expected`]: the f64 oracle from the case's inputs, with angles formed in
+//!   double-double ([`crate::angle`]) and every product in one fixed order, so the values
+//!   are within a few units in the last place of the truth and the same on every machine.
+//! - [`baseline`]: what a plain kernel at the edge of the numerical contract computes:
+//!   inputs and every stage tensor (tables, scores, probabilities, outputs) rounded to the
+//!   dtype, angles formed in f32 for narrower dtypes. The budget accepts `c ×` its error.
+//! - [`analytic_bounds`]: per element, a bound on the error of *any* kernel inside the
+//!   contract for a dtype ([`Contract`]): rounding of stored intermediates and of the
+//!   accumulation (`γ_n·Σ|x_i y_i|`, Higham 2002, §3.1), the *absolute* angle error of
+//!   position-dependent tables carried linearly through the products, the reference's
+//!   own f64 error, and the softmax carrying score errors into probabilities and outputs.
 
 use std::collections::BTreeMap;
 
@@ -19,7 +20,7 @@ use ndarray::{s, Array1, Array2, Array3, ArrayD, ArrayView3, Axis, Zip};
 use crate::attention::{attend, dot_scores, masked_softmax, Scale, Window};
 use crate::case::{fixed, input, Arrays, Case, Operation, SchemeSpec};
 use crate::error::Result;
-use crate::precision::{accumulation_gamma, with_portable_arithmetic, Dtype};
+use crate::precision::{gemm, with_portable_arithmetic, Dtype};
 use crate::scheme::{alibi, bucketed, clipped, learned, rotary, sinusoidal, xl_relative};
 
 /// Output arrays by name, in f64.
@@ -31,13 +32,21 @@ pub fn expected(case: &Case, inputs: &Arrays) -> Result<Outputs> {
     with_portable_arithmetic(|| Pipeline::new(case, inputs, None)?.run())
 }
 
-/// The same pipeline with inputs and stage tensors rounded to `dtype`.
+/// The same pipeline with inputs and stage tensors rounded to `dtype`, and angles
+/// formed in f32 unless `dtype` is f64 (a plain kernel at the edge of the contract).
 pub fn baseline(case: &Case, inputs: &Arrays, dtype: Dtype) -> Result<Outputs> {
-    with_portable_arithmetic(|| Pipeline::new(case, inputs, Some(dtype))?.run())
+    with_portable_arithmetic(|| {
+        let run = || Pipeline::new(case, inputs, Some(dtype))?.run();
+        if dtype == Dtype::F64 {
+            run()
+        } else {
+            crate::angle::with_single_precision_angles(run)
+        }
+    })
 }
 
-/// Analytic per-element bounds for the outputs that have one (scores and tables), for
-/// a kernel computing in `dtype`.
+/// Analytic per-element bounds on every output, for any kernel inside the numerical
+/// contract of `dtype`.
 pub fn analytic_bounds(case: &Case, inputs: &Arrays, dtype: Dtype) -> Result<Outputs> {
     with_portable_arithmetic(|| Pipeline::new(case, inputs, None)?.bounds(dtype))
 }
@@ -59,21 +68,154 @@ struct Pipeline<'a> {
     stage: Option<Dtype>,
 }
 
-fn abs3(x: ArrayView3<'_, f64>) -> Array3<f64> {
-    x.mapv(f64::abs)
+/// The unit roundoff of the reference's own f64 arithmetic.
+const R64: f64 = f64::EPSILON / 2.0;
+
+/// `γ_n = n·u / (1 - n·u)` (Higham 2002, §3.1), with the probabilistic `sqrt(n)·u` once
+/// `n·u >= 1/2` (see [`crate::precision::accumulation_gamma`]).
+fn gamma_of(u: f64, n: usize) -> f64 {
+    let nu = n as f64 * u;
+    if nu < 0.5 {
+        nu / (1.0 - nu)
+    } else {
+        (n as f64).sqrt() * u
+    }
 }
 
-/// Upper bound on the error of the angle `p·ω` formed in `u_angle` precision
-/// (exponent rounding, `powf`, and the product: see published_values/sinusoidal.rs),
-/// plus one rounding of sin or cos.
-fn angle_error(position: f64, omega: f64, exponent_times_ln_base: f64, u_angle: f64) -> f64 {
-    position.abs() * omega * (exponent_times_ln_base.abs() + 2.0) * u_angle + u_angle
+fn finite_or_zero(x: f64) -> f64 {
+    if x.is_finite() {
+        x
+    } else {
+        0.0
+    }
 }
 
-/// Angles are formed in f32 or wider (DESIGN.md §4): the angle precision of a kernel
-/// computing in `dtype`.
-fn angle_roundoff(dtype: Dtype) -> f64 {
-    dtype.unit_roundoff().min(Dtype::F32.unit_roundoff())
+fn angle_scaling(scaling: &rotary::RotaryScaling) -> AngleScaling {
+    match scaling {
+        rotary::RotaryScaling::None => AngleScaling::None,
+        rotary::RotaryScaling::LinearInterpolation { .. } => AngleScaling::Linear,
+        rotary::RotaryScaling::NtkAware { .. } => AngleScaling::Ntk,
+    }
+}
+
+/// The frequency index of sinusoid component `c` in a vector of `width`.
+fn sinusoid_pair(layout: sinusoidal::SinusoidLayout, c: usize, width: usize) -> usize {
+    match layout {
+        sinusoidal::SinusoidLayout::Interleaved => c / 2,
+        sinusoidal::SinusoidLayout::Concatenated => c % (width / 2),
+    }
+}
+
+/// For absolute schemes: the tables added to queries and keys, then the per-element
+/// errors of `q + table` and `k + table`.
+type AbsoluteErrors = (Array2<f64>, Array2<f64>, Array3<f64>, Array3<f64>);
+
+/// How a scheme turns positions into angles, for [`Contract::angle_error`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum AngleScaling {
+    /// `θ = p·ω` (sinusoids, unscaled rotary).
+    None,
+    /// `θ = (p/s)·ω`: linear position interpolation.
+    Linear,
+    /// `θ = p·ω'` with `ω'` from an NTK-aware base.
+    Ntk,
+}
+
+/// What the numerical contract (docs/budgets.md) lets a kernel declaring one dtype do,
+/// as the unit roundoffs and floor its budget is built from.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Contract {
+    /// `u_s`: tables and every elementwise intermediate may be stored in the dtype.
+    pub storage: f64,
+    /// `u_acc`: dot products and softmax sums accumulate in f32 or wider (in the dtype
+    /// itself for f32 and f64).
+    pub accumulation: f64,
+    /// `u_a`: frequencies and angles `p·ω` are formed in f32 or wider (in f64 for an
+    /// f64 kernel).
+    pub angle: f64,
+    /// Absolute error allowed below the dtype's normal range: the smallest normal
+    /// number for f64, f32 and bf16 (flushing subnormals to zero is common practice on
+    /// accelerators), half the subnormal spacing for f16 (gradual underflow).
+    pub floor: f64,
+}
+
+impl Contract {
+    /// The contract of a kernel declaring `dtype`.
+    pub fn for_dtype(dtype: Dtype) -> Self {
+        let wide = dtype.unit_roundoff().min(Dtype::F32.unit_roundoff());
+        Contract {
+            storage: dtype.unit_roundoff(),
+            accumulation: wide,
+            angle: wide,
+            floor: match dtype {
+                Dtype::F64 => f64::MIN_POSITIVE,
+                Dtype::F32 | Dtype::Bf16 => f32::MIN_POSITIVE as f64,
+                Dtype::F16 => 2f64.powi(-25),
+                Dtype::I64 => 0.0,
+            },
+        }
+    }
+
+    /// `γ_n` of the kernel's accumulation.
+    pub fn gamma(&self, n: usize) -> f64 {
+        gamma_of(self.accumulation, n)
+    }
+
+    /// Bound on the error of an angle `θ = p'·ω` formed at the angle precision, from
+    /// the position `p`, the true `θ` and `ω`, and how positions are scaled
+    /// (docs/budgets.md, "Angles"):
+    ///
+    /// - `ω = 1` (the first frequency of every formula) is exact, so `θ = p'` carries
+    ///   only the rounding of `p` (when it exceeds the angle precision's exact integers)
+    ///   and of `p/s` under linear interpolation;
+    /// - otherwise `ω` carries up to `(4|ln ω| + 2)·u_a` relative, covering the usual
+    ///   correct formulas (`base^(-2i/d)`, `exp(-2i·ln(base)/d)`, `1/base^(2i/d)`: each
+    ///   rounds an exponent or a logarithm whose error is multiplied by `|ln ω|`), `6u_a`
+    ///   more for an NTK-aware base formed at the angle precision, and the product `p'·ω`
+    ///   one more `u_a`.
+    pub fn angle_error(&self, position: f64, theta: f64, omega: f64, scaling: AngleScaling) -> f64 {
+        let u = self.angle;
+        let exact_positions = if u < Dtype::F32.unit_roundoff() {
+            Dtype::F64.exact_integer_limit()
+        } else {
+            Dtype::F32.exact_integer_limit()
+        };
+        let mut relative = if position.abs() > exact_positions {
+            u
+        } else {
+            0.0
+        };
+        if scaling == AngleScaling::Linear {
+            relative += u;
+        }
+        if omega < 1.0 {
+            let ln = if omega > 0.0 {
+                libm::log(omega).abs()
+            } else {
+                0.0
+            };
+            relative += (4.0 * ln + 3.0) * u;
+            if scaling == AngleScaling::Ntk {
+                relative += 6.0 * u;
+            }
+        }
+        relative * theta.abs()
+    }
+
+    /// Error of one sinusoid or cos/sin table value besides its angle error: sine or
+    /// cosine evaluated at the angle precision (2u_a), stored in the dtype (u_s), and
+    /// the reference's own value (within 2 ulps of the truth: src/angle.rs).
+    pub fn table_value_error(&self) -> f64 {
+        2.0 * self.angle + self.storage + 3.0 * R64
+    }
+
+    /// Relative error `e` of one rotated component besides the angle error, per unit of
+    /// `|x_a| + |x_b|`: cos/sin evaluated and stored (`2u_a + u_s`), the two products
+    /// and their sum rounded (`3u_s`), the input rounded to the dtype (`u_s`), and the
+    /// reference's own rotation (`6·2^-53`).
+    pub fn rotated_component_error(&self) -> f64 {
+        2.0 * self.angle + 5.0 * self.storage + 6.0 * R64
+    }
 }
 
 impl<'a> Pipeline<'a> {
@@ -434,23 +576,24 @@ impl<'a> Pipeline<'a> {
 
     fn bounds(&self, dtype: Dtype) -> Result<Outputs> {
         let case = self.case;
-        let ua = angle_roundoff(dtype);
+        let contract = Contract::for_dtype(dtype);
         let mut out = Outputs::new();
         match &case.operation {
             Operation::Encode => {
                 let (name, values) = self.encode()?;
-                let bound = self.encode_bounds(&values, dtype, ua)?;
+                let bound = self.encode_bounds(&values, &contract)?;
                 out.insert(name.to_string(), bound);
             }
             Operation::Scores => {
                 let (q, k) = (self.get3("q")?, self.get3("k")?);
-                let bound = self.score_bounds(q.view(), k.view(), case.query_start, dtype)?;
+                let (bound, _) =
+                    self.score_bounds(q.view(), k.view(), case.query_start, &contract)?;
                 out.insert("scores".into(), bound.into_dyn());
             }
             Operation::Attention => {
                 let (q, k, v) = (self.get3("q")?, self.get3("k")?, self.get3("v")?);
                 let (probs, output) =
-                    self.window_bounds(q.view(), k.view(), v.view(), case.query_start, dtype)?;
+                    self.window_bounds(q.view(), k.view(), v.view(), case.query_start, &contract)?;
                 out.insert("probs".into(), probs.into_dyn());
                 out.insert("output".into(), output.into_dyn());
             }
@@ -465,7 +608,7 @@ impl<'a> Pipeline<'a> {
                         k.slice(s![.., first_key..end, ..]),
                         v.slice(s![.., first_key..end, ..]),
                         case.query_start + start as i64,
-                        dtype,
+                        &contract,
                     )?;
                     output.slice_mut(s![.., start..end, ..]).assign(&o);
                 }
@@ -474,7 +617,7 @@ impl<'a> Pipeline<'a> {
             Operation::Decode { prefill, .. } => {
                 let (q, k, v) = (self.get3("q")?, self.get3("k")?, self.get3("v")?);
                 let (_, o) =
-                    self.window_bounds(q.view(), k.view(), v.view(), case.query_start, dtype)?;
+                    self.window_bounds(q.view(), k.view(), v.view(), case.query_start, &contract)?;
                 out.insert(
                     "output".into(),
                     o.slice(s![.., *prefill.., ..]).to_owned().into_dyn(),
@@ -484,173 +627,73 @@ impl<'a> Pipeline<'a> {
         Ok(out)
     }
 
-    /// Per-element bound on each visible score: `(γ_n + 2u)·magnitude + u·|s|`, with
-    /// `γ_n` in the accumulation precision and `u` the dtype's (inputs and the result
-    /// are rounded to it). 0 on hidden entries.
+    /// Per-element bound on each visible score of one window (0 on hidden entries),
+    /// and the scores themselves.
+    ///
+    /// Every scheme's bound is `scale · (terms of the products) + 2u_s|s| + floor`:
+    /// the terms are rounding of the stored intermediates and of the accumulation
+    /// (`γ_n`, multiplied by a `Σ|x_i y_i|` magnitude), plus, for position-dependent
+    /// tables, the *absolute* angle error carried linearly through the products
+    /// (docs/budgets.md, "Scores").
     fn score_bounds(
         &self,
         q: ArrayView3<'_, f64>,
         k: ArrayView3<'_, f64>,
         p0: i64,
-        dtype: Dtype,
-    ) -> Result<Array3<f64>> {
-        let u = dtype.unit_roundoff();
-        let scores = self.window_scores(q, k, p0)?;
-        let gamma = accumulation_gamma(dtype, reduction_length(self.case, "scores")) + 2.0 * u;
-        let magnitude = self.score_magnitude(q, k, p0, angle_roundoff(dtype))?;
-        Ok(Zip::from(&magnitude).and(&scores).map_collect(|&m, &s| {
-            if s.is_finite() {
-                gamma * m + u * s.abs()
-            } else {
-                0.0
-            }
-        }))
-    }
-
-    /// Bounds on probabilities and outputs of one window, propagated from the score
-    /// bounds: if every score of row `i` is off by at most `S_i`, each probability is
-    /// off by a factor within `e^(±2 S_i)`, i.e. by about `2 S_i · p_ij`; the softmax's
-    /// own exp, sum and division add `γ_(K+2)` relatively, the output's weighted sum
-    /// `γ_K · Σ_j p_ij |v_j|`, and each result is rounded once to the dtype.
-    fn window_bounds(
-        &self,
-        q: ArrayView3<'_, f64>,
-        k: ArrayView3<'_, f64>,
-        v: ArrayView3<'_, f64>,
-        p0: i64,
-        dtype: Dtype,
+        contract: &Contract,
     ) -> Result<(Array3<f64>, Array3<f64>)> {
-        let u = dtype.unit_roundoff();
-        let window = crate::attention::window_for(q, k)?;
-        let mut score_bound = self.score_bounds(q, k, p0, dtype)?;
-        let (_, probs, output) = self.attend_window(q, k, v, p0)?;
-        for &j in &self.case.hidden_keys {
-            score_bound.slice_mut(s![.., .., j]).fill(0.0);
-        }
-        let key_len = window.key_len();
-        let relative = |row_bound: f64| {
-            let growth = (2.0 * row_bound).exp_m1();
-            if growth.is_finite() {
-                growth
-            } else {
-                f64::MAX
-            }
-        };
-        let row_max = score_bound.map_axis(ndarray::Axis(2), |row| {
-            row.iter().copied().fold(0.0, f64::max)
-        });
-        let softmax_gamma = accumulation_gamma(dtype, key_len + 2);
-        let probs_bound = Array3::from_shape_fn(probs.raw_dim(), |(h, i, j)| {
-            let p = probs[[h, i, j]];
-            p * (relative(row_max[[h, i]]) + softmax_gamma) + u * p
-        });
-        // Σ_j p_ij (|v_jc| + |value embedding|): the magnitude of each output element.
-        let magnitude = self.window_output(&probs, v.mapv(f64::abs).view(), window, true)?;
-        let output_gamma = accumulation_gamma(dtype, key_len) + u;
-        let output_bound = Array3::from_shape_fn(output.raw_dim(), |(h, i, c)| {
-            let m = magnitude[[h, i, c]];
-            m * (relative(row_max[[h, i]]) + softmax_gamma + output_gamma)
-                + u * output[[h, i, c]].abs()
-        });
-        Ok((probs_bound, output_bound))
-    }
-
-    /// `Σ|x_i y_i|`-type magnitude of each score, plus the phase-error contribution of
-    /// position-dependent factors.
-    fn score_magnitude(
-        &self,
-        q: ArrayView3<'_, f64>,
-        k: ArrayView3<'_, f64>,
-        p0: i64,
-        u_angle: f64,
-    ) -> Result<Array3<f64>> {
         let case = self.case;
         let window = crate::attention::window_for(q, k)?;
         let (qp, kp) = xl_relative::standard_positions(window, p0);
-        let factor = case.scheme.scale().factor(case.head_dim).abs();
-        let plain = |a: Array3<f64>, b: Array3<f64>| -> Result<Array3<f64>> {
-            Ok(dot_scores(a.view(), b.view(), Scale::Fixed(factor))?
-                .0
-                .mapv(|x| if x.is_finite() { x } else { 0.0 }))
+        let scores = self.window_scores(q, k, p0)?;
+        let d = case.head_dim;
+        let factor = case.scheme.scale().factor(d).abs();
+        let us = contract.storage;
+        // γ' of the dot product: the kernel's accumulation, one rounding of the scale
+        // product, and the reference's own f64 accumulation.
+        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let products = |a: &Array3<f64>, b: &Array3<f64>| -> Array3<f64> {
+            let mut out = Array3::zeros((case.heads, window.query_len(), window.key_len()));
+            Zip::from(out.outer_iter_mut())
+                .and(a.outer_iter())
+                .and(b.outer_iter())
+                .for_each(|mut o, a, b| gemm(factor, &a, &b.t(), 0.0, &mut o));
+            out
         };
-        match &case.scheme {
-            SchemeSpec::Sinusoidal { base, layout } => {
-                let pe = self.sinusoid(case.head_dim, *base, *layout)?;
-                let (qa, ka) = (
-                    abs3((&q + &pe.table(&qp)).view()),
-                    abs3((&k + &pe.table(&kp)).view()),
-                );
-                let errors = |positions: &[i64]| {
-                    Array2::from_shape_fn((positions.len(), case.head_dim), |(n, c)| {
-                        let i = c / 2;
-                        let i = if *layout == sinusoidal::SinusoidLayout::Interleaved {
-                            i
-                        } else {
-                            c % (case.head_dim / 2)
-                        };
-                        let omega = pe.frequencies()[i];
-                        angle_error(positions[n] as f64, omega, omega.ln(), u_angle)
-                    })
-                };
-                let (eq, ek) = (errors(&qp), errors(&kp));
-                let eq3 = Array3::from_shape_fn(qa.raw_dim(), |(_, n, c)| eq[[n, c]]);
-                let ek3 = Array3::from_shape_fn(ka.raw_dim(), |(_, n, c)| ek[[n, c]]);
-                Ok(plain(qa.clone(), ka.clone())? + plain(eq3, ka)? + plain(qa, ek3)?)
-            }
-            SchemeSpec::Learned { .. } => {
-                let qa = abs3((&q + &self.absolute_table(&qp)?).view());
-                let ka = abs3((&k + &self.absolute_table(&kp)?).view());
-                plain(qa, ka)
+        let terms: Array3<f64> = match &case.scheme {
+            SchemeSpec::Sinusoidal { .. } | SchemeSpec::Learned { .. } => {
+                let (qt, kt, eq, ek) = self.absolute_errors(q, k, &qp, &kp, contract)?;
+                let (qa, ka) = ((&q + &qt).mapv(f64::abs), (&k + &kt).mapv(f64::abs));
+                // ε_q·|k̂| + |q̂|·ε_k + ε_q·ε_k + γ'·|q̂|·|k̂|
+                products(&eq, &ka)
+                    + products(&qa, &ek)
+                    + products(&eq, &ek)
+                    + products(&qa, &ka) * gamma
             }
             SchemeSpec::XlRelative { clamp_len, .. } => {
                 let (r, u, v) = (
-                    self.get3("r")?,
-                    self.get2("content_bias")?,
-                    self.get2("position_bias")?,
+                    self.get3("r")?.mapv(f64::abs),
+                    self.get2("content_bias")?.mapv(f64::abs),
+                    self.get2("position_bias")?.mapv(f64::abs),
                 );
-                let (qa, ka, ra, ua, va) = (
-                    abs3(q),
-                    abs3(k),
-                    r.mapv(f64::abs),
-                    u.mapv(f64::abs),
-                    v.mapv(f64::abs),
-                );
+                let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
                 let inputs = xl_relative::RelativeInputs {
                     q: qa.view(),
                     k: ka.view(),
-                    r: ra.view(),
-                    u: ua.view(),
-                    v: va.view(),
+                    r: r.view(),
+                    u: u.view(),
+                    v: v.view(),
                 };
                 let params = xl_relative::RelativeParams {
                     scale: Scale::Fixed(factor),
                     clamp_len: *clamp_len,
                 };
-                Ok(xl_relative::scores(&inputs, &params)?
-                    .mapv(|x| if x.is_finite() { x } else { 0.0 }))
+                // Σ(|q|+|u|)|k| + Σ(|q|+|v|)|r_Δ|: q+u and q+v rounded, the inputs
+                // rounded to the dtype, two dot products and their sum.
+                let magnitude = xl_relative::scores(&inputs, &params)?.mapv(finite_or_zero);
+                magnitude * (gamma + 5.0 * us + 4.0 * R64)
             }
-            SchemeSpec::Rotary { .. } => {
-                let rot = self.rotary()?;
-                let theta0 = rot.frequencies().first().copied().unwrap_or(0.0);
-                let base_ln = match &case.scheme {
-                    SchemeSpec::Rotary { base, .. } => base.ln(),
-                    _ => 0.0,
-                };
-                let scaled = |p: i64| {
-                    rot.angles(p)
-                        .map(|a| a.first().copied().unwrap_or(0.0) / theta0.max(f64::MIN_POSITIVE))
-                };
-                let norms =
-                    |x: ArrayView3<'_, f64>| x.map_axis(Axis(2), |row| row.dot(&row).sqrt());
-                let (nq, nk) = (norms(q), norms(k));
-                let mut out = Array3::zeros((case.heads, window.query_len(), window.key_len()));
-                for ((h, i, j), o) in out.indexed_iter_mut() {
-                    let eq = angle_error(scaled(qp[i])?, theta0, base_ln, u_angle);
-                    let ek = angle_error(scaled(kp[j])?, theta0, base_ln, u_angle);
-                    *o = factor * nq[[h, i]] * nk[[h, j]] * (1.0 + eq + ek);
-                }
-                Ok(out)
-            }
+            SchemeSpec::Rotary { .. } => self.rotary_score_terms(q, k, &qp, &kp, contract)?,
             SchemeSpec::Alibi { .. } => {
                 let bias = alibi::bias(
                     &alibi::slopes(case.heads)?,
@@ -658,14 +701,18 @@ impl<'a> Pipeline<'a> {
                     alibi::BiasForm::Distance,
                     p0,
                 )?;
-                Ok(plain(abs3(q), abs3(k))?
-                    + bias.mapv(|b| if b.is_finite() { b.abs() } else { 0.0 }))
+                let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
+                // The slope formed at the angle precision, the product m·Δ and the
+                // bias stored in the dtype.
+                products(&qa, &ka) * (gamma + 3.0 * us)
+                    + bias.mapv(|b| finite_or_zero(b).abs()) * (contract.angle + 2.0 * us + R64)
             }
             SchemeSpec::Bucketed { .. } => {
                 let rule = self.buckets()?;
                 let bias = bucketed::bias(self.get2("bias_table")?.view(), window, &rule)?;
-                Ok(plain(abs3(q), abs3(k))?
-                    + bias.mapv(|b| if b.is_finite() { b.abs() } else { 0.0 }))
+                let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
+                products(&qa, &ka) * (gamma + 3.0 * us)
+                    + bias.mapv(|b| finite_or_zero(b).abs()) * (2.0 * us)
             }
             SchemeSpec::Clipped { clip_distance, .. } => {
                 let w = self.get3("w_key")?.mapv(f64::abs);
@@ -673,80 +720,257 @@ impl<'a> Pipeline<'a> {
                     clip_distance: *clip_distance,
                     scale: Scale::Fixed(factor),
                 };
-                Ok(
-                    clipped::scores(abs3(q).view(), abs3(k).view(), w.view(), &params)?.mapv(|x| {
-                        if x.is_finite() {
-                            x
-                        } else {
-                            0.0
-                        }
-                    }),
-                )
+                let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
+                clipped::scores(qa.view(), ka.view(), w.view(), &params)?.mapv(finite_or_zero)
+                    * (gamma + 4.0 * us)
             }
+        };
+        let mut bound = Zip::from(&terms).and(&scores).map_collect(|&t, &s| {
+            if s.is_finite() {
+                t + 2.0 * us * s.abs() + contract.floor
+            } else {
+                0.0
+            }
+        });
+        for &j in &self.case.hidden_keys {
+            bound.slice_mut(s![.., .., j]).fill(0.0);
+        }
+        Ok((bound, scores))
+    }
+
+    /// For absolute schemes: the tables added to queries and keys, and the per-element
+    /// error `ε` of `q + table` a kernel may make: the table's angle error (sinusoid),
+    /// its evaluation and storage, the sum's rounding and the inputs' rounding.
+    fn absolute_errors(
+        &self,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        qp: &[i64],
+        kp: &[i64],
+        contract: &Contract,
+    ) -> Result<AbsoluteErrors> {
+        let (qt, kt) = (self.absolute_table(qp)?, self.absolute_table(kp)?);
+        let rounding = contract.storage + R64;
+        let errors = |x: ArrayView3<'_, f64>, table: &Array2<f64>, positions: &[i64]| {
+            let table_error = self.table_errors(table, positions, contract);
+            Array3::from_shape_fn(x.raw_dim(), |(h, n, c)| {
+                let sum = x[[h, n, c]] + table[[n, c]];
+                table_error[[n, c]] + rounding * (sum.abs() + x[[h, n, c]].abs())
+            })
+        };
+        let (eq, ek) = (errors(q, &qt, qp), errors(k, &kt, kp));
+        Ok((qt, kt, eq, ek))
+    }
+
+    /// Per-element error of an absolute table at `positions`: a sinusoid's angle error,
+    /// evaluation and storage; a learned table's rounding to the dtype.
+    fn table_errors(
+        &self,
+        table: &Array2<f64>,
+        positions: &[i64],
+        contract: &Contract,
+    ) -> Array2<f64> {
+        match &self.case.scheme {
+            SchemeSpec::Sinusoidal { base, layout } => {
+                let width = self.case.head_dim;
+                let omegas = match self.sinusoid(width, *base, *layout) {
+                    Ok(pe) => pe.frequencies().to_vec(),
+                    Err(_) => vec![0.0; width / 2],
+                };
+                Array2::from_shape_fn(table.raw_dim(), |(n, c)| {
+                    let pair = sinusoid_pair(*layout, c, width);
+                    let omega = omegas[pair];
+                    let p = positions[n] as f64;
+                    contract.angle_error(p, p * omega, omega, AngleScaling::None)
+                        + contract.table_value_error()
+                })
+            }
+            _ => table.mapv(|t| (contract.storage + R64) * t.abs()),
         }
     }
 
-    fn encode_bounds(
+    /// The rotary score terms: per rotated pair `j`,
+    /// `ρ_q ρ_k (δθ_q + δθ_k + 4e + 4e² + γ')` (a rotation by a wrong angle moves a pair
+    /// of norm `ρ` by `ρ·|δθ|`; `e` is the relative error of one rotated component from
+    /// cos/sin evaluation, storage, the rotation's products and the inputs' rounding),
+    /// plus `(2u_s + γ')·Σ|q_c k_c|` over the pass-through tail; all times the scale.
+    fn rotary_score_terms(
         &self,
-        values: &ArrayD<f64>,
-        dtype: Dtype,
-        u_angle: f64,
-    ) -> Result<ArrayD<f64>> {
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        qp: &[i64],
+        kp: &[i64],
+        contract: &Contract,
+    ) -> Result<Array3<f64>> {
         let case = self.case;
-        let u = dtype.unit_roundoff();
+        let rot = self.rotary()?;
+        let params = *rot.params();
+        let pairs = params.rotary_dim / 2;
+        let d = case.head_dim;
+        let factor = case.scheme.scale().factor(d).abs();
+        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let e = contract.rotated_component_error();
+        let per_pair = 4.0 * e + 4.0 * e * e + gamma;
+        let scaling = angle_scaling(&params.scaling);
+        let angle_errors = |positions: &[i64]| -> Result<Array2<f64>> {
+            let mut out = Array2::zeros((positions.len(), pairs));
+            for (n, &p) in positions.iter().enumerate() {
+                for (j, theta) in rot.angles(p)?.into_iter().enumerate() {
+                    out[[n, j]] =
+                        contract.angle_error(p as f64, theta, rot.frequencies()[j], scaling);
+                }
+            }
+            Ok(out)
+        };
+        let (dq, dk) = (angle_errors(qp)?, angle_errors(kp)?);
+        let norms = |x: ArrayView3<'_, f64>| {
+            Array3::from_shape_fn((x.dim().0, x.dim().1, pairs), |(h, n, j)| {
+                let (a, b) = params.pairing.pair_indices(j, params.rotary_dim);
+                x[[h, n, a]].hypot(x[[h, n, b]])
+            })
+        };
+        let (rq, rk) = (norms(q), norms(k));
+        let weighted = |rho: &Array3<f64>, delta: &Array2<f64>| {
+            Array3::from_shape_fn(rho.raw_dim(), |(h, n, j)| rho[[h, n, j]] * delta[[n, j]])
+        };
+        let (rq_dq, rk_dk) = (weighted(&rq, &dq), weighted(&rk, &dk));
+        let tail = |x: ArrayView3<'_, f64>| x.slice(s![.., .., params.rotary_dim..]).mapv(f64::abs);
+        let (tq, tk) = (tail(q), tail(k));
+        let (heads, l, kk) = (case.heads, q.dim().1, k.dim().1);
+        let mut out = Array3::zeros((heads, l, kk));
+        for h in 0..heads {
+            let mut o = out.index_axis_mut(Axis(0), h);
+            let (rq, rk) = (rq.index_axis(Axis(0), h), rk.index_axis(Axis(0), h));
+            gemm(factor, &rq_dq.index_axis(Axis(0), h), &rk.t(), 0.0, &mut o);
+            gemm(factor, &rq, &rk_dk.index_axis(Axis(0), h).t(), 1.0, &mut o);
+            gemm(factor * per_pair, &rq, &rk.t(), 1.0, &mut o);
+            if params.rotary_dim < d {
+                let tail_coefficient = 2.0 * contract.storage + 2.0 * R64 + gamma;
+                gemm(
+                    factor * tail_coefficient,
+                    &tq.index_axis(Axis(0), h),
+                    &tk.index_axis(Axis(0), h).t(),
+                    1.0,
+                    &mut o,
+                );
+            }
+        }
+        Ok(out)
+    }
+
+    /// Bounds on probabilities and outputs of one window, carried from the score
+    /// bounds through the softmax (docs/budgets.md, "Through the softmax"): with `Δ_i`
+    /// the largest score error of row `i` (plus the rounding of a score shifted by a
+    /// per-row constant, which leaves the probabilities unchanged in exact arithmetic),
+    /// each probability moves by a factor within `e^(±2Δ_i)`; the softmax's own
+    /// subtraction, exponentials, sum and division add a relative
+    /// `γ_(2K+4) + 2u(|s_ij| + max_j|s_ij|)`; the output's weighted sum adds
+    /// `γ_K·Σ_j p_ij|v_j|`; each result is stored once in the dtype.
+    fn window_bounds(
+        &self,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        v: ArrayView3<'_, f64>,
+        p0: i64,
+        contract: &Contract,
+    ) -> Result<(Array3<f64>, Array3<f64>)> {
+        let us = contract.storage;
+        let ua = contract.accumulation;
+        let window = crate::attention::window_for(q, k)?;
+        let key_len = window.key_len();
+        let (score_bound, mut scores) = self.score_bounds(q, k, p0, contract)?;
+        for &j in &self.case.hidden_keys {
+            scores.slice_mut(s![.., .., j]).fill(f64::NEG_INFINITY);
+        }
+        let (_, probs, output) = self.attend_window(q, k, v, p0)?;
+        let row_max_abs = scores.map_axis(Axis(2), |row| {
+            row.iter()
+                .copied()
+                .map(finite_or_zero)
+                .fold(0.0f64, |m, x| m.max(x.abs()))
+        });
+        let row_delta = Zip::from(score_bound.lanes(Axis(2)))
+            .and(&row_max_abs)
+            .map_collect(|bounds, &largest| {
+                bounds.iter().copied().fold(0.0, f64::max) + us * largest
+            });
+        let growth = |delta: f64| {
+            let g = libm::expm1(2.0 * delta);
+            if g.is_finite() {
+                g
+            } else {
+                f64::MAX
+            }
+        };
+        let softmax_gamma = gamma_of(ua, 2 * key_len + 4) + gamma_of(R64, key_len + 2);
+        let probs_bound = Array3::from_shape_fn(probs.raw_dim(), |(h, i, j)| {
+            let p = probs[[h, i, j]];
+            let s = finite_or_zero(scores[[h, i, j]]).abs();
+            let relative = growth(row_delta[[h, i]])
+                + softmax_gamma
+                + 2.0 * ua * (s + row_max_abs[[h, i]])
+                + us
+                + R64;
+            (p * relative).min(f64::MAX) + contract.floor
+        });
+        // Σ_j δp_ij |v_jc| + (γ_K + 2u_s)·Σ_j p_ij (|v_jc| + |value embedding|).
+        let va = v.mapv(f64::abs);
+        let carried = self.window_output(&probs_bound, va.view(), window, true)?;
+        let magnitude = self.window_output(&probs, va.view(), window, true)?;
+        let output_gamma = gamma_of(ua, key_len) + gamma_of(R64, key_len) + 2.0 * us;
+        let output_bound = Zip::from(&carried)
+            .and(&magnitude)
+            .and(&output)
+            .map_collect(|&c, &m, &o| c + output_gamma * m + us * o.abs() + contract.floor);
+        Ok((probs_bound, output_bound))
+    }
+
+    fn encode_bounds(&self, values: &ArrayD<f64>, contract: &Contract) -> Result<ArrayD<f64>> {
+        let case = self.case;
+        let us = contract.storage;
+        let floor = contract.floor;
         Ok(match &case.scheme {
-            SchemeSpec::Sinusoidal { base, layout } => {
-                let pe = self.sinusoid(case.head_dim, *base, *layout)?;
-                let positions = self.positions("positions")?;
-                let half = case.head_dim / 2;
-                ArrayD::from_shape_fn(values.raw_dim(), |idx| {
-                    let (n, c) = (idx[0], idx[1]);
-                    let i = if *layout == sinusoidal::SinusoidLayout::Interleaved {
-                        c / 2
-                    } else {
-                        c % half
-                    };
-                    let omega = pe.frequencies()[i];
-                    angle_error(positions[n] as f64, omega, omega.ln(), u_angle) + 2.0 * u
-                })
+            SchemeSpec::Sinusoidal { .. } => {
+                let table = fixed::<ndarray::Ix2>("table", values.clone())?;
+                self.table_errors(&table, &self.positions("positions")?, contract)
+                    .mapv(|e| e + floor)
+                    .into_dyn()
             }
             // Lookups are exact; a kernel narrower than the case rounds them once.
-            SchemeSpec::Learned { .. } => values.mapv(|v| u * v.abs()),
+            SchemeSpec::Learned { .. } => values.mapv(|v| us * v.abs() + floor),
             SchemeSpec::Bucketed { .. } | SchemeSpec::Clipped { .. } => {
                 ArrayD::zeros(values.raw_dim())
             }
-            SchemeSpec::Alibi { .. } => values.mapv(|s| 2.0 * u * s.abs()),
-            SchemeSpec::Rotary {
-                rotary_dim,
-                pairing,
-                base,
-                ..
-            } => {
+            // Slopes formed at the angle precision and stored in the dtype.
+            SchemeSpec::Alibi { .. } => {
+                values.mapv(|m| (contract.angle + us + R64) * m.abs() + floor)
+            }
+            SchemeSpec::Rotary { .. } => {
                 let rot = self.rotary()?;
+                let params = *rot.params();
                 let x = self.get3("x")?;
                 let positions = self.positions("positions")?;
-                let mut bound = values.mapv(|v| u * v.abs());
-                let gamma = accumulation_gamma(dtype, 4);
-                for ((h, n, c), _) in x.indexed_iter() {
-                    if c >= *rotary_dim {
-                        // The tail passes through: only the rounding to the dtype.
-                        continue;
+                let e = contract.rotated_component_error();
+                let scaling = angle_scaling(&params.scaling);
+                let mut bound = values.mapv(|v| us * v.abs() + floor);
+                for (n, &p) in positions.iter().enumerate() {
+                    let angles = rot.angles(p)?;
+                    for (j, (&theta, &omega)) in angles.iter().zip(rot.frequencies()).enumerate() {
+                        let delta = contract.angle_error(p as f64, theta, omega, scaling);
+                        let (a, b) = params.pairing.pair_indices(j, params.rotary_dim);
+                        for h in 0..case.heads {
+                            let (xa, xb) = (x[[h, n, a]], x[[h, n, b]]);
+                            let pair = xa.hypot(xb) * delta + (xa.abs() + xb.abs()) * e;
+                            bound[[h, n, a].as_slice()] = pair + floor;
+                            bound[[h, n, b].as_slice()] = pair + floor;
+                        }
                     }
-                    let j = match pairing {
-                        rotary::Pairing::Adjacent => c / 2,
-                        rotary::Pairing::HalfSplit => c % (rotary_dim / 2),
-                    };
-                    let (a, b) = pairing.pair_indices(j, *rotary_dim);
-                    let theta = rot.frequencies()[j];
-                    let angle = rot.angles(positions[n])?[j];
-                    let p = if theta > 0.0 { angle / theta } else { 0.0 };
-                    let pair = x[[h, n, a]].abs() + x[[h, n, b]].abs();
-                    bound[[h, n, c].as_slice()] +=
-                        pair * (angle_error(p, theta, base.ln(), u_angle) + gamma);
                 }
                 bound
             }
             SchemeSpec::XlRelative { .. } => {
+                // r[h, δ] = R_δ · W[h]: the table's error (angle, evaluation, storage)
+                // carried through W linearly, plus the product's rounding.
                 let pe = self.sinusoid(
                     case.head_dim,
                     sinusoidal::DEFAULT_BASE,
@@ -754,18 +978,22 @@ impl<'a> Pipeline<'a> {
                 )?;
                 let w = self.get3("w_kr")?.mapv(f64::abs);
                 let distances: Vec<i64> = (0..case.key_len() as i64).collect();
-                let table = pe.table(&distances).mapv(f64::abs);
+                let table = pe.table(&distances);
                 let half = case.head_dim / 2;
                 let errors = Array2::from_shape_fn(table.raw_dim(), |(n, c)| {
                     let omega = pe.frequencies()[c % half];
-                    angle_error(n as f64, omega, omega.ln(), u_angle)
+                    let p = n as f64;
+                    contract.angle_error(p, p * omega, omega, AngleScaling::None)
+                        + contract.table_value_error()
                 });
-                let gamma = accumulation_gamma(dtype, case.head_dim + 2);
+                let table = table.mapv(f64::abs);
+                let gamma = contract.gamma(case.head_dim) + gamma_of(R64, case.head_dim) + 2.0 * us;
                 let mut bound = Array3::zeros((case.heads, case.key_len(), case.head_dim));
                 for (mut b, wh) in bound.outer_iter_mut().zip(w.outer_iter()) {
-                    b.assign(&(table.dot(&wh) * gamma + errors.dot(&wh)));
+                    gemm(1.0, &errors, &wh, 0.0, &mut b);
+                    gemm(gamma, &table, &wh, 1.0, &mut b);
                 }
-                bound.into_dyn() + values.mapv(|v| u * v.abs())
+                bound.into_dyn() + values.mapv(|v| us * v.abs() + floor)
             }
         })
     }

@@ -230,6 +230,19 @@ impl VectorFile {
                     dir,
                     &field("tolerance"),
                 )?;
+                let output_shape = expected.get(name).map(|t| t.shape().to_vec());
+                if !tolerance.shape().is_empty()
+                    && output_shape.as_deref() != Some(tolerance.shape())
+                {
+                    return Err(Error::format(
+                        field("tolerance"),
+                        format!(
+                            "shape {:?}: a scalar or the shape of `expected.{name}` ({:?}) is needed",
+                            tolerance.shape(),
+                            output_shape.unwrap_or_default()
+                        ),
+                    ));
+                }
                 budget.insert(
                     name.clone(),
                     StoredBudget {
@@ -249,6 +262,36 @@ impl VectorFile {
             budget,
             provenance: doc.get("provenance").cloned().unwrap_or(Value::Null),
         })
+    }
+
+    /// The stored budgets as comparison budgets. The stored per-element tolerance is
+    /// `max(analytic, allowance)`; where it exceeds the allowance it *is* the analytic
+    /// bound, elsewhere the allowance decided, which is what the criterion reports.
+    pub fn budgets(&self) -> BTreeMap<String, crate::compare::Budget> {
+        self.budget
+            .iter()
+            .map(|(name, b)| {
+                let exact = crate::case::is_integer_output(name);
+                let mut budget = crate::compare::Budget {
+                    dtype: b.dtype,
+                    factor: b.factor,
+                    baseline_error: b.baseline_error,
+                    floor: b.floor,
+                    analytic: None,
+                    exact,
+                };
+                let allowance = budget.allowance();
+                if !exact && !b.tolerance.shape().is_empty() {
+                    budget.analytic =
+                        Some(
+                            b.tolerance
+                                .view()
+                                .mapv(|t| if t > allowance { t } else { 0.0 }),
+                        );
+                }
+                (name.clone(), budget)
+            })
+            .collect()
     }
 
     /// The expected outputs as plain f64 arrays.

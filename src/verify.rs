@@ -6,7 +6,7 @@
 use std::collections::BTreeSet;
 use std::path::Path;
 
-use crate::compare::{compare, CaseReport, CompareOptions};
+use crate::compare::{budgets, compare_with_budgets, CaseReport, CompareOptions};
 use crate::error::{Error, Result};
 use crate::report::Report;
 use crate::vector::{read_results, vector_files, VectorFile, INDEX_FILE};
@@ -91,14 +91,95 @@ pub fn verify_one(vector: &VectorFile, results: &Path, options: &CompareOptions)
         }
         Err(e) => return CaseReport::error(case, format!("results unreadable: {e}")),
     };
-    match compare(
-        case,
-        &vector.inputs,
-        &vector.expected_outputs(),
-        &got,
-        options,
-    ) {
+    // Judged with the expected values and budgets stored in the file; budgets are
+    // derived afresh only for another dtype or factor than the ones stored.
+    let expected = vector.expected_outputs();
+    let stored = vector.budgets();
+    let mut source = |dtype| {
+        let usable = !stored.is_empty()
+            && stored
+                .values()
+                .all(|b| (b.exact || b.dtype == dtype) && b.factor == options.factor);
+        if usable && dtype == case.dtype {
+            Ok(stored.clone())
+        } else {
+            budgets(case, &vector.inputs, &expected, dtype, options.factor)
+        }
+    };
+    let mut report = match compare_with_budgets(case, &expected, &got, options, &mut source) {
         Ok(report) => report,
-        Err(e) => CaseReport::error(case, format!("comparison failed: {e}")),
+        Err(e) => return CaseReport::error(case, format!("comparison failed: {e}")),
+    };
+    if let Some(note) = consistency(vector, options) {
+        report.warnings.push(note);
     }
+    report
+}
+
+/// For a vector written by another version of posconform: derives its expected values
+/// and budgets with this build and says how much they differ (the stored ones are used
+/// either way). `None` for files this version wrote, or when nothing differs.
+fn consistency(vector: &VectorFile, options: &CompareOptions) -> Option<String> {
+    let this = format!("posconform {}", env!("CARGO_PKG_VERSION"));
+    let writer = vector
+        .provenance
+        .get("generator")
+        .and_then(serde_json::Value::as_str)
+        .unwrap_or("an unknown generator");
+    if writer == this {
+        return None;
+    }
+    let factor = vector
+        .budget
+        .values()
+        .map(|b| b.factor)
+        .next()
+        .unwrap_or(options.factor);
+    let fresh = match VectorFile::build(&vector.case, factor) {
+        Ok(v) => v,
+        Err(e) => {
+            return Some(format!(
+                "written by {writer}; this build ({this}) cannot re-derive it ({e}); judged with the stored values"
+            ))
+        }
+    };
+    let largest = |a: &crate::case::Arrays, b: &crate::case::Arrays| -> f64 {
+        a.iter()
+            .filter_map(|(name, x)| b.get(name).map(|y| (x, y)))
+            .flat_map(|(x, y)| {
+                x.view()
+                    .iter()
+                    .zip(y.view().iter())
+                    .map(|(p, q)| {
+                        if p == q {
+                            0.0
+                        } else if p.is_finite() && q.is_finite() {
+                            (p - q).abs() / p.abs().max(q.abs()).max(f64::MIN_POSITIVE)
+                        } else {
+                            f64::INFINITY
+                        }
+                    })
+                    .collect::<Vec<_>>()
+            })
+            .fold(0.0, f64::max)
+    };
+    let expected = largest(&vector.expected, &fresh.expected);
+    let tolerance = largest(
+        &vector
+            .budget
+            .iter()
+            .map(|(n, b)| (n.clone(), b.tolerance.clone()))
+            .collect(),
+        &fresh
+            .budget
+            .iter()
+            .map(|(n, b)| (n.clone(), b.tolerance.clone()))
+            .collect(),
+    );
+    (expected > 0.0 || tolerance > 0.0).then(|| {
+        format!(
+            "written by {writer}; this build ({this}) derives expected values differing by up to {expected:.1e} \
+             (relative) and tolerances by up to {tolerance:.1e}; judged with the stored ones"
+        )
+    })
 }

@@ -190,6 +190,69 @@ fn bf16_deviation_passes_bf16_fails_f32_and_is_flagged() {
         .any(|w| w.contains("every value is representable in bf16")));
 }
 
+/// Budgets follow the dtype the kernel declares for the case, not the dtype of the
+/// arrays it returns: f32-accurate answers shipped as f64 arrays for an f32 run pass
+/// at the f32 budget, with a note saying so; the same answers judged as an f64 kernel
+/// (what happened before) fail.
+#[test]
+fn arrays_wider_than_declared_are_judged_at_the_declared_dtype() {
+    let case = core_case("rotary.attention.f32");
+    let inputs = case.inputs().unwrap();
+    let f32_answers = reference::baseline(&case, &inputs, Dtype::F32).unwrap();
+    let shipped_as_f64 = as_results(&f32_answers, Dtype::F64);
+    let declared_f32 = CompareOptions {
+        declared: Some(Dtype::F32),
+        ..CompareOptions::default()
+    };
+    let report = check(&case, &shipped_as_f64, &declared_f32);
+    assert_eq!(report.verdict, Verdict::Pass, "{report:?}");
+    assert!(report.outputs.iter().all(|o| o.dtype == Dtype::F32
+        && o.budget_dtype == Dtype::F32
+        && o.array_dtype == Dtype::F64));
+    assert!(
+        report.warnings.iter().any(|w| w.contains(
+            "came back as f64 although the kernel computes this case in f32; judged at the f32 budget"
+        )),
+        "{:?}",
+        report.warnings
+    );
+    let judged_as_f64 = check(&case, &shipped_as_f64, &CompareOptions::default());
+    assert_eq!(judged_as_f64.verdict, Verdict::Fail);
+}
+
+/// Masking is judged by visibility, never by an expected value of 0: a visible key
+/// whose probability underflows to 0 in the reference may get a subnormal from the
+/// kernel (a log-sum-exp softmax does), while the same subnormal on a key the query
+/// must not see is a leak.
+#[test]
+fn underflowed_visible_probabilities_are_not_masked_entries() {
+    // ALiBi with 8 heads: head 0 has slope 1/2, so with M = 1600 the oldest memory
+    // keys carry a bias near -800 and a probability e^-800, below f64's subnormals.
+    let mut case = core_case("alibi.attention.h6");
+    (case.heads, case.query_len, case.memory_len, case.head_dim) = (8, 2, 1600, 8);
+    let inputs = case.inputs().unwrap();
+    let expected = reference::expected(&case, &inputs).unwrap();
+    let probs = &expected["probs"];
+    assert_eq!(probs[[0, 0, 0]], 0.0, "the oldest key must underflow");
+    assert_eq!(probs[[0, 0, 1601]], 0.0, "key M + 1 is in query 0's future");
+    let with = |index: [usize; 3]| {
+        let mut got = as_results(&expected, Dtype::F64);
+        let mut p = got["probs"].view().to_owned();
+        p[index] = 5e-324;
+        got.insert("probs".into(), Tensor::from_f64(Dtype::F64, p));
+        check(&case, &got, &CompareOptions::default())
+    };
+    let visible = with([0, 0, 0]);
+    assert_eq!(visible.verdict, Verdict::Pass, "{visible:?}");
+    let future = with([0, 0, 1601]);
+    assert_eq!(future.verdict, Verdict::Fail);
+    let probs = future.outputs.iter().find(|o| o.name == "probs").unwrap();
+    assert_eq!(
+        probs.masking,
+        Some(posconform::compare::Masking::Leak { count: 1 })
+    );
+}
+
 /// Masked scores may hold a finite sentinel when it carries zero probability; a
 /// sentinel that does not (e.g. -10) is a leak.
 #[test]
@@ -235,6 +298,39 @@ fn emission_is_deterministic() {
             "{name:?}"
         );
     }
+}
+
+/// Nothing written into `vectors/` depends on the processor: the binary emits the core
+/// suite with the CPU-dispatched matrix product forced to its SSE2 fallback
+/// (`MMTEST_FEATURE=sse2`, matrixmultiply's switch for testing one kernel path) and
+/// the files are byte-identical to the committed ones, which CI regenerates with the
+/// product's fastest path (`.ci/run`). On another architecture the switch is a no-op
+/// and the test still checks the committed bytes.
+#[test]
+fn emitted_vectors_do_not_depend_on_the_matrix_product_path() {
+    let out = scratch("sse2");
+    let status = std::process::Command::new(env!("CARGO_BIN_EXE_posconform"))
+        .args(["emit", "--suite", "core", "--out"])
+        .arg(&out)
+        .env("MMTEST_FEATURE", "sse2")
+        .stdout(std::process::Stdio::null())
+        .status()
+        .unwrap();
+    assert!(status.success());
+    let committed = Path::new(env!("CARGO_MANIFEST_DIR")).join("vectors/core");
+    let mut compared = 0;
+    for entry in std::fs::read_dir(&committed).unwrap() {
+        let path = entry.unwrap().path();
+        let name = path.file_name().unwrap();
+        let fresh = std::fs::read(out.join(name))
+            .unwrap_or_else(|e| panic!("{name:?} was not emitted: {e}"));
+        assert!(
+            std::fs::read(&path).unwrap() == fresh,
+            "{name:?} differs from the committed file when the product takes its SSE2 path"
+        );
+        compared += 1;
+    }
+    assert!(compared > 40, "only {compared} committed files");
 }
 
 /// A vector round-trips through its file unchanged.

@@ -331,6 +331,7 @@ fn compare_options(args: &OutputArgs) -> anyhow::Result<CompareOptions> {
     Ok(CompareOptions {
         factor: args.factor,
         budget_dtype: args.budget_dtype,
+        declared: None,
     })
 }
 

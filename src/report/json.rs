@@ -28,7 +28,8 @@
 //!           "passed": false, "decided_by": "baseline",
 //!           "elements": 180, "over_budget": 36, "non_finite": 1,
 //!           "max_abs": 0.001, "max_rel": 0.004, "max_ulp": 1.2e13, "allowance": 3.5e-15,
-//!           "worst": { "index": [0, 2, 5], "got": "nan", "expected": 0.31, "tolerance": 0.0 },
+//!           "worst": { "index": [0, 2, 5], "got": "nan", "expected": 0.31,
+//!                      "error": "nan", "tolerance": 1e-15, "ratio": "inf" },
 //!           "masking": { "kind": "negative_infinity" },
 //!           "patterns": [{ "kind": "memory_columns_only" }]
 //!         }
@@ -39,7 +40,10 @@
 //! ```
 //!
 //! `verdict.kind` is `pass`, `fail`, `skipped` or `error`; the last two carry a
-//! `reason` string. `worst` is `null` when no element was compared. `masking` is `null`
+//! `reason` string. `worst` is the element furthest over its own tolerance (`ratio` =
+//! `error / tolerance`), `null` when no element was compared. `dtype` is the dtype the
+//! kernel declared for the case (budgets follow it), `array_dtype` the dtype of the
+//! array it returned. `masking` is `null`
 //! for outputs that have no masked entries by construction.
 //!
 //! Non-finite numbers: JSON numbers cannot express infinities or NaN (serde_json would
@@ -150,6 +154,7 @@ struct OutputDocument<'a> {
     name: &'a str,
     shape: &'a [usize],
     dtype: Dtype,
+    array_dtype: Dtype,
     budget_dtype: Dtype,
     passed: bool,
     decided_by: Criterion,
@@ -171,6 +176,7 @@ impl<'a> From<&'a OutputReport> for OutputDocument<'a> {
             name: &output.name,
             shape: &output.shape,
             dtype: output.dtype,
+            array_dtype: output.array_dtype,
             budget_dtype: output.budget_dtype,
             passed: output.passed,
             decided_by: output.decided_by,
@@ -185,7 +191,9 @@ impl<'a> From<&'a OutputReport> for OutputDocument<'a> {
                 index,
                 got: Real(output.worst_got),
                 expected: Real(output.worst_expected),
+                error: Real(output.worst_error),
                 tolerance: Real(output.worst_tolerance),
+                ratio: Real(output.worst_ratio),
             }),
             masking: output.masking.map(MaskingDocument::from),
             patterns: output.patterns.iter().map(PatternDocument::from).collect(),
@@ -198,7 +206,9 @@ struct WorstDocument<'a> {
     index: &'a [usize],
     got: Real,
     expected: Real,
+    error: Real,
     tolerance: Real,
+    ratio: Real,
 }
 
 #[derive(Serialize)]

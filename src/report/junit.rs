@@ -164,15 +164,10 @@ fn failing_outputs(case: &CaseReport) -> Vec<&OutputReport> {
 }
 
 fn worst_ratio(output: &OutputReport) -> f64 {
-    let error = (output.worst_got - output.worst_expected).abs();
-    if !error.is_finite() || output.non_finite > 0 {
-        f64::INFINITY
-    } else if output.worst_tolerance > 0.0 {
-        error / output.worst_tolerance
-    } else if error > 0.0 {
+    if output.non_finite > 0 || output.worst_ratio.is_nan() {
         f64::INFINITY
     } else {
-        0.0
+        output.worst_ratio
     }
 }
 
@@ -200,7 +195,7 @@ fn failure_body(case: &CaseReport) -> String {
     if let Some(worst) = failing.first() {
         let _ = writeln!(
             body,
-            "output `{}` {:?}, {} (budget for {}, decided by {})",
+            "output `{}` {:?}, {} (budget for {}, criterion {})",
             worst.name,
             worst.shape,
             worst.dtype,
@@ -210,10 +205,12 @@ fn failure_body(case: &CaseReport) -> String {
         if let Some(index) = &worst.worst {
             let _ = writeln!(
                 body,
-                "worst element {index:?}: got {}, expected {}, tolerance {}",
+                "worst element {index:?}: got {}, expected {}, error {}, tolerance {} ({}x)",
                 exact(worst.worst_got),
                 exact(worst.worst_expected),
-                number(worst.worst_tolerance)
+                number(worst.worst_error),
+                number(worst.worst_tolerance),
+                number(worst.worst_ratio)
             );
         }
         let _ = writeln!(
@@ -304,9 +301,9 @@ fn exact(x: f64) -> String {
 
 fn criterion(criterion: Criterion) -> &'static str {
     match criterion {
-        Criterion::Analytic => "the analytic bound",
-        Criterion::Baseline => "the same-precision baseline",
-        Criterion::Exact => "exact match",
+        Criterion::Analytic => "analytic",
+        Criterion::Baseline => "baseline",
+        Criterion::Exact => "exact",
     }
 }
 

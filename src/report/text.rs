@@ -42,10 +42,11 @@ fn verdict_word(v: &Verdict) -> &'static str {
     }
 }
 
+/// The same criterion name the JSON and JUnit reports carry: for a pass, what accepted
+/// it (`analytic`: every element within its analytic bound; `baseline`: some element
+/// needed the same-precision allowance); for a failure, whose tolerance applied at the
+/// worst element.
 fn criterion_word(o: &OutputReport) -> &'static str {
-    if !o.passed {
-        return "-";
-    }
     match o.decided_by {
         Criterion::Analytic => "analytic",
         Criterion::Baseline => "baseline",
@@ -56,14 +57,13 @@ fn criterion_word(o: &OutputReport) -> &'static str {
 /// The output with the largest error relative to its tolerance (failing ones first).
 fn worst_output(case: &CaseReport) -> Option<&OutputReport> {
     let score = |o: &OutputReport| {
-        let ratio = if o.worst_tolerance > 0.0 {
-            o.max_abs / o.worst_tolerance
-        } else {
-            o.max_abs
-        };
         (
             !o.passed,
-            if ratio.is_nan() { f64::INFINITY } else { ratio },
+            if o.worst_ratio.is_nan() {
+                f64::INFINITY
+            } else {
+                o.worst_ratio
+            },
         )
     };
     case.outputs.iter().max_by(|a, b| {
@@ -128,10 +128,12 @@ pub fn render(report: &Report) -> String {
         .max()
         .unwrap_or(4)
         .clamp(4, 60);
+    // Error, tolerance and their ratio are of one element: the one furthest over (or
+    // closest to) its own tolerance, so the three columns cannot contradict each other.
     let _ = writeln!(
         s,
-        "  {:<7} {:<width$}  {:<8} {:>10} {:>10} {:>9}  decided by",
-        "verdict", "case", "output", "max abs", "tolerance", "max ulp"
+        "  {:<7} {:<width$}  {:<8} {:>10} {:>10} {:>9}  criterion",
+        "verdict", "case", "output", "error", "tolerance", "err/tol"
     );
     // Skipped cases are summarised per reason so they do not bury the findings.
     let mut skipped: Vec<(&str, Vec<&str>)> = Vec::new();
@@ -147,13 +149,13 @@ pub fn render(report: &Report) -> String {
             (Verdict::Pass | Verdict::Fail, Some(o)) => {
                 let _ = writeln!(
                     s,
-                    "  {:<7} {:<width$}  {:<8} {:>10.2e} {:>10.2e} {:>9} {}",
+                    "  {:<7} {:<width$}  {:<8} {:>10.2e} {:>10.2e} {:>9}  {}",
                     verdict_word(&case.verdict),
                     case.case,
                     o.name,
-                    o.max_abs,
+                    o.worst_error,
                     o.worst_tolerance,
-                    format_ulp(o.max_ulp),
+                    format_ratio(o.worst_ratio),
                     criterion_word(o)
                 );
             }
@@ -256,6 +258,40 @@ fn first_line(text: &str) -> &str {
     text.lines().next().unwrap_or("")
 }
 
+fn format_ratio(ratio: f64) -> String {
+    if ratio.is_infinite() || ratio.is_nan() {
+        "inf".into()
+    } else if ratio >= 1e4 {
+        format!("{ratio:.1e}")
+    } else {
+        format!("{ratio:.2}")
+    }
+}
+
+/// `got` and `expected` with as many significant digits as it takes to tell them apart,
+/// up to what the dtype resolves (17 for f64, 9 for f32, 5 for f16, 4 for bf16).
+pub fn format_pair(got: f64, expected: f64, dtype: crate::precision::Dtype) -> (String, String) {
+    use crate::precision::Dtype;
+    let most = match dtype {
+        Dtype::F64 | Dtype::I64 => 17,
+        Dtype::F32 => 9,
+        Dtype::F16 => 5,
+        Dtype::Bf16 => 4,
+    };
+    let show = |x: f64, digits: usize| {
+        if x.is_finite() {
+            format!("{:.*e}", digits - 1, x)
+        } else {
+            format!("{x}")
+        }
+    };
+    let mut digits = 7.min(most);
+    while digits < most && show(got, digits) == show(expected, digits) {
+        digits += 1;
+    }
+    (show(got, digits), show(expected, digits))
+}
+
 fn format_ulp(ulp: f64) -> String {
     if ulp.is_infinite() {
         "inf".into()
@@ -304,13 +340,14 @@ fn findings_of(s: &mut String, case: &CaseReport) {
             o.name, o.shape, o.dtype, o.over_budget, o.elements
         );
         if let Some(idx) = &o.worst {
+            let (got, expected) = format_pair(o.worst_got, o.worst_expected, o.dtype);
             let _ = writeln!(
                 s,
-                "      worst at {}: got {:.6e}, expected {:.6e}, tolerance {:.2e}",
+                "      worst at {}: got {got}, expected {expected}, error {:.2e}, tolerance {:.2e} ({}x)",
                 describe_index(case, &o.name, idx),
-                o.worst_got,
-                o.worst_expected,
-                o.worst_tolerance
+                o.worst_error,
+                o.worst_tolerance,
+                format_ratio(o.worst_ratio)
             );
         }
         let _ = writeln!(
@@ -378,13 +415,14 @@ pub fn render_minimal(minimal: &[crate::check::MinimalFailure]) -> String {
         );
         for o in m.report.outputs.iter().filter(|o| !o.passed) {
             if let Some(idx) = &o.worst {
+                let (got, expected) = format_pair(o.worst_got, o.worst_expected, o.dtype);
                 let _ = writeln!(
                     s,
-                    "    {}: worst at {}: got {:.6e}, expected {:.6e}",
+                    "    {}: worst at {}: got {got}, expected {expected}, error {:.2e}, tolerance {:.2e}",
                     o.name,
                     describe_index(&m.report, &o.name, idx),
-                    o.worst_got,
-                    o.worst_expected
+                    o.worst_error,
+                    o.worst_tolerance
                 );
             }
             for p in &o.patterns {

@@ -203,9 +203,9 @@ impl Rotary {
                 // Validates as ntk_base does; ln b' = ln b + d_rot/(d_rot-2) · ln s.
                 ntk_base(base, factor, rotary_dim)?;
                 let d = DoubleDouble::from_f64(rotary_dim as f64);
-                let exponent = d.div(d.sub(DoubleDouble::from_f64(2.0)));
+                let exponent = d / (d - DoubleDouble::from_f64(2.0));
                 let ln_factor = DoubleDouble::from_f64(factor).ln();
-                (ln_base.add(exponent.mul(ln_factor)), 1.0)
+                (ln_base + exponent * ln_factor, 1.0)
             }
         };
         let precise = precise_frequencies(rotary_dim, ln_effective_base);
@@ -231,7 +231,7 @@ impl Rotary {
     /// linear interpolation (formed in double-double, rounded to f64).
     pub fn angles(&self, position: i64) -> Result<Vec<f64>> {
         let p = self.scaled_position(position)?;
-        Ok(self.precise.iter().map(|&w| p.mul(w).to_f64()).collect())
+        Ok(self.precise.iter().map(|&w| (p * w).to_f64()).collect())
     }
 
     /// `p' = p / s` in double-double (`p` itself without linear interpolation).
@@ -247,7 +247,7 @@ impl Rotary {
         Ok(if self.position_divisor == 1.0 {
             p
         } else {
-            p.div(DoubleDouble::from_f64(self.position_divisor))
+            p / DoubleDouble::from_f64(self.position_divisor)
         })
     }
 
