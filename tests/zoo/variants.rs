@@ -130,8 +130,8 @@ pub fn correct() -> Vec<Variant> {
 
     let mut v = Variant::plain(
         "pre-rotated-cache",
-        "decode keeps keys already rotated (or with the absolute encoding added) at their positions, stored in the requested dtype; f32 throughout, or f16 per op",
-        vec![(Dtype::F32, F32_THROUGHOUT), (Dtype::F16, per_op(Dtype::F16))],
+        "decode keeps keys already rotated (or with the absolute encoding added) at their positions, stored in the requested dtype; f32 throughout, or f32 inside with an f16 cache and f16 inputs and outputs",
+        vec![(Dtype::F32, F32_THROUGHOUT), (Dtype::F16, fused(Dtype::F16))],
     );
     v.decode = DecodeForm::EncodedCache;
     v.freq_rotary = Freq::Reciprocal;
