@@ -111,17 +111,7 @@ pub fn run_case(
     case: &Case,
     options: &CompareOptions,
 ) -> (CaseReport, bool) {
-    if !info.supports(case) {
-        let scheme = case.scheme.scheme();
-        let reason = if info.supports.iter().any(|s| s.scheme == scheme) {
-            format!(
-                "the kernel does not list {} {}",
-                scheme.name(),
-                case.operation.name()
-            )
-        } else {
-            format!("the kernel does not implement {}", scheme.name())
-        };
+    if let Err(reason) = info.declares(case) {
         return (CaseReport::skipped(case, reason), false);
     }
     let dtype = info.dtype_for(case);
@@ -194,6 +184,8 @@ struct Runner<'k> {
     limit: usize,
     stopped: Option<String>,
     notes: Vec<String>,
+    /// Every case whose outputs were compared, with the dtype it was sent in.
+    exercised: Vec<(Case, Dtype)>,
 }
 
 impl Runner<'_> {
@@ -202,6 +194,10 @@ impl Runner<'_> {
             return CaseReport::error(case, format!("not run: {why}"));
         }
         let (report, kernel_failed) = run_case(self.kernel, &self.info, case, options);
+        if matches!(report.verdict, Verdict::Pass | Verdict::Fail) {
+            self.exercised
+                .push((case.clone(), self.info.dtype_for(case)));
+        }
         if kernel_failed {
             self.consecutive += 1;
             if self.consecutive >= self.limit {
@@ -242,12 +238,14 @@ pub fn check(
         limit: options.max_consecutive_errors.max(1),
         stopped: None,
         notes: Vec::new(),
+        exercised: Vec::new(),
     };
     let mut report = Report {
         mode: "check".into(),
         subject: format!("{} {}", info.name, info.version).trim().to_string(),
         cases: Vec::new(),
         notes: Vec::new(),
+        never_exercised: Vec::new(),
     };
     for (n, case) in cases.iter().enumerate() {
         progress("suite", n, cases.len());
@@ -281,6 +279,7 @@ pub fn check(
         );
     }
     report.notes.extend(runner.notes);
+    report.never_exercised = crate::kernel::capability::never_exercised(&info, &runner.exercised);
     Ok(CheckOutcome {
         info,
         report,
@@ -321,7 +320,7 @@ fn fuzz_and_shrink(
         }
         progress("fuzz", n, options.fuzz_cases);
         let (scheme, op) = supported[stream.below(supported.len() as u64) as usize].clone();
-        let Some(case) = random_case(&mut stream, scheme, op, &runner.info.dtypes, n) else {
+        let Some(case) = random_declared_case(&mut stream, &runner.info, scheme, op, n) else {
             continue;
         };
         let report = runner.run(&case, &options.compare);
@@ -390,136 +389,159 @@ pub fn random_case(
     dtypes: &[Dtype],
     n: usize,
 ) -> Option<Case> {
+    (0..20)
+        .map(|_| draw(stream, scheme, &operation, dtypes, n))
+        .find(|case| case.validate().is_ok())
+}
+
+/// A random valid case of `scheme` and `operation` that `info` declares, in one of the
+/// dtypes it declares for the operation (None when many draws found none: the
+/// declared values lie outside what the fuzzer draws).
+pub fn random_declared_case(
+    stream: &mut Stream,
+    info: &KernelInfo,
+    scheme: Scheme,
+    operation: Operation,
+    n: usize,
+) -> Option<Case> {
+    let dtypes = info.operation_dtypes(scheme, operation.name());
+    (0..64)
+        .map(|_| draw(stream, scheme, &operation, &dtypes, n))
+        .find(|case| case.validate().is_ok() && info.declares(case).is_ok())
+}
+
+/// One random case of `scheme` and `operation`, not yet validated.
+fn draw(
+    stream: &mut Stream,
+    scheme: Scheme,
+    operation: &Operation,
+    dtypes: &[Dtype],
+    n: usize,
+) -> Case {
     let floats: Vec<Dtype> = dtypes.iter().copied().filter(|d| d.is_float()).collect();
-    for _ in 0..20 {
-        let heads = if scheme == Scheme::Alibi {
-            range(stream, 1, 12)
-        } else {
-            range(stream, 1, 3)
-        };
-        let query_len = range(stream, 1, 9);
-        let memory_len = if stream.below(4) == 0 {
-            0
-        } else {
-            range(stream, 1, 14)
-        };
-        let head_dim = 2 * range(stream, 1, 8);
-        let far = stream.below(2) == 0;
-        let query_start = if far {
-            range(stream, 100, 100_000) as i64
-        } else {
-            range(stream, 0, 40) as i64
-        };
-        let operation = match &operation {
-            Operation::Stream { .. } => Operation::Stream {
-                tokens: query_len * range(stream, 1, 3) + range(stream, 0, query_len - 1),
-            },
-            Operation::Decode { .. } => {
-                let tokens = range(stream, 2, 16);
-                let prefill = range(stream, 1, tokens - 1);
-                let mut left = tokens - prefill;
-                let mut chunks = Vec::new();
-                while left > 0 {
-                    let c = range(stream, 1, left.min(4));
-                    chunks.push(c);
-                    left -= c;
-                }
-                Operation::Decode {
-                    tokens,
-                    prefill,
-                    chunks,
-                }
+    let heads = if scheme == Scheme::Alibi {
+        range(stream, 1, 12)
+    } else {
+        range(stream, 1, 3)
+    };
+    let query_len = range(stream, 1, 9);
+    let memory_len = if stream.below(4) == 0 {
+        0
+    } else {
+        range(stream, 1, 14)
+    };
+    let head_dim = 2 * range(stream, 1, 8);
+    let far = stream.below(2) == 0;
+    let query_start = if far {
+        range(stream, 100, 100_000) as i64
+    } else {
+        range(stream, 0, 40) as i64
+    };
+    let operation = match operation {
+        Operation::Stream { .. } => Operation::Stream {
+            tokens: query_len * range(stream, 1, 3) + range(stream, 0, query_len - 1),
+        },
+        Operation::Decode { .. } => {
+            let tokens = range(stream, 2, 16);
+            let prefill = range(stream, 1, tokens - 1);
+            let mut left = tokens - prefill;
+            let mut chunks = Vec::new();
+            while left > 0 {
+                let c = range(stream, 1, left.min(4));
+                chunks.push(c);
+                left -= c;
             }
-            other => other.clone(),
-        };
-        let key_len = memory_len + query_len;
-        let spec = match scheme {
-            Scheme::Sinusoidal => SchemeSpec::Sinusoidal {
-                base: 10_000.0,
-                layout: pick(
-                    stream,
-                    &[SinusoidLayout::Interleaved, SinusoidLayout::Concatenated],
-                ),
-            },
-            Scheme::Learned => SchemeSpec::Learned {
-                max_positions: query_start as usize + key_len * 4 + 8,
-            },
-            Scheme::XlRelative => SchemeSpec::XlRelative {
-                scale: if stream.below(3) == 0 {
-                    Scale::Fixed(0.25)
-                } else {
-                    Scale::InverseSqrtDim
-                },
-                clamp_len: if stream.below(3) == 0 {
-                    Some(range(stream, 0, key_len))
-                } else {
-                    None
-                },
-            },
-            Scheme::Rotary => {
-                let rotary_dim = if stream.below(3) == 0 {
-                    2 * range(stream, 1, head_dim / 2)
-                } else {
-                    head_dim
-                };
-                let scaling = match stream.below(4) {
-                    0 => RotaryScaling::LinearInterpolation {
-                        factor: range(stream, 2, 8) as f64,
-                    },
-                    1 if rotary_dim > 2 => RotaryScaling::NtkAware {
-                        factor: range(stream, 2, 8) as f64,
-                    },
-                    _ => RotaryScaling::None,
-                };
-                SchemeSpec::Rotary {
-                    rotary_dim,
-                    base: 10_000.0,
-                    pairing: pick(stream, &[Pairing::Adjacent, Pairing::HalfSplit]),
-                    scaling,
-                    scale: Scale::InverseSqrtDim,
-                }
+            Operation::Decode {
+                tokens,
+                prefill,
+                chunks,
             }
-            Scheme::Alibi => SchemeSpec::Alibi {
-                scale: Scale::InverseSqrtDim,
-            },
-            Scheme::Bucketed => {
-                let num_buckets = pick(stream, &[8usize, 16, 32]);
-                SchemeSpec::Bucketed {
-                    num_buckets,
-                    max_distance: num_buckets * range(stream, 1, 4),
-                    bidirectional: stream.below(2) == 0,
-                    scale: Scale::Fixed(1.0),
-                }
-            }
-            Scheme::Clipped => SchemeSpec::Clipped {
-                clip_distance: range(stream, 1, 8),
-                scale: Scale::InverseSqrtDim,
-            },
-        };
-        let case = Case {
-            id: format!("fuzz.{n:04}.{}.{}", scheme.name(), operation.name()),
-            scheme: spec,
-            operation,
-            heads,
-            query_len,
-            memory_len,
-            head_dim,
-            query_start,
-            hidden_keys: Vec::new(),
-            dtype: if floats.is_empty() {
-                Dtype::F64
-            } else {
-                pick(stream, &floats)
-            },
-            seed: stream.below(u64::MAX),
-            faults: Vec::new(),
-            purpose: "random case from the fuzzer".into(),
-        };
-        if case.validate().is_ok() {
-            return Some(case);
         }
+        other => other.clone(),
+    };
+    let key_len = memory_len + query_len;
+    let spec = match scheme {
+        Scheme::Sinusoidal => SchemeSpec::Sinusoidal {
+            base: 10_000.0,
+            layout: pick(
+                stream,
+                &[SinusoidLayout::Interleaved, SinusoidLayout::Concatenated],
+            ),
+        },
+        Scheme::Learned => SchemeSpec::Learned {
+            max_positions: query_start as usize + key_len * 4 + 8,
+        },
+        Scheme::XlRelative => SchemeSpec::XlRelative {
+            scale: if stream.below(3) == 0 {
+                Scale::Fixed(0.25)
+            } else {
+                Scale::InverseSqrtDim
+            },
+            clamp_len: if stream.below(3) == 0 {
+                Some(range(stream, 0, key_len))
+            } else {
+                None
+            },
+        },
+        Scheme::Rotary => {
+            let rotary_dim = if stream.below(3) == 0 {
+                2 * range(stream, 1, head_dim / 2)
+            } else {
+                head_dim
+            };
+            let scaling = match stream.below(4) {
+                0 => RotaryScaling::LinearInterpolation {
+                    factor: range(stream, 2, 8) as f64,
+                },
+                1 if rotary_dim > 2 => RotaryScaling::NtkAware {
+                    factor: range(stream, 2, 8) as f64,
+                },
+                _ => RotaryScaling::None,
+            };
+            SchemeSpec::Rotary {
+                rotary_dim,
+                base: 10_000.0,
+                pairing: pick(stream, &[Pairing::Adjacent, Pairing::HalfSplit]),
+                scaling,
+                scale: Scale::InverseSqrtDim,
+            }
+        }
+        Scheme::Alibi => SchemeSpec::Alibi {
+            scale: Scale::InverseSqrtDim,
+        },
+        Scheme::Bucketed => {
+            let num_buckets = pick(stream, &[8usize, 16, 32]);
+            SchemeSpec::Bucketed {
+                num_buckets,
+                max_distance: num_buckets * range(stream, 1, 4),
+                bidirectional: stream.below(2) == 0,
+                scale: Scale::Fixed(1.0),
+            }
+        }
+        Scheme::Clipped => SchemeSpec::Clipped {
+            clip_distance: range(stream, 1, 8),
+            scale: Scale::InverseSqrtDim,
+        },
+    };
+    Case {
+        id: format!("fuzz.{n:04}.{}.{}", scheme.name(), operation.name()),
+        scheme: spec,
+        operation,
+        heads,
+        query_len,
+        memory_len,
+        head_dim,
+        query_start,
+        hidden_keys: Vec::new(),
+        dtype: if floats.is_empty() {
+            Dtype::F64
+        } else {
+            pick(stream, &floats)
+        },
+        seed: stream.below(u64::MAX),
+        faults: Vec::new(),
+        purpose: "random case from the fuzzer".into(),
     }
-    None
 }
 
 /// Smaller variants of `case`, most aggressive first, all valid.

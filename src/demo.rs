@@ -82,10 +82,10 @@ impl Kernel for TernKernel {
         Ok(KernelInfo {
             name: "tern-fused-relattn (Brightwater Audio, Kestrel-XL port)".into(),
             version: "0.9.2".into(),
-            supports: vec![Support {
-                scheme: Scheme::XlRelative,
-                operations: vec!["scores".into(), "attention".into(), "stream".into()],
-            }],
+            supports: vec![Support::new(
+                Scheme::XlRelative,
+                &["scores", "attention", "stream"],
+            )],
             dtypes: vec![Dtype::F32],
             conventions: vec![
                 "masked scores are -inf".into(),
