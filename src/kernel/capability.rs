@@ -65,6 +65,12 @@ pub fn parameters(scheme: Scheme) -> &'static [(&'static str, Kind)] {
     }
 }
 
+/// `scale` and `clamp_len` change scores only: they neither restrict nor are exercised
+/// by an `encode` case.
+fn scores_only(parameter: &str) -> bool {
+    matches!(parameter, "scale" | "clamp_len")
+}
+
 fn kind_of(scheme: Scheme, parameter: &str) -> Option<Kind> {
     parameters(scheme)
         .iter()
@@ -80,9 +86,12 @@ fn quoted(names: &[&str]) -> String {
         .join(", ")
 }
 
+/// The bounds of a range form, `(min, max)`, either of which may be absent.
+type Bounds = (Option<f64>, Option<f64>);
+
 /// `Some(Ok((min, max)))` when `form` is a range object, `Some(Err)` when it is an object
 /// that tries to be one and is malformed, `None` otherwise.
-fn as_range(form: &Value) -> Option<Result<(Option<f64>, Option<f64>), String>> {
+fn as_range(form: &Value) -> Option<Result<Bounds, String>> {
     let object = form.as_object()?;
     if !object.keys().any(|k| k == "min" || k == "max") {
         return None;
@@ -90,7 +99,7 @@ fn as_range(form: &Value) -> Option<Result<(Option<f64>, Option<f64>), String>> 
     Some(range_bounds(object))
 }
 
-fn range_bounds(object: &Map<String, Value>) -> Result<(Option<f64>, Option<f64>), String> {
+fn range_bounds(object: &Map<String, Value>) -> Result<Bounds, String> {
     if let Some(other) = object.keys().find(|k| *k != "min" && *k != "max") {
         return Err(format!(
             "a range has only the keys \"min\" and \"max\", not \"{other}\""
@@ -257,6 +266,9 @@ impl Support {
         }
         let values = parameter_values(case);
         for (name, forms) in &self.parameters {
+            if case.operation.name() == "encode" && scores_only(name) {
+                continue;
+            }
             let value = values.get(name).unwrap_or(&Value::Null);
             // A name the scheme does not have (the handshake parser refuses one; only a
             // Rust kernel building its entry by hand can pass it) has the value null.
@@ -575,8 +587,7 @@ pub fn never_exercised(info: &KernelInfo, exercised: &[(Case, Dtype)]) -> Vec<Ga
             .iter()
             .any(|s| s.operations.iter().any(|o| o != "encode"));
         for &(name, kind) in parameters(scheme) {
-            // `scale` and `clamp_len` change scores only: an encode case exercises neither.
-            let scores_only = matches!(name, "scale" | "clamp_len");
+            let scores_only = scores_only(name);
             if scores_only && !attends {
                 continue;
             }
