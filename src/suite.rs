@@ -1,7 +1,7 @@
 //! Built-in suites of cases.
 //!
 //! - `core`: small (committed under `vectors/core`, runs in seconds); every scheme,
-//!   every operation, and together every fault class of DESIGN.md §5, with positions
+//!   every operation, and together every fault class of docs/faults.md, with positions
 //!   far from 0, odd L, M = 0, M < L, M > L, L = 1, head widths 64, 80 and 96, scales
 //!   other than the default, non-power-of-two head counts and fully masked rows.
 //! - `long`: long positions (up to 10^6), L and M up to 2048, half-precision dtypes;
