@@ -563,6 +563,11 @@ pub fn never_exercised(info: &KernelInfo, exercised: &[(Case, Dtype)]) -> Vec<Ga
             .iter()
             .filter(|(c, _)| c.scheme.scheme() == scheme)
             .collect();
+        if ran.is_empty() {
+            // Nothing of the scheme ran: its operations and values need no listing.
+            gap(scheme.name().to_string(), true);
+            continue;
+        }
         for operation in OPERATIONS {
             let what = format!("{} {operation}", scheme.name());
             if !entries.iter().any(|s| operation_is(s, operation)) {
