@@ -80,6 +80,10 @@ fn tracked_files() -> Vec<String> {
 }
 
 fn is_scanned(path: &str) -> bool {
+    // This file's own examples are broken on purpose (the scanner's planted-bug test).
+    if path == "tests/doc_links.rs" {
+        return false;
+    }
     if path.starts_with("vectors/core/") || path.ends_with(".json") || path == "Cargo.lock" {
         return false;
     }
