@@ -389,9 +389,7 @@ pub fn random_case(
     dtypes: &[Dtype],
     n: usize,
 ) -> Option<Case> {
-    (0..20)
-        .map(|_| draw(stream, scheme, &operation, dtypes, n))
-        .find(|case| case.validate().is_ok())
+    random_case_where(stream, scheme, operation, dtypes, n, 20, &|_| true)
 }
 
 /// A random valid case of `scheme` and `operation` that `info` declares, in one of the
@@ -405,143 +403,151 @@ pub fn random_declared_case(
     n: usize,
 ) -> Option<Case> {
     let dtypes = info.operation_dtypes(scheme, operation.name());
-    (0..64)
-        .map(|_| draw(stream, scheme, &operation, &dtypes, n))
-        .find(|case| case.validate().is_ok() && info.declares(case).is_ok())
+    random_case_where(stream, scheme, operation, &dtypes, n, 64, &|case| {
+        info.declares(case).is_ok()
+    })
 }
 
-/// One random case of `scheme` and `operation`, not yet validated.
-fn draw(
+/// The first of `attempts` random draws that is valid and `accept`ed.
+fn random_case_where(
     stream: &mut Stream,
     scheme: Scheme,
-    operation: &Operation,
+    operation: Operation,
     dtypes: &[Dtype],
     n: usize,
-) -> Case {
+    attempts: usize,
+    accept: &dyn Fn(&Case) -> bool,
+) -> Option<Case> {
     let floats: Vec<Dtype> = dtypes.iter().copied().filter(|d| d.is_float()).collect();
-    let heads = if scheme == Scheme::Alibi {
-        range(stream, 1, 12)
-    } else {
-        range(stream, 1, 3)
-    };
-    let query_len = range(stream, 1, 9);
-    let memory_len = if stream.below(4) == 0 {
-        0
-    } else {
-        range(stream, 1, 14)
-    };
-    let head_dim = 2 * range(stream, 1, 8);
-    let far = stream.below(2) == 0;
-    let query_start = if far {
-        range(stream, 100, 100_000) as i64
-    } else {
-        range(stream, 0, 40) as i64
-    };
-    let operation = match operation {
-        Operation::Stream { .. } => Operation::Stream {
-            tokens: query_len * range(stream, 1, 3) + range(stream, 0, query_len - 1),
-        },
-        Operation::Decode { .. } => {
-            let tokens = range(stream, 2, 16);
-            let prefill = range(stream, 1, tokens - 1);
-            let mut left = tokens - prefill;
-            let mut chunks = Vec::new();
-            while left > 0 {
-                let c = range(stream, 1, left.min(4));
-                chunks.push(c);
-                left -= c;
-            }
-            Operation::Decode {
-                tokens,
-                prefill,
-                chunks,
-            }
-        }
-        other => other.clone(),
-    };
-    let key_len = memory_len + query_len;
-    let spec = match scheme {
-        Scheme::Sinusoidal => SchemeSpec::Sinusoidal {
-            base: 10_000.0,
-            layout: pick(
-                stream,
-                &[SinusoidLayout::Interleaved, SinusoidLayout::Concatenated],
-            ),
-        },
-        Scheme::Learned => SchemeSpec::Learned {
-            max_positions: query_start as usize + key_len * 4 + 8,
-        },
-        Scheme::XlRelative => SchemeSpec::XlRelative {
-            scale: if stream.below(3) == 0 {
-                Scale::Fixed(0.25)
-            } else {
-                Scale::InverseSqrtDim
-            },
-            clamp_len: if stream.below(3) == 0 {
-                Some(range(stream, 0, key_len))
-            } else {
-                None
-            },
-        },
-        Scheme::Rotary => {
-            let rotary_dim = if stream.below(3) == 0 {
-                2 * range(stream, 1, head_dim / 2)
-            } else {
-                head_dim
-            };
-            let scaling = match stream.below(4) {
-                0 => RotaryScaling::LinearInterpolation {
-                    factor: range(stream, 2, 8) as f64,
-                },
-                1 if rotary_dim > 2 => RotaryScaling::NtkAware {
-                    factor: range(stream, 2, 8) as f64,
-                },
-                _ => RotaryScaling::None,
-            };
-            SchemeSpec::Rotary {
-                rotary_dim,
-                base: 10_000.0,
-                pairing: pick(stream, &[Pairing::Adjacent, Pairing::HalfSplit]),
-                scaling,
-                scale: Scale::InverseSqrtDim,
-            }
-        }
-        Scheme::Alibi => SchemeSpec::Alibi {
-            scale: Scale::InverseSqrtDim,
-        },
-        Scheme::Bucketed => {
-            let num_buckets = pick(stream, &[8usize, 16, 32]);
-            SchemeSpec::Bucketed {
-                num_buckets,
-                max_distance: num_buckets * range(stream, 1, 4),
-                bidirectional: stream.below(2) == 0,
-                scale: Scale::Fixed(1.0),
-            }
-        }
-        Scheme::Clipped => SchemeSpec::Clipped {
-            clip_distance: range(stream, 1, 8),
-            scale: Scale::InverseSqrtDim,
-        },
-    };
-    Case {
-        id: format!("fuzz.{n:04}.{}.{}", scheme.name(), operation.name()),
-        scheme: spec,
-        operation,
-        heads,
-        query_len,
-        memory_len,
-        head_dim,
-        query_start,
-        hidden_keys: Vec::new(),
-        dtype: if floats.is_empty() {
-            Dtype::F64
+    for _ in 0..attempts {
+        let heads = if scheme == Scheme::Alibi {
+            range(stream, 1, 12)
         } else {
-            pick(stream, &floats)
-        },
-        seed: stream.below(u64::MAX),
-        faults: Vec::new(),
-        purpose: "random case from the fuzzer".into(),
+            range(stream, 1, 3)
+        };
+        let query_len = range(stream, 1, 9);
+        let memory_len = if stream.below(4) == 0 {
+            0
+        } else {
+            range(stream, 1, 14)
+        };
+        let head_dim = 2 * range(stream, 1, 8);
+        let far = stream.below(2) == 0;
+        let query_start = if far {
+            range(stream, 100, 100_000) as i64
+        } else {
+            range(stream, 0, 40) as i64
+        };
+        let operation = match &operation {
+            Operation::Stream { .. } => Operation::Stream {
+                tokens: query_len * range(stream, 1, 3) + range(stream, 0, query_len - 1),
+            },
+            Operation::Decode { .. } => {
+                let tokens = range(stream, 2, 16);
+                let prefill = range(stream, 1, tokens - 1);
+                let mut left = tokens - prefill;
+                let mut chunks = Vec::new();
+                while left > 0 {
+                    let c = range(stream, 1, left.min(4));
+                    chunks.push(c);
+                    left -= c;
+                }
+                Operation::Decode {
+                    tokens,
+                    prefill,
+                    chunks,
+                }
+            }
+            other => other.clone(),
+        };
+        let key_len = memory_len + query_len;
+        let spec = match scheme {
+            Scheme::Sinusoidal => SchemeSpec::Sinusoidal {
+                base: 10_000.0,
+                layout: pick(
+                    stream,
+                    &[SinusoidLayout::Interleaved, SinusoidLayout::Concatenated],
+                ),
+            },
+            Scheme::Learned => SchemeSpec::Learned {
+                max_positions: query_start as usize + key_len * 4 + 8,
+            },
+            Scheme::XlRelative => SchemeSpec::XlRelative {
+                scale: if stream.below(3) == 0 {
+                    Scale::Fixed(0.25)
+                } else {
+                    Scale::InverseSqrtDim
+                },
+                clamp_len: if stream.below(3) == 0 {
+                    Some(range(stream, 0, key_len))
+                } else {
+                    None
+                },
+            },
+            Scheme::Rotary => {
+                let rotary_dim = if stream.below(3) == 0 {
+                    2 * range(stream, 1, head_dim / 2)
+                } else {
+                    head_dim
+                };
+                let scaling = match stream.below(4) {
+                    0 => RotaryScaling::LinearInterpolation {
+                        factor: range(stream, 2, 8) as f64,
+                    },
+                    1 if rotary_dim > 2 => RotaryScaling::NtkAware {
+                        factor: range(stream, 2, 8) as f64,
+                    },
+                    _ => RotaryScaling::None,
+                };
+                SchemeSpec::Rotary {
+                    rotary_dim,
+                    base: 10_000.0,
+                    pairing: pick(stream, &[Pairing::Adjacent, Pairing::HalfSplit]),
+                    scaling,
+                    scale: Scale::InverseSqrtDim,
+                }
+            }
+            Scheme::Alibi => SchemeSpec::Alibi {
+                scale: Scale::InverseSqrtDim,
+            },
+            Scheme::Bucketed => {
+                let num_buckets = pick(stream, &[8usize, 16, 32]);
+                SchemeSpec::Bucketed {
+                    num_buckets,
+                    max_distance: num_buckets * range(stream, 1, 4),
+                    bidirectional: stream.below(2) == 0,
+                    scale: Scale::Fixed(1.0),
+                }
+            }
+            Scheme::Clipped => SchemeSpec::Clipped {
+                clip_distance: range(stream, 1, 8),
+                scale: Scale::InverseSqrtDim,
+            },
+        };
+        let case = Case {
+            id: format!("fuzz.{n:04}.{}.{}", scheme.name(), operation.name()),
+            scheme: spec,
+            operation,
+            heads,
+            query_len,
+            memory_len,
+            head_dim,
+            query_start,
+            hidden_keys: Vec::new(),
+            dtype: if floats.is_empty() {
+                Dtype::F64
+            } else {
+                pick(stream, &floats)
+            },
+            seed: stream.below(u64::MAX),
+            faults: Vec::new(),
+            purpose: "random case from the fuzzer".into(),
+        };
+        if case.validate().is_ok() && accept(&case) {
+            return Some(case);
+        }
     }
+    None
 }
 
 /// Smaller variants of `case`, most aggressive first, all valid.
