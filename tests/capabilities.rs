@@ -510,3 +510,51 @@ proptest! {
         prop_assert!(outcome.is_ok());
     }
 }
+
+/// The core suite covers every combination a kernel can declare, where it can: every
+/// scheme with every operation, and every value of every enumerated parameter in an
+/// operation that attends (not only in `encode`); rotary attention with memory runs in
+/// f32 with both pairings.
+#[test]
+fn the_core_suite_exercises_every_declarable_combination() {
+    let cases = suite("core").unwrap();
+    for scheme in Scheme::ALL {
+        for operation in OPERATIONS {
+            assert!(
+                cases
+                    .iter()
+                    .any(|c| c.scheme.scheme() == *scheme && c.operation.name() == operation),
+                "no core case for {} {operation}",
+                scheme.name()
+            );
+        }
+    }
+    // A kernel declaring everything, computing in f64, shown only the attending cases:
+    // nothing may be left unexercised but `encode` itself.
+    let info = KernelInfo {
+        name: "everything".into(),
+        version: String::new(),
+        supports: full_support(),
+        dtypes: vec![Dtype::F64],
+        conventions: Vec::new(),
+    };
+    let attending: Vec<(Case, Dtype)> = cases
+        .iter()
+        .filter(|c| c.operation.name() != "encode")
+        .map(|c| (c.clone(), Dtype::F64))
+        .collect();
+    let gaps: Vec<Gap> = posconform::kernel::capability::never_exercised(&info, &attending)
+        .into_iter()
+        .filter(|g| !g.what.ends_with(" encode") && !g.what.starts_with("dtype "))
+        .collect();
+    assert!(gaps.is_empty(), "not covered outside encode: {gaps:?}");
+    for wanted in [Pairing::Adjacent, Pairing::HalfSplit] {
+        assert!(
+            cases.iter().any(|c| pairing(c) == Some(wanted)
+                && c.operation.name() == "attention"
+                && c.memory_len > 0
+                && c.dtype == Dtype::F32),
+            "no f32 rotary attention with memory for {wanted:?}"
+        );
+    }
+}
