@@ -1,4 +1,5 @@
-//! Per-scheme benchmarks at the DESIGN.md §6 shape (L = M = 512, d = 64, H = 8, f64).
+//! Per-scheme benchmarks at the shape of the performance goals in DEVELOPERS.md
+//! (L = M = 512, d = 64, H = 8, f64).
 //!
 //! One function per scheme, each registering its own groups, all combined in the
 //! `criterion_group!` at the bottom: adding a scheme is one function and one name

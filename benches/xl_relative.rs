@@ -2,9 +2,9 @@
 //! relative-shift form, and the two bare matrix products the efficient form needs (the
 //! floor on this machine), side by side in one run.
 //!
-//! Run: `cargo bench --bench xl_relative`. Targets (DESIGN.md §6), read as ratios of
-//! the reported times, never asserted on time: rel_shift >= 10x faster than naive, and
-//! within 1.3x of bare_matmuls, at L = M = 512, d = 64, H = 8.
+//! Run: `cargo bench --bench xl_relative`. Targets (DEVELOPERS.md, "Benchmarks and size
+//! goals"), read as ratios of the reported times, never asserted on time: rel_shift >=
+//! 10x faster than naive, and within 1.3x of bare_matmuls, at L = M = 512, d = 64, H = 8.
 
 use std::hint::black_box;
 use std::time::Duration;

@@ -9,8 +9,11 @@
 //! ./target/release/posconform check --kernel target/release/examples/rust_kernel
 //! ```
 //!
-//! Cases it does not implement (every other scheme and operation, and scaled rotary) are
-//! declined and reported as skipped.
+//! Its handshake declares what it does (docs/protocol.md, "Capabilities"): rotary
+//! `encode` without context-extension scaling, in f64. The harness never sends it
+//! anything else; the report lists the rest as skipped ("not declared") and names what
+//! was never exercised. A case that slips through anyway (an older harness ignores
+//! capabilities) is still declined with `-32001`.
 
 use ndarray::{Array1, Array3};
 use posconform::case::{Arrays, Case, Operation, SchemeSpec};
@@ -28,10 +31,8 @@ impl Kernel for MyRope {
         Ok(KernelInfo {
             name: "example-rust-rope".into(),
             version: "0.1.0".into(),
-            supports: vec![Support {
-                scheme: Scheme::Rotary,
-                operations: vec!["encode".into()],
-            }],
+            supports: vec![Support::new(Scheme::Rotary, &["encode"])
+                .with_parameter("scaling", vec![serde_json::json!("none")])],
             dtypes: vec![Dtype::F64],
             conventions: Vec::new(),
         })

@@ -1,6 +1,6 @@
 //! Masked softmax attention over `[memory ; current]` keys.
 //!
-//! Convention (DESIGN.md §3, the single source of truth):
+//! Convention (docs/conventions.md, "Layout and positions" and "Visibility and masking"):
 //! - queries `q[H, L, d]`; keys and values `k, v[H, M+L, d]`, memory first, oldest first;
 //! - query `i` sits at absolute position `p0 + i`, key `j` at `p0 - M + j`;
 //! - distance `Δ(i, j) = M + i - j`; key `j` is visible to query `i` iff `Δ >= 0`,
@@ -16,7 +16,7 @@ use crate::error::{expect_shape, Error, Result};
 use crate::precision::gemm;
 
 /// The shape of one causal attention step: `L` current queries over `M` memory keys
-/// followed by the `L` current keys (DESIGN.md §3).
+/// followed by the `L` current keys (docs/conventions.md).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]
 pub struct Window {
     memory_len: usize,

@@ -5,7 +5,7 @@
 //! of that dtype receives them exactly) and its expected outputs (the f64 reference of
 //! [`crate::reference`]).
 //!
-//! Operations and their arrays (shapes per DESIGN.md §3; `K = M + L`, `T` tokens):
+//! Operations and their arrays (docs/conventions.md, "Operations"; `K = M + L`, `T` tokens):
 //!
 //! | operation | inputs | outputs |
 //! |---|---|---|
@@ -222,7 +222,7 @@ pub struct Case {
     pub dtype: Dtype,
     /// Seed of the input stream.
     pub seed: u64,
-    /// Fault classes of DESIGN.md §5 this case is built to expose.
+    /// Fault classes (docs/faults.md) this case is built to expose.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub faults: Vec<u8>,
     /// Why the case exists, in one sentence.

@@ -111,17 +111,7 @@ pub fn run_case(
     case: &Case,
     options: &CompareOptions,
 ) -> (CaseReport, bool) {
-    if !info.supports(case) {
-        let scheme = case.scheme.scheme();
-        let reason = if info.supports.iter().any(|s| s.scheme == scheme) {
-            format!(
-                "the kernel does not list {} {}",
-                scheme.name(),
-                case.operation.name()
-            )
-        } else {
-            format!("the kernel does not implement {}", scheme.name())
-        };
+    if let Err(reason) = info.declares(case) {
         return (CaseReport::skipped(case, reason), false);
     }
     let dtype = info.dtype_for(case);
@@ -198,6 +188,8 @@ struct Runner<'k> {
     limit: usize,
     stopped: Option<String>,
     notes: Vec<String>,
+    /// Every case whose outputs were compared, with the dtype it was sent in.
+    exercised: Vec<(Case, Dtype)>,
 }
 
 impl Runner<'_> {
@@ -206,6 +198,10 @@ impl Runner<'_> {
             return CaseReport::error(case, format!("not run: {why}"));
         }
         let (report, kernel_failed) = run_case(self.kernel, &self.info, case, options);
+        if matches!(report.verdict, Verdict::Pass | Verdict::Fail) {
+            self.exercised
+                .push((case.clone(), self.info.dtype_for(case)));
+        }
         if kernel_failed {
             self.consecutive += 1;
             if self.consecutive >= self.limit {
@@ -246,12 +242,14 @@ pub fn check(
         limit: options.max_consecutive_errors.max(1),
         stopped: None,
         notes: Vec::new(),
+        exercised: Vec::new(),
     };
     let mut report = Report {
         mode: "check".into(),
         subject: format!("{} {}", info.name, info.version).trim().to_string(),
         cases: Vec::new(),
         notes: Vec::new(),
+        never_exercised: Vec::new(),
     };
     for (n, case) in cases.iter().enumerate() {
         progress("suite", n, cases.len());
@@ -285,6 +283,7 @@ pub fn check(
         );
     }
     report.notes.extend(runner.notes);
+    report.never_exercised = crate::kernel::capability::never_exercised(&info, &runner.exercised);
     Ok(CheckOutcome {
         info,
         report,
@@ -325,7 +324,7 @@ fn fuzz_and_shrink(
         }
         progress("fuzz", n, options.fuzz_cases);
         let (scheme, op) = supported[stream.below(supported.len() as u64) as usize].clone();
-        let Some(case) = random_case(&mut stream, scheme, op, &runner.info.dtypes, n) else {
+        let Some(case) = random_declared_case(&mut stream, &runner.info, scheme, op, n) else {
             continue;
         };
         let report = runner.run(&case, &options.compare);
@@ -394,8 +393,37 @@ pub fn random_case(
     dtypes: &[Dtype],
     n: usize,
 ) -> Option<Case> {
+    random_case_where(stream, scheme, operation, dtypes, n, 20, &|_| true)
+}
+
+/// A random valid case of `scheme` and `operation` that `info` declares, in one of the
+/// dtypes it declares for the operation (None when many draws found none: the
+/// declared values lie outside what the fuzzer draws).
+pub fn random_declared_case(
+    stream: &mut Stream,
+    info: &KernelInfo,
+    scheme: Scheme,
+    operation: Operation,
+    n: usize,
+) -> Option<Case> {
+    let dtypes = info.operation_dtypes(scheme, operation.name());
+    random_case_where(stream, scheme, operation, &dtypes, n, 64, &|case| {
+        info.declares(case).is_ok()
+    })
+}
+
+/// The first of `attempts` random draws that is valid and `accept`ed.
+fn random_case_where(
+    stream: &mut Stream,
+    scheme: Scheme,
+    operation: Operation,
+    dtypes: &[Dtype],
+    n: usize,
+    attempts: usize,
+    accept: &dyn Fn(&Case) -> bool,
+) -> Option<Case> {
     let floats: Vec<Dtype> = dtypes.iter().copied().filter(|d| d.is_float()).collect();
-    for _ in 0..20 {
+    for _ in 0..attempts {
         let heads = if scheme == Scheme::Alibi {
             range(stream, 1, 12)
         } else {
@@ -519,7 +547,7 @@ pub fn random_case(
             faults: Vec::new(),
             purpose: "random case from the fuzzer".into(),
         };
-        if case.validate().is_ok() {
+        if case.validate().is_ok() && accept(&case) {
             return Some(case);
         }
     }

@@ -2,7 +2,7 @@
 //! attention kernels.
 //!
 //! The index conventions (layout, absolute positions, distance `Δ = M + i - j`, causal
-//! visibility over `[memory ; current]`) are stated once, in DESIGN.md §3 and in
+//! visibility over `[memory ; current]`) are stated once, in docs/conventions.md and in
 //! [`attention`]; every scheme module links there and cites its paper.
 //!
 //! # Example

@@ -1,5 +1,5 @@
 //! Dtypes, rounding emulation and the numbers error budgets are built from
-//! (DESIGN.md §4).
+//! (docs/budgets.md).
 //!
 //! - Unit roundoff `u`: f64 2^-53, f32 2^-24, f16 2^-11, bf16 2^-8.
 //! - Dot-product bound: `|fl(x·y) - x·y| <= γ_n Σ|x_i y_i|`, `γ_n = n·u / (1 - n·u)`
@@ -62,7 +62,7 @@ impl Dtype {
         self != Dtype::I64
     }
 
-    /// Unit roundoff `u` (DESIGN.md §4); 0 for integers.
+    /// Unit roundoff `u` (docs/budgets.md); 0 for integers.
     pub fn unit_roundoff(self) -> f64 {
         match self {
             Dtype::F64 => 2f64.powi(-53),
@@ -123,7 +123,7 @@ impl Dtype {
     }
 
     /// Largest integer `N` such that every integer in `[-N, N]` is exact in this dtype
-    /// (f16: 2048, bf16: 256; DESIGN.md §4).
+    /// (f16: 2048, bf16: 256: IEEE 754 binary16 has an 11-bit significand, bfloat16 an 8-bit one).
     pub fn exact_integer_limit(self) -> f64 {
         match self {
             Dtype::F64 => 2f64.powi(53),

@@ -1,7 +1,7 @@
 //! Segment-level recurrence (Dai et al. 2019, Transformer-XL, §3.2) through a stack of
 //! bare relative-attention layers.
 //!
-//! Convention (DESIGN.md §3, "Recurrence"): a sequence of `T` tokens is cut into
+//! Convention (docs/conventions.md, "stream"): a sequence of `T` tokens is cut into
 //! segments of length `L` (the last may be shorter). Per layer, the memory for segment
 //! `τ+1` is the last `M` rows of `[memory_τ ; inputs_τ]` — the newest rows are kept —
 //! where `inputs_τ` are that layer's *inputs* for segment `τ`. Queries come from the

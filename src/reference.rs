@@ -133,6 +133,9 @@ pub struct Contract {
     /// `u_a`: frequencies and angles `p·ω` are formed in f32 or wider (in f64 for an
     /// f64 kernel).
     pub angle: f64,
+    /// `u_s` when the case's inputs are wider than the declared dtype (the harness
+    /// rounds them to it when it sends them), 0 when they are already exact in it.
+    pub input: f64,
     /// Absolute error allowed below the dtype's normal range: the smallest normal
     /// number for f64, f32 and bf16 (flushing subnormals to zero is common practice on
     /// accelerators), half the subnormal spacing for f16 (gradual underflow).
@@ -140,13 +143,19 @@ pub struct Contract {
 }
 
 impl Contract {
-    /// The contract of a kernel declaring `dtype`.
-    pub fn for_dtype(dtype: Dtype) -> Self {
+    /// The contract of a kernel declaring `dtype` for a case written for `case_dtype`.
+    pub fn for_dtype(dtype: Dtype, case_dtype: Dtype) -> Self {
         let wide = dtype.unit_roundoff().min(Dtype::F32.unit_roundoff());
+        let rounds_inputs = dtype.unit_roundoff() > case_dtype.unit_roundoff();
         Contract {
             storage: dtype.unit_roundoff(),
             accumulation: wide,
             angle: wide,
+            input: if rounds_inputs {
+                dtype.unit_roundoff()
+            } else {
+                0.0
+            },
             floor: match dtype {
                 Dtype::F64 => f64::MIN_POSITIVE,
                 Dtype::F32 | Dtype::Bf16 => f32::MIN_POSITIVE as f64,
@@ -167,7 +176,7 @@ impl Contract {
     ///
     /// - `ω = 1` (the first frequency of every formula) is exact, so `θ = p'` carries
     ///   only the rounding of `p` (when it exceeds the angle precision's exact integers)
-    ///   and of `p/s` under linear interpolation;
+    ///   and, under linear interpolation, two roundings (`p/s`, or `1/s` then `p·(1/s)`);
     /// - otherwise `ω` carries up to `(4|ln ω| + 2)·u_a` relative, covering the usual
     ///   correct formulas (`base^(-2i/d)`, `exp(-2i·ln(base)/d)`, `1/base^(2i/d)`: each
     ///   rounds an exponent or a logarithm whose error is multiplied by `|ln ω|`), `6u_a`
@@ -186,7 +195,8 @@ impl Contract {
             0.0
         };
         if scaling == AngleScaling::Linear {
-            relative += u;
+            // p/s, or (ω/s)·p and p·(1/s): two roundings even when ω = 1.
+            relative += 2.0 * u;
         }
         if omega < 1.0 {
             let ln = if omega > 0.0 {
@@ -211,10 +221,10 @@ impl Contract {
 
     /// Relative error `e` of one rotated component besides the angle error, per unit of
     /// `|x_a| + |x_b|`: cos/sin evaluated and stored (`2u_a + u_s`), the two products
-    /// and their sum rounded (`3u_s`), the input rounded to the dtype (`u_s`), and the
-    /// reference's own rotation (`6·2^-53`).
+    /// and their difference or sum rounded (`2u_s`), the input rounded to the dtype
+    /// when the case is wider, and the reference's own rotation (`6·2^-53`).
     pub fn rotated_component_error(&self) -> f64 {
-        2.0 * self.angle + 5.0 * self.storage + 6.0 * R64
+        2.0 * self.angle + 3.0 * self.storage + self.input + 6.0 * R64
     }
 }
 
@@ -576,7 +586,7 @@ impl<'a> Pipeline<'a> {
 
     fn bounds(&self, dtype: Dtype) -> Result<Outputs> {
         let case = self.case;
-        let contract = Contract::for_dtype(dtype);
+        let contract = Contract::for_dtype(dtype, case.dtype);
         let mut out = Outputs::new();
         match &case.operation {
             Operation::Encode => {
@@ -691,7 +701,8 @@ impl<'a> Pipeline<'a> {
                 // Σ(|q|+|u|)|k| + Σ(|q|+|v|)|r_Δ|: q+u and q+v rounded, the inputs
                 // rounded to the dtype, two dot products and their sum.
                 let magnitude = xl_relative::scores(&inputs, &params)?.mapv(finite_or_zero);
-                magnitude * (gamma + 5.0 * us + 4.0 * R64)
+                // (four dot products summed add 3u_s; inputs add 2·input)
+                magnitude * (gamma + 3.0 * us + 2.0 * contract.input + 4.0 * R64)
             }
             SchemeSpec::Rotary { .. } => self.rotary_score_terms(q, k, &qp, &kp, contract)?,
             SchemeSpec::Alibi { .. } => {
@@ -704,15 +715,15 @@ impl<'a> Pipeline<'a> {
                 let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
                 // The slope formed at the angle precision, the product m·Δ and the
                 // bias stored in the dtype.
-                products(&qa, &ka) * (gamma + 3.0 * us)
-                    + bias.mapv(|b| finite_or_zero(b).abs()) * (contract.angle + 2.0 * us + R64)
+                products(&qa, &ka) * (gamma + us + 2.0 * contract.input)
+                    + bias.mapv(|b| finite_or_zero(b).abs()) * (contract.angle + us + R64)
             }
             SchemeSpec::Bucketed { .. } => {
                 let rule = self.buckets()?;
                 let bias = bucketed::bias(self.get2("bias_table")?.view(), window, &rule)?;
                 let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
-                products(&qa, &ka) * (gamma + 3.0 * us)
-                    + bias.mapv(|b| finite_or_zero(b).abs()) * (2.0 * us)
+                products(&qa, &ka) * (gamma + us + 2.0 * contract.input)
+                    + bias.mapv(|b| finite_or_zero(b).abs()) * (us + contract.input)
             }
             SchemeSpec::Clipped { clip_distance, .. } => {
                 let w = self.get3("w_key")?.mapv(f64::abs);
@@ -722,7 +733,7 @@ impl<'a> Pipeline<'a> {
                 };
                 let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
                 clipped::scores(qa.view(), ka.view(), w.view(), &params)?.mapv(finite_or_zero)
-                    * (gamma + 4.0 * us)
+                    * (gamma + us + 2.0 * contract.input)
             }
         };
         let mut bound = Zip::from(&terms).and(&scores).map_collect(|&t, &s| {
@@ -755,7 +766,7 @@ impl<'a> Pipeline<'a> {
             let table_error = self.table_errors(table, positions, contract);
             Array3::from_shape_fn(x.raw_dim(), |(h, n, c)| {
                 let sum = x[[h, n, c]] + table[[n, c]];
-                table_error[[n, c]] + rounding * (sum.abs() + x[[h, n, c]].abs())
+                table_error[[n, c]] + rounding * sum.abs() + contract.input * x[[h, n, c]].abs()
             })
         };
         let (eq, ek) = (errors(q, &qt, qp), errors(k, &kt, kp));
@@ -785,7 +796,8 @@ impl<'a> Pipeline<'a> {
                         + contract.table_value_error()
                 })
             }
-            _ => table.mapv(|t| (contract.storage + R64) * t.abs()),
+            // A learned row is an exact lookup of an input.
+            _ => table.mapv(|t| contract.input * t.abs()),
         }
     }
 
@@ -845,7 +857,7 @@ impl<'a> Pipeline<'a> {
             gemm(factor, &rq, &rk_dk.index_axis(Axis(0), h).t(), 1.0, &mut o);
             gemm(factor * per_pair, &rq, &rk.t(), 1.0, &mut o);
             if params.rotary_dim < d {
-                let tail_coefficient = 2.0 * contract.storage + 2.0 * R64 + gamma;
+                let tail_coefficient = 2.0 * contract.input + gamma;
                 gemm(
                     factor * tail_coefficient,
                     &tq.index_axis(Axis(0), h),
@@ -917,7 +929,7 @@ impl<'a> Pipeline<'a> {
         let va = v.mapv(f64::abs);
         let carried = self.window_output(&probs_bound, va.view(), window, true)?;
         let magnitude = self.window_output(&probs, va.view(), window, true)?;
-        let output_gamma = gamma_of(ua, key_len) + gamma_of(R64, key_len) + 2.0 * us;
+        let output_gamma = gamma_of(ua, key_len) + gamma_of(R64, key_len) + contract.input;
         let output_bound = Zip::from(&carried)
             .and(&magnitude)
             .and(&output)
@@ -937,7 +949,7 @@ impl<'a> Pipeline<'a> {
                     .into_dyn()
             }
             // Lookups are exact; a kernel narrower than the case rounds them once.
-            SchemeSpec::Learned { .. } => values.mapv(|v| us * v.abs() + floor),
+            SchemeSpec::Learned { .. } => values.mapv(|v| contract.input * v.abs() + floor),
             SchemeSpec::Bucketed { .. } | SchemeSpec::Clipped { .. } => {
                 ArrayD::zeros(values.raw_dim())
             }
@@ -952,7 +964,8 @@ impl<'a> Pipeline<'a> {
                 let positions = self.positions("positions")?;
                 let e = contract.rotated_component_error();
                 let scaling = angle_scaling(&params.scaling);
-                let mut bound = values.mapv(|v| us * v.abs() + floor);
+                // The pass-through tail: only the inputs' rounding.
+                let mut bound = values.mapv(|v| contract.input * v.abs() + floor);
                 for (n, &p) in positions.iter().enumerate() {
                     let angles = rot.angles(p)?;
                     for (j, (&theta, &omega)) in angles.iter().zip(rot.frequencies()).enumerate() {
@@ -987,7 +1000,8 @@ impl<'a> Pipeline<'a> {
                         + contract.table_value_error()
                 });
                 let table = table.mapv(f64::abs);
-                let gamma = contract.gamma(case.head_dim) + gamma_of(R64, case.head_dim) + 2.0 * us;
+                let gamma =
+                    contract.gamma(case.head_dim) + gamma_of(R64, case.head_dim) + contract.input;
                 let mut bound = Array3::zeros((case.heads, case.key_len(), case.head_dim));
                 for (mut b, wh) in bound.outer_iter_mut().zip(w.outer_iter()) {
                     gemm(1.0, &errors, &wh, 0.0, &mut b);

@@ -1,7 +1,9 @@
 //! Built-in suites of cases.
 //!
-//! - `core`: small (committed under `vectors/core`, runs in seconds); every scheme,
-//!   every operation, and together every fault class of DESIGN.md §5, with positions
+//! - `core`: small (committed under `vectors/core`, runs in seconds); every scheme with
+//!   every operation, every value of every enumerated parameter (docs/protocol.md,
+//!   "Capabilities") in an operation that attends, rotary attention with memory in f32
+//!   in both pairings, and together every fault class of docs/faults.md, with positions
 //!   far from 0, odd L, M = 0, M < L, M > L, L = 1, head widths 64, 80 and 96, scales
 //!   other than the default, non-power-of-two head counts and fully masked rows.
 //! - `long`: long positions (up to 10^6), L and M up to 2048, half-precision dtypes;
@@ -186,6 +188,15 @@ fn core() -> Vec<Case> {
         .faults(&[8, 14])
         .purpose("absolute encoding added to q and k, memory keys before the segment"),
         Builder::new(
+            "sinusoidal.scores.concatenated",
+            sinusoidal(Concatenated),
+            Scores,
+        )
+        .shape(2, 6, 4, 64)
+        .start(3000)
+        .faults(&[8, 15])
+        .purpose("sin||cos layout in the scores, with memory"),
+        Builder::new(
             "sinusoidal.stream.segments",
             sinusoidal(Interleaved),
             stream(12),
@@ -194,6 +205,15 @@ fn core() -> Vec<Case> {
         .start(0)
         .faults(&[9, 11])
         .purpose("absolute positions must keep counting across segments"),
+        Builder::new(
+            "sinusoidal.decode.chunks",
+            sinusoidal(Interleaved),
+            decode(11, 4, &[1, 3, 3]),
+        )
+        .shape(2, 5, 0, 64)
+        .start(600)
+        .faults(&[10])
+        .purpose("prefill 4 then chunks 1, 3, 3: each chunk continues at p0 + cache length"),
         // Learned absolute.
         Builder::new(
             "learned.encode.rows",
@@ -205,6 +225,25 @@ fn core() -> Vec<Case> {
         .faults(&[9])
         .purpose("lookup of positions 40..56, never wrapped"),
         Builder::new(
+            "learned.scores.memory",
+            SchemeSpec::Learned { max_positions: 48 },
+            Scores,
+        )
+        .shape(2, 5, 6, 64)
+        .start(30)
+        .faults(&[5, 8])
+        .purpose("rows of positions 24..35 added to q and k, memory in front"),
+        Builder::new(
+            "learned.attention.f32",
+            SchemeSpec::Learned { max_positions: 40 },
+            Attention,
+        )
+        .shape(2, 4, 3, 64)
+        .start(20)
+        .dtype(Dtype::F32)
+        .faults(&[5, 8])
+        .purpose("learned rows in f32 attention"),
+        Builder::new(
             "learned.stream.segments",
             SchemeSpec::Learned { max_positions: 32 },
             stream(15),
@@ -213,6 +252,15 @@ fn core() -> Vec<Case> {
         .start(0)
         .faults(&[9])
         .purpose("restarting positions per segment aliases tokens t and t+L"),
+        Builder::new(
+            "learned.decode.chunks",
+            SchemeSpec::Learned { max_positions: 24 },
+            decode(12, 5, &[2, 1, 4]),
+        )
+        .shape(1, 5, 0, 64)
+        .start(8)
+        .faults(&[10])
+        .purpose("prefill 5 then chunks 2, 1, 4 at positions 13..20"),
         // Transformer-XL relative.
         Builder::new(
             "xl_relative.encode.projected_sinusoid",
@@ -306,6 +354,14 @@ fn core() -> Vec<Case> {
         .shape(1, 5, 3, 64)
         .faults(&[11])
         .purpose("M < L and a shorter last segment"),
+        Builder::new(
+            "xl_relative.decode.clamped",
+            xl(InverseSqrtDim, Some(6)),
+            decode(13, 6, &[1, 2, 4]),
+        )
+        .shape(2, 5, 0, 64)
+        .faults(&[10, 12])
+        .purpose("prefill 6 then chunks 1, 2, 4 with clamp length 6: r has 7 rows"),
         // Rotary.
         Builder::new(
             "rotary.encode.adjacent",
@@ -380,6 +436,20 @@ fn core() -> Vec<Case> {
         .faults(&[8, 10, 14])
         .purpose("scores over a cache of 5 with scale 0.2"),
         Builder::new(
+            "rotary.scores.linear_interpolation",
+            rotary(
+                64,
+                HalfSplit,
+                RotaryScaling::LinearInterpolation { factor: 2.0 },
+                InverseSqrtDim,
+            ),
+            Scores,
+        )
+        .shape(2, 5, 4, 64)
+        .start(9000)
+        .faults(&[20])
+        .purpose("interpolated positions in the scores of both queries and memory keys"),
+        Builder::new(
             "rotary.attention.f32",
             rotary(64, Adjacent, none, InverseSqrtDim),
             Attention,
@@ -389,6 +459,30 @@ fn core() -> Vec<Case> {
         .dtype(Dtype::F32)
         .faults(&[5, 8])
         .purpose("M > L in f32"),
+        Builder::new(
+            "rotary.attention.half_split_f32",
+            rotary(64, HalfSplit, none, InverseSqrtDim),
+            Attention,
+        )
+        .shape(2, 5, 7, 64)
+        .start(6000)
+        .dtype(Dtype::F32)
+        .faults(&[5, 8, 17])
+        .purpose("M > L in f32 with half-split pairs"),
+        Builder::new(
+            "rotary.attention.ntk_aware_partial",
+            rotary(
+                32,
+                Adjacent,
+                RotaryScaling::NtkAware { factor: 4.0 },
+                InverseSqrtDim,
+            ),
+            Attention,
+        )
+        .shape(2, 4, 5, 64)
+        .start(2500)
+        .faults(&[18, 20])
+        .purpose("NTK-aware base over rotary width 32 of 64, adjacent pairs, with memory"),
         Builder::new(
             "rotary.attention.bf16",
             rotary(64, HalfSplit, none, InverseSqrtDim),
@@ -445,6 +539,17 @@ fn core() -> Vec<Case> {
             .start(0)
             .faults(&[10])
             .purpose("prefill 3 then chunks 1, 1, 2, 3"),
+        Builder::new(
+            "alibi.stream.fixed_scale",
+            SchemeSpec::Alibi {
+                scale: Fixed(0.125),
+            },
+            stream(11),
+        )
+        .shape(3, 4, 3, 64)
+        .start(40)
+        .faults(&[9, 11, 14])
+        .purpose("segments of 4 with memory 3, q·k scaled by 0.125 and the bias unscaled"),
         // T5 buckets.
         Builder::new("bucketed.encode.bidirectional", t5(32, 128, true), Encode)
             .shape(1, 1, 0, 64)
@@ -478,6 +583,19 @@ fn core() -> Vec<Case> {
         .shape(2, 5, 0, 64)
         .faults(&[10])
         .purpose("prefill 4 then chunks 1, 2, 5"),
+        Builder::new(
+            "bucketed.stream.bidirectional",
+            SchemeSpec::Bucketed {
+                num_buckets: 32,
+                max_distance: 64,
+                bidirectional: true,
+                scale: InverseSqrtDim,
+            },
+            stream(14),
+        )
+        .shape(2, 5, 6, 64)
+        .faults(&[11, 14, 23])
+        .purpose("a bidirectional rule leaves 16 buckets for past keys; q·k scaled by 1/sqrt(d)"),
         // Shaw clipped.
         Builder::new("clipped.encode.k16", clipped(16), Encode)
             .shape(1, 1, 0, 64)
@@ -499,6 +617,17 @@ fn core() -> Vec<Case> {
         .shape(2, 5, 0, 64)
         .faults(&[10])
         .purpose("prefill 4 then chunks 1, 2, 3"),
+        Builder::new(
+            "clipped.stream.fixed_scale",
+            SchemeSpec::Clipped {
+                clip_distance: 2,
+                scale: Fixed(0.2),
+            },
+            stream(10),
+        )
+        .shape(2, 3, 4, 64)
+        .faults(&[11, 14])
+        .purpose("segments of 3 with memory 4, distances past the clip, scale 0.2"),
     ]
 }
 

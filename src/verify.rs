@@ -30,6 +30,7 @@ pub fn verify(vectors: &Path, results: &Path, options: &CompareOptions) -> Resul
         subject: format!("{} against {}", vectors.display(), results.display()),
         cases: Vec::new(),
         notes: Vec::new(),
+        never_exercised: Vec::new(),
     };
     let mut known = BTreeSet::new();
     for file in &files {

@@ -1,5 +1,5 @@
-//! Precision study: rotary angles formed in f16 or bf16 versus f32 (DESIGN.md §4,
-//! "Phase error of angles grows with position"; DESIGN.md §5 fault 19).
+//! Precision study: rotary angles formed in f16 or bf16 versus f32 (the phase error of
+//! angles grows with position, docs/budgets.md; fault class 19 of docs/faults.md).
 //!
 //! "Formed in dtype T" means exactly this, for position `p` and `θ_j = 10000^(-2j/d)`:
 //! 1. `p` is rounded to T;
@@ -20,7 +20,7 @@ use half::{bf16, f16};
 use posconform::rotary::{Pairing, Rotary, RotaryParams};
 use std::f64::consts::PI;
 
-/// Unit roundoffs (DESIGN.md §4).
+/// Unit roundoffs (Higham 2002, §2.1: u = 2^-p for a p-bit significand).
 const U_F32: f64 = 1.0 / (1u64 << 24) as f64;
 const U_F16: f64 = 1.0 / (1u64 << 11) as f64;
 
@@ -89,7 +89,8 @@ fn f32_bound(position: i64, theta: f64) -> f64 {
 
 #[test]
 fn half_types_hold_integers_exactly_only_up_to_2048_and_256() {
-    // IEEE 754 binary16 has an 11-bit significand, bfloat16 an 8-bit one (DESIGN.md §4).
+    // IEEE 754-2008 binary16 has an 11-bit significand (§3.6); bfloat16, the upper half
+    // of binary32, an 8-bit one (common knowledge).
     assert_eq!(f16::from_f64(2048.0).to_f64(), 2048.0);
     assert_eq!(f16::from_f64(2049.0).to_f64(), 2048.0);
     assert_eq!(bf16::from_f64(256.0).to_f64(), 256.0);

@@ -301,8 +301,8 @@ fn command_lines_split_without_a_shell() {
 }
 
 /// The minimal Rust adapter (examples/rust_kernel.rs, built by `cargo test` next to the
-/// test binaries) conforms on the rotary encode cases it implements and declines the
-/// rest.
+/// test binaries) conforms on the rotary encode cases it implements and declares, and is
+/// sent nothing else.
 #[test]
 fn rust_example_adapter_conforms_on_what_it_implements() {
     let exe = PathBuf::from(binary());
@@ -330,8 +330,13 @@ fn rust_example_adapter_conforms_on_what_it_implements() {
     let counts = report.counts();
     let text = posconform::report::text::render(report);
     assert_eq!(counts.failed + counts.errors, 0, "{text}");
-    // Four core rotary encode cases are unscaled; two use scaling and are declined.
+    // Four core rotary encode cases are unscaled; the two that use scaling are not
+    // declared (the example declares `scaling: ["none"]`), so they are never sent.
     assert_eq!(counts.passed, 4, "{text}");
+    assert!(
+        text.contains("not declared: rotary scaling \"linear_interpolation\""),
+        "{text}"
+    );
     assert_eq!(report.exit_code(), EXIT_CONFORMING);
 }
 

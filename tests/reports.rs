@@ -104,6 +104,7 @@ fn mixed_report() -> Report {
             CaseReport::skipped(&skipped_case, "rotary scaling not supported"),
         ],
         notes: vec!["kernel restarted once".into()],
+        never_exercised: Vec::new(),
     }
 }
 
@@ -447,6 +448,7 @@ fn json_keys_come_in_the_documented_order() {
         "exit_code",
         "counts",
         "notes",
+        "never_exercised",
         "cases",
     ];
     for pair in order.windows(2) {
@@ -523,6 +525,7 @@ fn json_exit_code_follows_the_verdicts() {
         subject: "vectors/core".into(),
         cases: vec![passing()],
         notes: Vec::new(),
+        never_exercised: Vec::new(),
     };
     assert_eq!(parse_json(&only_pass)["exit_code"], report::EXIT_CONFORMING);
 
@@ -682,6 +685,7 @@ fn junit_failure_names_every_failing_output_worst_first() {
         subject: "vectors/core".into(),
         cases: vec![case],
         notes: Vec::new(),
+        never_exercised: Vec::new(),
     };
     let cases = testcases(&junit_root(&report));
     let failure = cases[0].named("failure").next().unwrap();

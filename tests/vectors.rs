@@ -548,7 +548,7 @@ fn text_report_of_a_failing_case_matches_snapshot() {
     assert_eq!(rendered, want);
 }
 
-/// The core suite targets every fault class of DESIGN.md §5 (1 to 26) and every
+/// The core suite targets every fault class of docs/faults.md (1 to 26) and every
 /// scheme, with the shape variety the suite promises.
 #[test]
 fn core_suite_covers_every_fault_class_scheme_and_shape_corner() {
@@ -616,7 +616,7 @@ fn core_suite_covers_every_fault_class_scheme_and_shape_corner() {
     for dtype in [Dtype::F32, Dtype::F16, Dtype::Bf16] {
         assert!(cases.iter().any(|c| c.dtype == dtype), "{dtype}");
     }
-    // Committed vectors stay small (DESIGN.md §6: well under 10 MB).
+    // Committed vectors stay small (the project's goal: well under 10 MB in all).
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("vectors/core");
     let bytes: u64 = std::fs::read_dir(&dir)
         .unwrap()

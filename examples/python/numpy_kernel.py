@@ -4,8 +4,8 @@ Run it under the harness::
 
     posconform check --kernel "python3 examples/python/numpy_kernel.py"
 
-It is written from the formulas of DESIGN.md §3, not from posconform's code, and it is
-built the way an incremental kernel is: ``decode`` keeps a KV cache (prefill, then
+It is written from the formulas of docs/conventions.md, not from posconform's code, and
+it is built the way an incremental kernel is: ``decode`` keeps a KV cache (prefill, then
 chunks whose positions continue from the cache length) and ``stream`` keeps a memory of
 the newest M tokens' keys and values between segments. Both go through one attention
 step over explicit absolute positions, so memory keys and cached keys carry their true
@@ -13,7 +13,11 @@ distances to each query.
 
 Precision: it computes in the dtype it is asked for (f64 or f32). Positional quantities
 (frequencies, angles, sin/cos, ALiBi distances) are always formed in float64 and then
-cast, since angles formed in a narrow dtype lose phase with position (DESIGN.md §4).
+cast, since angles formed in a narrow dtype lose phase with position (docs/budgets.md).
+
+``--declare rotary.pairing=half_split`` (repeatable) narrows what the handshake declares,
+to see how the harness treats a kernel that supports less (docs/protocol.md,
+"Capabilities").
 """
 
 from __future__ import annotations
@@ -415,12 +419,32 @@ def main(argv=None) -> None:
     parser.add_argument("--dtypes", default=",".join(DTYPES),
                         help="dtypes to declare, preferred first (default f64,f32); "
                              "cases in an undeclared dtype are sent in the first one")
+    parser.add_argument("--declare", action="append", default=[],
+                        metavar="SCHEME.PARAMETER=VALUE[,VALUE...]",
+                        help="declare only these values of one scheme parameter, e.g. "
+                             "rotary.pairing=half_split or xl_relative.clamp_len=null "
+                             "(values are read as JSON when they parse, else as strings)")
     args = parser.parse_args(argv)
     dtypes = [d.strip() for d in args.dtypes.split(",") if d.strip()]
     unknown = [d for d in dtypes if d not in DTYPES]
     if unknown or not dtypes:
         parser.error(f"--dtypes: this kernel computes in {DTYPES} only")
-    serve(NAME, VERSION, SUPPORTS, dtypes, handle)
+    parameters = {}
+    for item in args.declare:
+        target, _, values = item.partition("=")
+        scheme, _, name = target.partition(".")
+        if scheme not in SCHEMES or not name or not values:
+            parser.error(f"--declare {item!r}: expected SCHEME.PARAMETER=VALUE[,VALUE...]")
+        parameters.setdefault(scheme, {})[name] = [_json_or_text(v) for v in values.split(",")]
+    serve(NAME, VERSION, SUPPORTS, dtypes, handle, parameters=parameters)
+
+
+def _json_or_text(text: str):
+    import json
+    try:
+        return json.loads(text)
+    except ValueError:
+        return text
 
 
 if __name__ == "__main__":

@@ -2,9 +2,10 @@
 
 This module does all the plumbing of docs/protocol.md -- line-delimited JSON-RPC 2.0,
 the handshake, array (de)serialisation, error codes -- so that wrapping your own
-PyTorch, JAX or numpy function takes a few lines. Its only dependency is numpy.
+PyTorch, JAX or numpy function takes a few lines. It needs Python 3 and numpy, nothing
+else (tested with Python 3.11 and numpy 2; your own function may use anything).
 
-Example (a kernel that only implements rotary ``encode``)::
+Example (a kernel that only implements half-split rotary ``encode``)::
 
     import numpy as np
     from posconform_kernel import Unsupported, serve
@@ -12,11 +13,12 @@ Example (a kernel that only implements rotary ``encode``)::
     def rotary_encode(case, dtype, inputs):
         x, positions = inputs["x"], inputs["positions"]     # np.ndarray each
         if case["scheme"]["pairing"] != "half_split":
-            raise Unsupported("only half-split pairing")     # reported as skipped
+            raise Unsupported("only half-split pairing")     # an older harness may ask
         rotated = my_rope(x.astype(np.float32), positions)    # your function
         return {"rotated": rotated}                           # answered as f32
 
-    serve("my-kernel", "0.1.0", None, ["f32"], {("rotary", "encode"): rotary_encode})
+    serve("my-kernel", "0.1.0", None, ["f32"], {("rotary", "encode"): rotary_encode},
+          parameters={"rotary": {"pairing": ["half_split"]}})  # never sent adjacent
 
 Handlers
     ``handler(case, dtype, inputs) -> {name: array}``. ``case`` is the case object of
@@ -26,6 +28,14 @@ Handlers
     one function for everything, or a dict keyed by ``(scheme, operation)`` or nested
     ``{scheme: {operation: fn}}``; with a dict, ``supports`` may be ``None`` and is
     derived from its keys.
+
+Capabilities
+    ``parameters={scheme: {parameter: [accepted values]}}`` narrows what the handshake
+    declares (docs/protocol.md, "Capabilities"): the harness then never sends a case
+    with another value, and its report lists what was never exercised. For full control
+    pass ``supports`` as the protocol's own list of entries (``[{"scheme": ...,
+    "operations": [...], "parameters": {...}, "dtypes": [...]}]``), sent as is.
+    Declaring is a promise to the harness, not a filter in this module.
 
 Outputs
     Each output is answered in the dtype its array carries (float64 -> f64,
@@ -238,8 +248,27 @@ def _encode_outputs(outputs: Any) -> dict:
     return encoded
 
 
+def _entries(supports, parameters) -> list:
+    """The handshake's ``supports`` list from a dict or a list of protocol entries."""
+    if isinstance(supports, Mapping):
+        entries = [{"scheme": s, "operations": list(ops)} for s, ops in supports.items()]
+    else:
+        entries = [dict(entry) for entry in supports]
+        for entry in entries:
+            if not isinstance(entry.get("scheme"), str) or not isinstance(
+                    entry.get("operations"), list):
+                raise ValueError(f"a supports entry needs `scheme` and `operations`: {entry!r}")
+    for scheme, narrowed in (parameters or {}).items():
+        matching = [e for e in entries if e["scheme"] == scheme]
+        if not matching:
+            raise ValueError(f"parameters given for {scheme!r}, which supports does not list")
+        for entry in matching:
+            entry["parameters"] = {**entry.get("parameters", {}), **narrowed}
+    return entries
+
+
 class _Server:
-    def __init__(self, name, version, supports, dtypes, handler):
+    def __init__(self, name, version, supports, dtypes, handler, parameters=None):
         table = _flatten_handlers(handler)
         if supports is None:
             if table is None:
@@ -247,15 +276,18 @@ class _Server:
             supports = {}
             for scheme, op in table:
                 supports.setdefault(scheme, []).append(op)
-        self.supported = {(s, op) for s, ops in supports.items() for op in ops}
+        entries = _entries(supports, parameters)
+        self.supported = {(e["scheme"], op) for e in entries for op in e["operations"]}
         self.description = {
             "protocol": PROTOCOL,
             "name": name,
             "version": version,
-            "supports": [{"scheme": s, "operations": list(ops)} for s, ops in supports.items()],
+            "supports": entries,
             "dtypes": list(dtypes),
         }
-        self.dtypes = list(dtypes)
+        # Every dtype some entry declares may be asked for.
+        self.dtypes = list(dtypes) + [d for e in entries for d in e.get("dtypes", [])
+                                      if d not in dtypes]
         self.handler = handler
 
     def handshake(self, params):
@@ -353,17 +385,20 @@ def _protocol_streams():
     return reader, writer
 
 
-def serve(name: str, version: str, supports: Mapping[str, list] | None,
+def serve(name: str, version: str, supports: Mapping[str, list] | list | None,
           dtypes: list[str], handler: Callable | Mapping, *,
+          parameters: Mapping[str, Mapping[str, list]] | None = None,
           reader=None, writer=None) -> None:
     """Answers requests until a ``shutdown`` notification or end of input.
 
     ``supports`` maps scheme names to operation names, e.g. ``{"rotary": ["encode",
-    "scores"]}`` (``None`` with a dict ``handler``: derived from it). ``dtypes`` lists
-    what the kernel computes in, preferred first. ``reader``/``writer`` (binary file
-    objects) default to stdin/stdout.
+    "scores"]}`` (``None`` with a dict ``handler``: derived from it), or is the
+    protocol's list of ``supports`` entries. ``dtypes`` lists what the kernel computes
+    in, preferred first. ``parameters`` maps a scheme to the parameter values it
+    accepts, e.g. ``{"rotary": {"pairing": ["half_split"]}}``. ``reader``/``writer``
+    (binary file objects) default to stdin/stdout.
     """
-    server = _Server(name, version, supports, dtypes, handler)
+    server = _Server(name, version, supports, dtypes, handler, parameters)
     if reader is None or writer is None:
         default_reader, default_writer = _protocol_streams()
         reader = reader or default_reader

@@ -18,7 +18,8 @@ use posconform::Scheme;
 #[command(name = "posconform", version, about, long_about = None)]
 #[command(
     after_help = "Exit status: 0 conforming, 1 nonconforming, 2 could not run.\n\
-Conventions and budgets: DESIGN.md; vector format: vectors/README.md."
+Conventions: docs/conventions.md; kernel protocol: docs/protocol.md; fault classes:\n\
+docs/faults.md; budgets: docs/budgets.md; vector format: vectors/README.md."
 )]
 struct Cli {
     #[command(subcommand)]
@@ -310,7 +311,7 @@ fn demo(fuzz: usize, seed: u64) -> anyhow::Result<u8> {
         out,
         "\nWhat this shows: cases without memory (M = 0) pass and every case with memory fails; in the\n\
          stream the errors begin at the second segment, and the minimal case needs just one memory key.\n\
-         The kernel's causal mask is not offset by the memory length M (DESIGN.md section 5, fault 8):\n\
+         The kernel's causal mask is not offset by the memory length M (fault class 8, docs/faults.md):\n\
          it lets query i see keys j <= i instead of j <= M + i. A real `posconform check` would exit\n\
          {code} here; the demo exits 0 because it found the bug it was built to show."
     )?;

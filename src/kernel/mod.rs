@@ -1,6 +1,6 @@
 //! Kernels under test: the `Kernel` trait, the in-process reference, the stdio client
-//! that drives a team's kernel over the protocol of docs/protocol.md, and the server
-//! side of that protocol for kernels written in Rust.
+//! that drives a team's kernel over the protocol of docs/protocol.md, the server side of
+//! that protocol for kernels written in Rust, and the capabilities a kernel declares.
 //!
 //! The same checks run against every implementation of the trait.
 
@@ -11,16 +11,30 @@ use crate::reference;
 use crate::scheme::Scheme;
 use crate::tensor::Tensor;
 
+pub mod capability;
 pub mod protocol;
 pub mod stdio;
 
-/// One scheme and the operations a kernel implements for it.
-#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+/// The operation names, in the order reports list them.
+pub const OPERATIONS: [&str; 5] = ["encode", "scores", "attention", "stream", "decode"];
+
+/// One `supports` entry of the handshake: a scheme, the operations a kernel implements
+/// for it, and optionally the parameter values and dtypes it accepts there
+/// (docs/protocol.md, "Capabilities"; [`Support::new`] and its `with_` methods build
+/// one).
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct Support {
     /// The scheme.
     pub scheme: Scheme,
     /// Operation names (`encode`, `scores`, `attention`, `stream`, `decode`).
     pub operations: Vec<String>,
+    /// Accepted forms per parameter of the scheme; a parameter not named accepts every
+    /// value.
+    #[serde(skip_serializing_if = "std::collections::BTreeMap::is_empty")]
+    pub parameters: std::collections::BTreeMap<String, Vec<serde_json::Value>>,
+    /// The dtypes of this entry, preferred first; empty: the kernel's top-level dtypes.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub dtypes: Vec<Dtype>,
 }
 
 /// What a kernel says about itself in the handshake.
@@ -40,21 +54,25 @@ pub struct KernelInfo {
 }
 
 impl KernelInfo {
-    /// Whether the kernel lists the case's scheme and operation.
+    /// Whether the kernel declares the case: its scheme, operation and parameter values
+    /// ([`KernelInfo::declares`] says why not).
     pub fn supports(&self, case: &Case) -> bool {
-        let scheme = case.scheme.scheme();
-        let operation = case.operation.name();
-        self.supports
-            .iter()
-            .any(|s| s.scheme == scheme && s.operations.iter().any(|o| o == operation))
+        self.declares(case).is_ok()
     }
 
-    /// The dtype to ask for: the case's own if listed, else the kernel's first.
+    /// The dtype to ask for: the case's own if the kernel computes the case in it, else
+    /// the first dtype it declares for the case (its first top-level one for a case it
+    /// does not declare).
     pub fn dtype_for(&self, case: &Case) -> Dtype {
-        if self.dtypes.contains(&case.dtype) {
+        let declared = self.dtypes_for(case);
+        if declared.contains(&case.dtype) {
             case.dtype
         } else {
-            self.dtypes.first().copied().unwrap_or(Dtype::F64)
+            declared
+                .first()
+                .or(self.dtypes.first())
+                .copied()
+                .unwrap_or(Dtype::F64)
         }
     }
 }
@@ -115,12 +133,7 @@ impl Default for ReferenceKernel {
 pub fn full_support() -> Vec<Support> {
     Scheme::ALL
         .iter()
-        .map(|&scheme| Support {
-            scheme,
-            operations: ["encode", "scores", "attention", "stream", "decode"]
-                .map(String::from)
-                .to_vec(),
-        })
+        .map(|&scheme| Support::new(scheme, &OPERATIONS))
         .collect()
 }
 

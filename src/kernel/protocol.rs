@@ -7,7 +7,7 @@ use serde_json::{json, Map, Value};
 
 use crate::case::{Arrays, Case};
 use crate::error::{Error, Result};
-use crate::kernel::{Answer, Kernel, KernelInfo, Support};
+use crate::kernel::{Answer, Kernel, KernelInfo};
 use crate::precision::Dtype;
 use crate::tensor::Tensor;
 
@@ -71,14 +71,8 @@ pub fn parse_handshake(result: &Value, who: &str) -> Result<KernelInfo> {
             .and_then(Value::as_str)
             .map(str::to_string)
     };
-    let supports: Vec<Support> = serde_json::from_value(
-        result.get("supports").cloned().unwrap_or(Value::Null),
-    )
-    .map_err(|e| {
-        bad(format!(
-            "`supports` must be a list of {{scheme, operations}}: {e}"
-        ))
-    })?;
+    let supports =
+        crate::kernel::capability::parse_supports(result.get("supports")).map_err(bad)?;
     let dtypes: Vec<Dtype> = serde_json::from_value(
         result.get("dtypes").cloned().unwrap_or(Value::Null),
     )

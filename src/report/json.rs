@@ -12,6 +12,7 @@
 //!   "exit_code": 1,
 //!   "counts": { "passed": 40, "failed": 1, "skipped": 2, "errors": 0 },
 //!   "notes": [],
+//!   "never_exercised": [{ "what": "rotary pairing \"adjacent\"", "declared": false }],
 //!   "cases": [
 //!     {
 //!       "id": "xl_relative.scores.short_memory",
@@ -38,6 +39,10 @@
 //!   ]
 //! }
 //! ```
+//!
+//! `never_exercised` lists what no compared case covered in a `check` run (schemes,
+//! operations, parameter values, dtypes), each marked whether the kernel declared it
+//! (docs/protocol.md, "Capabilities"); it is empty for `verify`.
 //!
 //! `verdict.kind` is `pass`, `fail`, `skipped` or `error`; the last two carry a
 //! `reason` string. `worst` is the element furthest over its own tolerance (`ratio` =
@@ -75,6 +80,7 @@ pub fn render(report: &Report) -> String {
         exit_code: report.exit_code(),
         counts: report.counts(),
         notes: &report.notes,
+        never_exercised: &report.never_exercised,
         cases: report.cases.iter().map(CaseDocument::from).collect(),
     };
     // Every field is a string, integer, bool or finite-or-string real, so
@@ -117,6 +123,7 @@ struct Document<'a> {
     exit_code: u8,
     counts: Counts,
     notes: &'a [String],
+    never_exercised: &'a [crate::kernel::capability::Gap],
     cases: Vec<CaseDocument<'a>>,
 }
 

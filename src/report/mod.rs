@@ -32,6 +32,8 @@ pub struct Report {
     pub cases: Vec<CaseReport>,
     /// Run-level notes (unknown result files, kernel restarts, ...).
     pub notes: Vec<String>,
+    /// What no compared case covered (`check` only; docs/protocol.md, "Capabilities").
+    pub never_exercised: Vec<crate::kernel::capability::Gap>,
 }
 
 /// How many cases ended each way.

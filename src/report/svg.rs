@@ -2,7 +2,7 @@
 //! per-element error over tolerance, one panel per head.
 //!
 //! Each panel has queries `i` down the rows and keys `j` across the columns, in the
-//! `[memory ; current]` order of DESIGN.md §3, so a vertical line at `j = M` separates
+//! `[memory ; current]` order of docs/conventions.md, so a vertical line at `j = M` separates
 //! the memory keys from the current segment's keys. Typical bugs have typical shapes:
 //! a wrong memory offset lights up the memory columns, an off-by-one shift a diagonal
 //! band, a leaky mask the upper-right triangle.

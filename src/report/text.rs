@@ -225,6 +225,23 @@ pub fn render(report: &Report) -> String {
             let _ = writeln!(s, "  {n}");
         }
     }
+    if !report.never_exercised.is_empty() {
+        let _ = writeln!(
+            s,
+            "\nNever exercised (no compared case covered these; a pass says nothing about them)"
+        );
+        for (declared, label) in [(false, "not declared"), (true, "declared, never run")] {
+            let items: Vec<&str> = report
+                .never_exercised
+                .iter()
+                .filter(|g| g.declared == declared)
+                .map(|g| g.what.as_str())
+                .collect();
+            if !items.is_empty() {
+                wrap_list(&mut s, &format!("  {label}: "), &items);
+            }
+        }
+    }
     let c = report.counts();
     let outcome = match report.exit_code() {
         crate::report::EXIT_CONFORMING => "conforming",
@@ -242,6 +259,28 @@ pub fn render(report: &Report) -> String {
         report.exit_code()
     );
     s
+}
+
+/// `items` joined with ", " after `lead`, wrapped before 92 columns with a hanging
+/// indent.
+fn wrap_list(s: &mut String, lead: &str, items: &[&str]) {
+    let indent = " ".repeat(lead.len());
+    let mut line = lead.to_string();
+    for (n, item) in items.iter().enumerate() {
+        let piece = if n + 1 < items.len() {
+            format!("{item},")
+        } else {
+            (*item).to_string()
+        };
+        if line.len() > lead.len() && line.len() + 1 + piece.len() > 92 {
+            let _ = writeln!(s, "{}", line.trim_end());
+            line = indent.clone();
+        } else if line.len() > lead.len() {
+            line.push(' ');
+        }
+        line.push_str(&piece);
+    }
+    let _ = writeln!(s, "{line}");
 }
 
 /// Up to three ids, then how many more.
@@ -307,7 +346,7 @@ fn findings_of(s: &mut String, case: &CaseReport) {
         String::new()
     } else {
         format!(
-            " (built to expose fault classes {})",
+            " (built to expose fault classes {}; see docs/faults.md)",
             case.faults
                 .iter()
                 .map(u8::to_string)

@@ -1,7 +1,7 @@
 //! Attention with linear biases, ALiBi (Press, Smith, Lewis 2022, "Train Short, Test
 //! Long: Attention with Linear Biases Enables Input Length Extrapolation", §3).
 //!
-//! Convention (DESIGN.md §3, "ALiBi"; layout and positions as in [`crate::attention`]):
+//! Convention (docs/conventions.md, "alibi"; layout and positions as in [`crate::attention`]):
 //! query `i` sits at absolute position `p0 + i`, key `j` at `p0 - M + j`, and for a
 //! visible pair
 //!
@@ -49,7 +49,7 @@ pub const MAX_HEADS: usize = 1 << 16;
 const MAX_EXACT_POSITION: i128 = 1 << 53;
 
 /// The head slopes `m_0 > m_1 > …` for `heads` heads, by the rule of Press et al. 2022,
-/// §3 (DESIGN.md §3).
+/// §3 (docs/conventions.md, "alibi").
 ///
 /// For a power of two `n`, the geometric sequence `m_h = 2^(-8(h+1)/n)`. Otherwise, with
 /// `c = 2^floor(log2 n)`: the `c` slopes for `c` heads, followed by the first `n - c`
@@ -134,7 +134,7 @@ pub fn bias(
 
 /// ALiBi scores `[H, L, M+L]`: `scale · q·k + bias` on visible pairs, `-inf` elsewhere.
 ///
-/// Shapes (DESIGN.md §3): `q[H, L, d]`, `k[H, M+L, d]`, `slopes[H]`.
+/// Shapes (docs/conventions.md): `q[H, L, d]`, `k[H, M+L, d]`, `slopes[H]`.
 ///
 /// Errors: shapes that disagree, non-finite inputs or scale, positions beyond `±2^53`.
 pub fn scores(

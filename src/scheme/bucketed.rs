@@ -1,7 +1,7 @@
 //! Bucketed relative position bias, as in T5 (Raffel et al. 2020, "Exploring the Limits
 //! of Transfer Learning with a Unified Text-to-Text Transformer", §2.1).
 //!
-//! Convention (DESIGN.md §3, "Bucketed relative bias"; layout and positions as in
+//! Convention (docs/conventions.md, "bucketed"; layout and positions as in
 //! [`crate::attention`]): `rel = pos_key - pos_query = -(M + i - j)` and `n = -rel`.
 //! - Bidirectional: half the buckets per sign; `n < 0` (a key after the query) adds
 //!   `nb/2`, then `n = |n|`. Causal: `n = max(n, 0)`, so every future key is bucket 0.
@@ -29,7 +29,7 @@
 //!
 //! let causal = Buckets::new(32, 128, false)?;
 //! let bidirectional = Buckets::new(32, 128, true)?;
-//! // DESIGN.md §3 table: a key 20 positions back, and one 20 positions ahead.
+//! // docs/conventions.md table: a key 20 positions back, and one 20 positions ahead.
 //! assert_eq!(bucket(-20, &causal), 17);
 //! assert_eq!(bucket(20, &causal), 0);
 //! assert_eq!(bucket(20, &bidirectional), 26);
@@ -148,7 +148,7 @@ impl Buckets {
     }
 }
 
-/// The bucket of `relative_position = pos_key - pos_query` (DESIGN.md §3).
+/// The bucket of `relative_position = pos_key - pos_query` (docs/conventions.md).
 ///
 /// Always `< rule.num_buckets()`; for a causal rule every `relative_position > 0` is
 /// bucket 0.
@@ -218,7 +218,7 @@ pub fn bias(table: ArrayView2<'_, f64>, window: Window, rule: &Buckets) -> Resul
 /// Bucketed relative-bias scores `[H, L, M+L]`: `scale · q·k + table[h, bucket(-Δ)]` on
 /// visible pairs, `-inf` elsewhere.
 ///
-/// Shapes (DESIGN.md §3): `q[H, L, d]`, `k[H, M+L, d]`, `table[H, nb]`.
+/// Shapes (docs/conventions.md): `q[H, L, d]`, `k[H, M+L, d]`, `table[H, nb]`.
 ///
 /// Errors: shapes that disagree, non-finite inputs or scale.
 pub fn scores(

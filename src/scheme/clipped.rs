@@ -1,7 +1,7 @@
 //! Clipped relative position representations (Shaw, Uszkoreit, Vaswani 2018,
 //! "Self-Attention with Relative Position Representations", eqs. 3–5).
 //!
-//! Convention (DESIGN.md §3, "Clipped relative"; layout and positions as in
+//! Convention (docs/conventions.md, "clipped"; layout and positions as in
 //! [`crate::attention`]): query `i` sits at `p0 + i`, key `j` at `p0 - M + j`, so the
 //! paper's `j - i` is `pos_key - pos_query = -(M + i - j)`, which does not depend on
 //! `p0`. With clip distance `k` and embedding tables `w^K[2k+1, d]`, `w^V[2k+1, d_v]`:
@@ -64,7 +64,7 @@ pub fn embedding_index(relative_position: i64, clip_distance: usize) -> usize {
 
 /// Clipped relative scores `[H, L, M+L]`: `e_ij` on visible pairs, `-inf` elsewhere.
 ///
-/// Shapes (DESIGN.md §3): `q[H, L, d]`, `k[H, M+L, d]`, `w_key[G, 2k+1, d]` with `G` 1
+/// Shapes (docs/conventions.md): `q[H, L, d]`, `k[H, M+L, d]`, `w_key[G, 2k+1, d]` with `G` 1
 /// (shared) or `H` (per head).
 ///
 /// Errors: shapes that disagree, `2k+1` overflowing, non-finite inputs or scale.

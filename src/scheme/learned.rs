@@ -1,6 +1,6 @@
 //! Learned absolute positions: a trained table `P[L_max, d]` indexed by position.
 //!
-//! Convention (DESIGN.md §3, "Learned absolute"): a position at or beyond `L_max`, or
+//! Convention (docs/conventions.md, "learned"): a position at or beyond `L_max`, or
 //! below zero, is an error. The reference never wraps (`p mod L_max`) and never clamps
 //! (`min(p, L_max-1)`): both silently give two distinct tokens one encoding.
 //!

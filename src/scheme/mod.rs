@@ -2,7 +2,7 @@
 //!
 //! Every module states its index convention and cites its paper; the shared
 //! conventions (layout, positions, distance, causal visibility) live in
-//! [`crate::attention`] and DESIGN.md §3.
+//! [`crate::attention`] and docs/conventions.md.
 
 pub mod alibi;
 pub mod bucketed;

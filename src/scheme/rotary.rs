@@ -1,7 +1,7 @@
 //! Rotary position embedding, RoPE (Su et al. 2021, "RoFormer: Enhanced Transformer
 //! with Rotary Position Embedding", eqs. 14–16 and 34).
 //!
-//! Convention (DESIGN.md §3, "Rotary, RoPE"): with rotary width `d_rot <= d` (even),
+//! Convention (docs/conventions.md, "rotary"): with rotary width `d_rot <= d` (even),
 //! `θ_j = base^(-2j/d_rot)` for `j = 0..d_rot/2-1`, and a vector at absolute position
 //! `p` has each pair `(a, b)` rotated by the angle `p·θ_j`:
 //!
@@ -12,7 +12,7 @@
 //! - [`Pairing::Adjacent`]: `(a, b) = (2j, 2j+1)`, the paper's eq. 34;
 //! - [`Pairing::HalfSplit`]: `(a, b) = (j, j + d_rot/2)`, the "rotate half" layout many
 //!   implementations use. The two are different functions with the same properties, so
-//!   only golden values tell them apart (DESIGN.md §5, fault 17).
+//!   only golden values tell them apart (docs/faults.md, fault class 17).
 //!
 //! Dimensions `d_rot..d` (partial rotary) pass through bit-exactly. Positions are any
 //! `i64` with `|p| <= 2^53`, so that `p` converts to `f64` exactly; offsets for cached
@@ -156,7 +156,7 @@ impl Rotary {
     /// # Example
     ///
     /// Rotating `x = [1, 2, 3, 4]` to position 1 with the paper's pairing; with `d = 4`
-    /// and base 10000, `θ = [1, 0.01]` (values from DESIGN.md §3):
+    /// and base 10000, `θ = [1, 0.01]` (values from mpmath, vectors/mpmath/quoted_values.py):
     ///
     /// ```
     /// use posconform::rotary::{Pairing, Rotary, RotaryParams};
@@ -322,7 +322,7 @@ impl Rotary {
     }
 }
 
-/// Absolute positions of DESIGN.md §3 for `window` starting at `query_start`:
+/// Absolute positions of docs/conventions.md for `window` starting at `query_start`:
 /// queries `p0 + i`, keys `p0 - M + j`; errors if any leaves the `i64` range.
 pub fn positions(window: Window, query_start: i64) -> Result<(Vec<i64>, Vec<i64>)> {
     let out_of_range = || Error::PositionOutOfRange {
@@ -346,7 +346,7 @@ pub fn positions(window: Window, query_start: i64) -> Result<(Vec<i64>, Vec<i64>
 /// Rotary scores `scale · <R_{p0+i} q[h,i], R_{p0-M+j} k[h,j]>` for visible pairs,
 /// `-inf` elsewhere: `[H, L, M+L]`, with the window read off the shapes.
 ///
-/// Shapes (DESIGN.md §3): `q[H, L, d]`, `k[H, M+L, d]`, keys unrotated, memory first.
+/// Shapes (docs/conventions.md): `q[H, L, d]`, `k[H, M+L, d]`, keys unrotated, memory first.
 pub fn scores(
     rotary: &Rotary,
     q: ArrayView3<'_, f64>,
@@ -398,7 +398,7 @@ pub fn attention(
 /// rotates itself.
 ///
 /// Extending by chunks must reproduce the matching rows of one [`attention`] call over
-/// the whole sequence (DESIGN.md §3, "Cached decoding"; fault 10 is the missing offset).
+/// the whole sequence (docs/conventions.md, "decode"; fault class 10 is the missing offset).
 #[derive(Debug, Clone)]
 pub struct RotaryCache {
     rotary: Rotary,

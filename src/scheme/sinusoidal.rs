@@ -1,6 +1,6 @@
 //! Absolute sinusoidal encoding (Vaswani et al. 2017, "Attention Is All You Need", §3.5).
 //!
-//! Convention (DESIGN.md §3, "Absolute sinusoidal"):
+//! Convention (docs/conventions.md, "sinusoidal"):
 //! `PE(p, 2i) = sin(p·ω_i)`, `PE(p, 2i+1) = cos(p·ω_i)` with `ω_i = base^(-2i/d)`,
 //! `i = 0..d/2-1`. That is the paper's *interleaved* layout. The *concatenated* layout
 //! `[sin(p·ω_0) … sin(p·ω_{d/2-1}) ‖ cos(p·ω_0) … cos(p·ω_{d/2-1})]` is what the

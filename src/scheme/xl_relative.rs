@@ -1,7 +1,7 @@
 //! Transformer-XL relative scoring (Dai et al. 2019, "Transformer-XL: Attentive
 //! Language Models Beyond a Fixed-Length Context", §3.3; recurrence in §3.2).
 //!
-//! Convention (DESIGN.md §3): for a visible pair `(i, j)` with `Δ = M + i - j >= 0`,
+//! Convention (docs/conventions.md, "xl_relative"): for a visible pair `(i, j)` with `Δ = M + i - j >= 0`,
 //!
 //! ```text
 //! S[h,i,j] = scale · ( (q[h,i] + u[h])·k[h,j]  +  (q[h,i] + v[h])·r[h,Δ] )
@@ -29,7 +29,7 @@ use crate::scheme::sinusoidal::Sinusoid;
 
 /// The inputs of one relative-attention scoring step for all heads.
 ///
-/// Shapes (DESIGN.md §3): `q[H, L, d]`, `k[H, M+L, d]`, `r[H, R, d]` holding `r[h, δ]`
+/// Shapes (docs/conventions.md): `q[H, L, d]`, `k[H, M+L, d]`, `r[H, R, d]` holding `r[h, δ]`
 /// for `δ = 0..R` with `R >= M+L` (or `R >= c+1` under a clamp length `c`),
 /// `u[H, d]`, `v[H, d]`. `M` is read off the shapes: `M = k.len_of(1) - L`.
 #[derive(Debug, Clone, Copy)]
@@ -132,7 +132,7 @@ fn dot(a: &[f64], b: &[f64]) -> f64 {
 ///
 /// Query `i` sits at `query_positions[i]`, key `j` at `key_positions[j]`; the
 /// distance is `Δ = query_positions[i] - key_positions[j]`, the key is visible iff
-/// `Δ >= 0`, and `r[min(Δ, clamp)]` is used. With the DESIGN.md §3 positions
+/// `Δ >= 0`, and `r[min(Δ, clamp)]` is used. With the positions of docs/conventions.md
 /// (`p0 + i`, `p0 - M + j`) this equals [`scores_naive`] for every `p0`.
 pub fn scores_at_positions(
     inputs: &RelativeInputs<'_>,
@@ -241,7 +241,7 @@ pub fn scores_naive(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Res
     scores_at_positions(inputs, params, &queries, &keys)
 }
 
-/// Absolute positions of DESIGN.md §3: queries `p0 + i`, keys `p0 - M + j`.
+/// Absolute positions of docs/conventions.md: queries `p0 + i`, keys `p0 - M + j`.
 pub fn standard_positions(window: Window, query_start: i64) -> (Vec<i64>, Vec<i64>) {
     let m = window.memory_len() as i64;
     let queries = (0..window.query_len() as i64)

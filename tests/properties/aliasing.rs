@@ -1,5 +1,5 @@
 //! Position aliasing: positions restarting at each segment give distinct tokens one
-//! encoding (DESIGN.md §3, "Learned absolute"); relative distances never do.
+//! encoding (docs/conventions.md, "learned"); relative distances never do.
 
 use ndarray::Array2;
 use posconform::generate::Stream;

@@ -1,4 +1,4 @@
-//! ALiBi invariants (DESIGN.md §3; Press, Smith, Lewis 2022, §3), and the cached
+//! ALiBi invariants (docs/conventions.md, "alibi"; Press, Smith, Lewis 2022, §3), and the cached
 //! decoding check shared with the other relative-bias schemes.
 //!
 //! Each invariant is a plain check function shared by its proptest and by a companion
@@ -39,7 +39,7 @@ impl Step {
 }
 
 /// One attention step of a scheme: `(q[H,L,d], k[H,M+L,d], v[H,M+L,d_v], p0)`, where
-/// `p0` is the absolute position of the first query (DESIGN.md §3).
+/// `p0` is the absolute position of the first query (docs/conventions.md).
 pub(crate) type RunStep<'a> =
     dyn Fn(ArrayView3<'_, f64>, ArrayView3<'_, f64>, ArrayView3<'_, f64>, i64) -> Step + 'a;
 
@@ -177,14 +177,14 @@ proptest! {
     }
 }
 
-/// Fault 21 (DESIGN.md §5): the power-of-two formula applied to every head count.
+/// Fault 21 (docs/faults.md): the power-of-two formula applied to every head count.
 fn geometric_for_every_count(heads: usize) -> Vec<f64> {
     (1..=heads)
         .map(|h| (-8.0 * h as f64 / heads as f64).exp2())
         .collect()
 }
 
-/// Fault 22 (DESIGN.md §5): exponent off by one, `2^(-8h/n)` for `h = 0..n`.
+/// Fault 22 (docs/faults.md): exponent off by one, `2^(-8h/n)` for `h = 0..n`.
 fn exponent_off_by_one(heads: usize) -> Vec<f64> {
     (0..heads)
         .map(|h| (-8.0 * h as f64 / heads as f64).exp2())
@@ -342,7 +342,7 @@ proptest! {
     }
 }
 
-/// Fault 10 (DESIGN.md §5): the bias uses the query's index within its chunk, as if
+/// Fault 10 (docs/faults.md): the bias uses the query's index within its chunk, as if
 /// the chunk started at position 0, instead of its absolute position.
 fn step_without_cache_offset(
     slopes: Vec<f64>,

@@ -1,4 +1,4 @@
-//! T5 bucketed relative bias invariants (DESIGN.md §3; Raffel et al. 2020, §2.1).
+//! T5 bucketed relative bias invariants (docs/conventions.md, "bucketed"; Raffel et al. 2020, §2.1).
 //!
 //! Each invariant is a plain check function shared by its proptest and by a companion
 //! test that feeds it a deliberately wrong implementation and shows the check fails.
@@ -49,12 +49,12 @@ fn bucket_written_out(rel: i64, rule: &Buckets, sign: i64, capped: bool) -> usiz
         }
 }
 
-/// Fault 24 (DESIGN.md §5): the cap at `nb' - 1` is missing.
+/// Fault 24 (docs/faults.md): the cap at `nb' - 1` is missing.
 fn uncapped(rel: i64, rule: &Buckets) -> usize {
     bucket_written_out(rel, rule, 1, false)
 }
 
-/// Fault 23 (DESIGN.md §5): the direction is flipped (`n = rel` instead of `-rel`).
+/// Fault 23 (docs/faults.md): the direction is flipped (`n = rel` instead of `-rel`).
 fn direction_flipped(rel: i64, rule: &Buckets) -> usize {
     bucket_written_out(rel, rule, -1, true)
 }
@@ -172,7 +172,7 @@ fn library_step(
     }
 }
 
-/// Fault 10 (DESIGN.md §5): the bucket of `j - i` (indices within the chunk) instead
+/// Fault 10 (docs/faults.md): the bucket of `j - i` (indices within the chunk) instead
 /// of `pos_key - pos_query = j - (M + i)`.
 fn step_without_cache_offset(
     table: Array2<f64>,

@@ -1,4 +1,4 @@
-//! Clipped relative (Shaw et al. 2018, eqs. 3–5) invariants (DESIGN.md §3).
+//! Clipped relative (Shaw et al. 2018, eqs. 3–5) invariants (docs/conventions.md, "clipped").
 //!
 //! Each invariant is a plain check function shared by its proptest and by a companion
 //! test that feeds it a deliberately wrong implementation and shows the check fails.
@@ -45,7 +45,7 @@ impl Tables {
 /// `memory_len` memory keys.
 type RelativeOf = fn(memory_len: usize, query: usize, key: usize) -> i64;
 
-/// DESIGN.md §3: `j - i` is `pos_key - pos_query = j - (M + i)`.
+/// docs/conventions.md: `j - i` is `pos_key - pos_query = j - (M + i)`.
 fn absolute_relative(memory_len: usize, query: usize, key: usize) -> i64 {
     key as i64 - (memory_len + query) as i64
 }
@@ -173,7 +173,7 @@ proptest! {
 
 #[test]
 fn agreement_check_fails_with_the_relative_sign_flipped() {
-    // Fault 3 (DESIGN.md §5): i - j instead of j - i, so past keys read the rows meant
+    // Fault 3 (docs/faults.md): i - j instead of j - i, so past keys read the rows meant
     // for future keys.
     fn flipped(memory_len: usize, query: usize, key: usize) -> i64 {
         -absolute_relative(memory_len, query, key)
@@ -221,7 +221,7 @@ proptest! {
 
 #[test]
 fn cached_decoding_check_fails_when_the_cache_offset_is_missing() {
-    // Fault 10 (DESIGN.md §5): j - i from indices within the chunk, forgetting M.
+    // Fault 10 (docs/faults.md): j - i from indices within the chunk, forgetting M.
     fn chunk_local(_memory_len: usize, query: usize, key: usize) -> i64 {
         key as i64 - query as i64
     }

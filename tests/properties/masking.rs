@@ -1,4 +1,4 @@
-//! Causal masking over `[memory ; current]` (DESIGN.md §3): what a query may see.
+//! Causal masking over `[memory ; current]` (docs/conventions.md): what a query may see.
 
 use ndarray::{s, Array3};
 use posconform::attention::{attention, masked_softmax};
@@ -152,7 +152,7 @@ fn planted_top_left_mask_is_caught() {
 }
 
 /// A fully masked row yields all-zero probabilities and a zero output row, never NaN
-/// (DESIGN.md §3).
+/// (docs/conventions.md, "Visibility and masking").
 #[test]
 fn fully_masked_row_gives_zeros_not_nan() {
     let mut scores = Stream::new(1).array((1, 2, 3), 1.0);

@@ -1,4 +1,4 @@
-//! Segment recurrence (DESIGN.md §3, "Recurrence"): streaming equals the one-shot
+//! Segment recurrence (docs/conventions.md, "stream"; Dai et al. 2019, §3.2): streaming equals the one-shot
 //! definition.
 
 use ndarray::{s, Array2, ArrayView2};

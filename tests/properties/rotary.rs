@@ -1,4 +1,4 @@
-//! Rotary (RoPE) invariants (DESIGN.md §3; Su et al. 2021, RoFormer, eqs. 14–16, 34).
+//! Rotary (RoPE) invariants (docs/conventions.md, "rotary"; Su et al. 2021, RoFormer, eqs. 14–16, 34).
 //!
 //! Each invariant is a plain check function shared by its proptest and by a companion
 //! test that feeds it a deliberately wrong implementation and shows the check fails.
@@ -13,7 +13,7 @@ use posconform::rotary::{
 use posconform::Scale;
 use proptest::prelude::*;
 
-/// f64 unit roundoff (DESIGN.md §4).
+/// f64 unit roundoff (Higham 2002, §2.1: u = 2^-p for a p-bit significand).
 const U: f64 = f64::EPSILON / 2.0;
 
 fn gamma(n: usize) -> f64 {
@@ -266,7 +266,7 @@ proptest! {
 
 #[test]
 fn tail_check_catches_rotating_the_whole_head() {
-    // DESIGN.md §5 fault 18: the kernel rotates all of d instead of the first d_rot.
+    // Fault 18 (docs/faults.md): the kernel rotates all of d instead of the first d_rot.
     let x = [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0];
     let partial = Rotary::new(RotaryParams {
         rotary_dim: 4,
@@ -357,7 +357,7 @@ impl Decoder for RotaryCache {
     }
 }
 
-/// DESIGN.md §5 fault 10: every chunk is rotated as if it started at position 0.
+/// Fault 10 (docs/faults.md): every chunk is rotated as if it started at position 0.
 struct ForgetsPositionOffset {
     rope: Rotary,
     rotated_keys: Option<Array3<f64>>,

@@ -9,7 +9,7 @@ use posconform::{Scale, Window};
 #[test]
 fn slopes_for_8_heads_are_halvings_from_one_half() {
     // Press et al. 2022, §3: for 8 heads the slopes are the geometric sequence
-    // 1/2^1, 1/2^2, ..., 1/2^8 (also DESIGN.md §3). Powers of two are exact in f64, so equality is exact.
+    // 1/2^1, 1/2^2, ..., 1/2^8. Powers of two are exact in f64, so equality is exact.
     let expected = [
         0.5, 0.25, 0.125, 0.0625, 0.03125, 0.015625, 0.0078125, 0.00390625,
     ];
@@ -17,12 +17,15 @@ fn slopes_for_8_heads_are_halvings_from_one_half() {
 }
 
 #[test]
-// The literals are DESIGN.md's quotation, kept as published rather than replaced by
+// The literals are the quoted 15-digit values, kept as quoted rather than replaced by
 // the std constants they approximate.
 #[allow(clippy::approx_constant)]
 fn slopes_for_12_heads_interleave_the_16_head_sequence() {
-    // DESIGN.md §3 (the rule of Press et al. 2022, §3, for a non-power-of-two count),
-    // quoted to 15 significant digits, hence the 1e-15 tolerance.
+    // The rule for a head count that is not a power of two, as in the authors' released
+    // code (from memory; the paper's §3 gives the power-of-two sequence): the 8 slopes of
+    // 8 heads, then slopes 1, 3, 5, 7 of 16 heads, 2^-0.5 .. 2^-3.5. Values recomputed with
+    // mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py), quoted to 15
+    // significant digits, hence the 1e-15 tolerance.
     let expected = [
         0.5,
         0.25,
@@ -85,7 +88,7 @@ fn bias_is_minus_slope_times_distance_below_the_diagonal() {
 
 #[test]
 fn memory_keys_carry_their_full_distance() {
-    // DESIGN.md §3: query i sits at p0 + i, key j at p0 - M + j, so with M = 3 memory
+    // docs/conventions.md: query i sits at p0 + i, key j at p0 - M + j, so with M = 3 memory
     // keys the first query is at distance 3, 2, 1, 0 from keys 0..=3.
     let got = bias(&[0.25], Window::new(3, 2).unwrap(), BiasForm::Distance, 100).unwrap();
     let expected = [
@@ -100,7 +103,7 @@ fn memory_keys_carry_their_full_distance() {
 #[test]
 fn key_only_form_adds_slope_times_key_position() {
     // The key-only form used by some implementations (common practice): m · pos_j with
-    // pos_j = p0 - M + j (DESIGN.md §3). p0 = 10, M = 1: keys at 9, 10, 11.
+    // pos_j = p0 - M + j (docs/conventions.md). p0 = 10, M = 1: keys at 9, 10, 11.
     let got = bias(&[0.5], Window::new(1, 2).unwrap(), BiasForm::KeyOnly, 10).unwrap();
     let expected = [[4.5, 5.0, f64::NEG_INFINITY], [4.5, 5.0, 5.5]];
     for (i, row) in expected.iter().enumerate() {
@@ -110,7 +113,7 @@ fn key_only_form_adds_slope_times_key_position() {
 
 #[test]
 fn scale_applies_to_q_dot_k_but_not_to_the_bias() {
-    // DESIGN.md §3 / Press et al. 2022, §3: softmax(q·k / sqrt(d) + m · (-distance)).
+    // Press et al. 2022, §3: softmax(q·k / sqrt(d) + m · (-distance)).
     // d = 4, q = k = all ones: q·k = 4, scaled by 1/2 → 2; slope 0.25, distance 1 → -0.25.
     let q = Array3::from_elem((1, 1, 4), 1.0);
     let k = Array3::from_elem((1, 2, 4), 1.0);

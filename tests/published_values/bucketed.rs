@@ -6,8 +6,10 @@ use posconform::bucketed::{bucket, scores, BucketedParams, Buckets};
 const TABLE_RELATIVE_POSITIONS: [i64; 11] = [-200, -128, -20, -8, -1, 0, 1, 8, 20, 128, 200];
 
 #[test]
-fn bidirectional_buckets_match_the_design_table() {
-    // DESIGN.md §3 table, nb = 32, max_distance = 128, bidirectional row.
+fn bidirectional_buckets_match_the_quoted_table() {
+    // Bidirectional row, nb = 32, max_distance = 128; the bucket function of the T5 authors' released code (from
+    // memory; Raffel et al. 2020, §2.1 describes it in words), evaluated independently in
+    // Python (vectors/mpmath/quoted_values.py).
     let expected = [15, 15, 10, 8, 1, 0, 17, 24, 26, 31, 31];
     let rule = Buckets::new(32, 128, true).unwrap();
     for (rel, want) in TABLE_RELATIVE_POSITIONS.iter().zip(expected) {
@@ -16,8 +18,10 @@ fn bidirectional_buckets_match_the_design_table() {
 }
 
 #[test]
-fn causal_buckets_match_the_design_table() {
-    // DESIGN.md §3 table, nb = 32, max_distance = 128, causal row.
+fn causal_buckets_match_the_quoted_table() {
+    // Causal row, nb = 32, max_distance = 128; the bucket function of the T5 authors' released code (from
+    // memory; Raffel et al. 2020, §2.1 describes it in words), evaluated independently in
+    // Python (vectors/mpmath/quoted_values.py).
     let expected = [31, 31, 17, 8, 1, 0, 0, 0, 0, 0, 0];
     let rule = Buckets::new(32, 128, false).unwrap();
     for (rel, want) in TABLE_RELATIVE_POSITIONS.iter().zip(expected) {
@@ -42,7 +46,7 @@ fn bucket_from_boundaries(n: u64, exact_below: u64, boundaries: &Boundaries) -> 
 }
 
 // First n of each logarithmic bucket: derived with mpmath 1.3.0 at 50 digits from the
-// formula of Raffel et al. 2020 / DESIGN.md §3, as the smallest integer n with
+// formula of Raffel et al. 2020 (docs/conventions.md, "bucketed"), as the smallest integer n with
 // floor(ln(n/max_exact) / ln(max_distance/max_exact) · (nb' - max_exact)) >= b - max_exact,
 // i.e. n >= max_exact · (max_distance/max_exact)^((b - max_exact)/(nb' - max_exact)).
 // 16, 32 and 64 (bidirectional) are exact integer boundaries; at n = 128 the formula
@@ -84,7 +88,7 @@ const CAUSAL_BOUNDARIES: [(u64, usize); 16] = [
 fn bidirectional_buckets_match_the_mpmath_ranges_for_every_offset_to_1000() {
     let rule = Buckets::new(32, 128, true).unwrap();
     for rel in -1000i64..=1000 {
-        // Raffel et al. 2020 / DESIGN.md §3: n = -rel; keys after the query (n < 0)
+        // Raffel et al. 2020 (docs/conventions.md): n = -rel; keys after the query (n < 0)
         // use the upper half, offset by 16.
         let n = -rel;
         let offset = if n < 0 { 16 } else { 0 };
@@ -98,7 +102,7 @@ fn bidirectional_buckets_match_the_mpmath_ranges_for_every_offset_to_1000() {
 fn causal_buckets_match_the_mpmath_ranges_for_every_offset_to_1000() {
     let rule = Buckets::new(32, 128, false).unwrap();
     for rel in -1000i64..=1000 {
-        // Raffel et al. 2020 / DESIGN.md §3: n = max(-rel, 0), so keys after the query
+        // Raffel et al. 2020 (docs/conventions.md): n = max(-rel, 0), so keys after the query
         // are all bucket 0.
         let n = (-rel).max(0) as u64;
         let expected = bucket_from_boundaries(n, 16, &CAUSAL_BOUNDARIES);
@@ -110,7 +114,7 @@ fn causal_buckets_match_the_mpmath_ranges_for_every_offset_to_1000() {
 fn scores_look_up_the_head_row_at_the_bucket_of_each_distance() {
     // With q = k = 0 the score is table[h, bucket]; table[h, b] = 100h + b makes the
     // bucket readable. Query 0 after M = 20 memory keys: key j is at distance 20 - j,
-    // i.e. rel = j - 20. Buckets from the DESIGN.md §3 causal row: rel -20 → 17,
+    // i.e. rel = j - 20. Buckets from the causal row quoted above: rel -20 → 17,
     // -8 → 8, -1 → 1, 0 → 0.
     let q = Array3::zeros((2, 1, 3));
     let k = Array3::zeros((2, 21, 3));

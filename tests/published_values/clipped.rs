@@ -22,7 +22,7 @@ fn relative_positions_clip_at_16() {
 fn scores_read_the_clipped_key_embedding_of_each_past_key() {
     // Shaw et al. 2018, eq. 5 with q = 1, k_j = 0, d = 1: e_ij = a^K_ij, and
     // w^K[r] = r makes the row readable. One query after M = 20 memory keys: key j has
-    // j - i = j - 20 = -20..=0 (DESIGN.md §3 positions), rows ROWS_AT_CLIP_16[0..=20].
+    // j - i = j - 20 = -20..=0 (docs/conventions.md positions), rows ROWS_AT_CLIP_16[0..=20].
     let q = Array3::from_elem((1, 1, 1), 1.0);
     let k = Array3::zeros((1, 21, 1));
     let w_key = Array3::from_shape_fn((1, 33, 1), |(_, r, _)| r as f64);

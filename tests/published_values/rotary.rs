@@ -1,7 +1,8 @@
 //! Rotary (RoPE) against published check values and the mpmath table.
 //!
-//! Every DESIGN.md §3 value used here was recomputed with mpmath 1.3.0 at 50 digits
-//! (vectors/mpmath/rope.py and a one-off check) and agrees to every quoted digit.
+//! Every quoted 15-digit value used here was recomputed with mpmath 1.3.0 at 50 digits
+//! (vectors/mpmath/quoted_values.py; the long rotations in vectors/mpmath/rope.py) and
+//! agrees to every quoted digit.
 
 use ndarray::Array3;
 use posconform::rotary::{
@@ -9,7 +10,7 @@ use posconform::rotary::{
 };
 use posconform::Scale;
 
-/// f64 unit roundoff (DESIGN.md §4).
+/// f64 unit roundoff (Higham 2002, §2.1: u = 2^-p for a p-bit significand).
 const U: f64 = f64::EPSILON / 2.0;
 
 /// Half a unit in the last place of a value quoted to `significant` digits: how far the
@@ -69,15 +70,15 @@ fn assert_rotation(pairing: Pairing, position: i64, expected: [f64; 4]) {
 
 #[test]
 fn frequencies_of_d4_base_10000_are_1_and_one_hundredth() {
-    // DESIGN.md §3 check uses θ = [1, 0.01]: 10000^(-0/4) = 1, 10000^(-2/4) = 0.01.
+    // The d = 4 checks use θ = [1, 0.01]: 10000^(-0/4) = 1, 10000^(-2/4) = 0.01.
     let theta = rope(4, Pairing::Adjacent).frequencies().to_vec();
     assert_eq!(theta[0], 1.0);
     assert!((theta[1] - 0.01).abs() <= 2.0 * 0.01 * f64::EPSILON);
 }
 
 #[test]
-fn adjacent_pairs_at_m1_match_design_check() {
-    // DESIGN.md §3 check values (RoFormer eq. 34), confirmed with mpmath 1.3.0, 50 digits.
+fn adjacent_pairs_at_m1_match_the_mpmath_values() {
+    // RoFormer eq. 34 (adjacent pairs), x = [1, 2, 3, 4]; recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
     assert_rotation(
         Pairing::Adjacent,
         1,
@@ -91,8 +92,8 @@ fn adjacent_pairs_at_m1_match_design_check() {
 }
 
 #[test]
-fn adjacent_pairs_at_m10_match_design_check() {
-    // DESIGN.md §3 check values (RoFormer eq. 34), confirmed with mpmath 1.3.0, 50 digits.
+fn adjacent_pairs_at_m10_match_the_mpmath_values() {
+    // RoFormer eq. 34 (adjacent pairs), x = [1, 2, 3, 4]; recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
     assert_rotation(
         Pairing::Adjacent,
         10,
@@ -106,8 +107,8 @@ fn adjacent_pairs_at_m10_match_design_check() {
 }
 
 #[test]
-fn half_split_pairs_at_m1_match_design_check() {
-    // DESIGN.md §3 check values (half-split pairing), confirmed with mpmath 1.3.0, 50 digits.
+fn half_split_pairs_at_m1_match_the_mpmath_values() {
+    // Half-split pairs (common practice), x = [1, 2, 3, 4]; recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
     assert_rotation(
         Pairing::HalfSplit,
         1,
@@ -121,8 +122,8 @@ fn half_split_pairs_at_m1_match_design_check() {
 }
 
 #[test]
-fn half_split_pairs_at_m10_match_design_check() {
-    // DESIGN.md §3 check values (half-split pairing), confirmed with mpmath 1.3.0, 50 digits.
+fn half_split_pairs_at_m10_match_the_mpmath_values() {
+    // Half-split pairs (common practice), x = [1, 2, 3, 4]; recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
     assert_rotation(
         Pairing::HalfSplit,
         10,
@@ -158,8 +159,8 @@ fn relative_dot(pairing: Pairing, m: i64, n: i64) -> (f64, f64) {
 
 #[test]
 fn relative_check_depends_only_on_distance() {
-    // DESIGN.md §3 relative check (RoFormer eq. 16: <R_m q, R_n k> = q^T R_{n-m} k),
-    // adjacent pairing, confirmed with mpmath 1.3.0, 50 digits.
+    // Relative property (RoFormer eq. 16: <R_m q, R_n k> = q^T R_{n-m} k), adjacent
+    // pairing, q = [0.5, -1, 2, 0.25], k = [1.5, 0.75, -0.5, 1]; recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
     for (m, n, expected) in [
         (5, 3, 0.997579837021553),
         (2, 0, 0.997579837021553),
@@ -176,9 +177,9 @@ fn relative_check_depends_only_on_distance() {
 }
 
 #[test]
-fn ntk_aware_base_for_d128_matches_design_values() {
-    // DESIGN.md §3 NTK-aware base b' = b·s^(d/(d-2)) (Peng et al. 2023, YaRN, Def. 1),
-    // d = 128, b = 10000; confirmed with mpmath 1.3.0, 50 digits.
+fn ntk_aware_base_for_d128_matches_the_mpmath_values() {
+    // NTK-aware base b' = b·s^(d/(d-2)) (Peng et al. 2023, YaRN, Def. 1),
+    // d = 128, b = 10000; recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
     for (factor, expected) in [
         (2.0, 20221.2616897379),
         (4.0, 40889.9424324862),
@@ -220,7 +221,7 @@ fn ntk_aware_scaling_slows_the_lowest_frequency_by_exactly_the_factor() {
 #[test]
 fn linear_interpolation_by_4_at_position_4_matches_the_m1_check() {
     // Chen et al. 2023, position interpolation f'(x, m) = f(x, m/s): with s = 4, m = 4
-    // the angles are exactly those of m = 1, so the DESIGN.md §3 m=1 values apply.
+    // the angles are exactly those of m = 1, so the m = 1 values above apply.
     let scaled = Rotary::new(RotaryParams {
         scaling: RotaryScaling::LinearInterpolation { factor: 4.0 },
         ..RotaryParams::full(4, Pairing::Adjacent)
@@ -241,8 +242,8 @@ fn linear_interpolation_by_4_at_position_4_matches_the_m1_check() {
 
 #[test]
 fn partial_rotary_rotates_the_head_and_passes_the_tail_through() {
-    // DESIGN.md §3 m=1 adjacent check values on the rotated part (d_rot = 4); DESIGN.md
-    // §3 "dims >= d_rot pass through exactly" for the tail.
+    // The m = 1 adjacent values above (mpmath) on the rotated part (d_rot = 4); the tail
+    // (dims >= d_rot) passes through exactly (docs/conventions.md, "rotary").
     let partial = Rotary::new(RotaryParams {
         rotary_dim: 4,
         ..RotaryParams::full(6, Pairing::Adjacent)
@@ -265,9 +266,10 @@ fn partial_rotary_rotates_the_head_and_passes_the_tail_through() {
 
 #[test]
 fn rotary_scores_equal_the_relative_check_times_scale() {
-    // DESIGN.md §3 relative check through the attention path: one memory key at
-    // position 3 and a query at 5 (p0 = 5, M = 2, a zero key at 4), adjacent pairing; confirmed with
-    // mpmath 1.3.0, 50 digits. Scale 1/sqrt(4) = 0.5 exactly.
+    // The relative check above through the attention path: one memory key at
+    // position 3 and a query at 5 (p0 = 5, M = 2, a zero key at 4), adjacent pairing; the
+    // value recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
+    // Scale 1/sqrt(4) = 0.5 exactly.
     let q = Array3::from_shape_vec((1, 1, 4), vec![0.5, -1.0, 2.0, 0.25]).unwrap();
     let k = Array3::from_shape_vec(
         (1, 3, 4),
@@ -353,7 +355,8 @@ mod mpmath_table {
 
     #[test]
     fn half_split_relative_check_matches_mpmath() {
-        // The half-split counterpart of the DESIGN.md §3 relative check, mpmath 50 digits.
+        // The half-split counterpart of the relative check above: vectors/mpmath/rope.json
+        // (mpmath 1.3.0, 50 digits).
         let table = table();
         for entry in table["relative"]["dots"].as_array().unwrap() {
             let pairing = pairing(entry["pairing"].as_str().unwrap());

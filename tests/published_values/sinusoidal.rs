@@ -2,7 +2,7 @@
 
 use posconform::{Sinusoid, SinusoidLayout};
 
-/// The DESIGN.md §3 values are printed with 15 significant digits, so they can be
+/// The quoted values are printed with 15 significant digits, so they can be
 /// trusted to half a unit in the 15th place (5e-16 for values below 1); the rest of
 /// the budget covers the f64 computation itself.
 const PRINTED_15_DIGITS: f64 = 1e-15;
@@ -17,8 +17,7 @@ fn assert_close(got: &[f64], want: &[f64], tol: f64, what: &str) {
     }
 }
 
-/// Source: DESIGN.md §3 "Absolute sinusoidal" check values (mpmath, 50 digits), for the
-/// encoding of Vaswani et al. 2017, §3.5.
+/// The encoding of Vaswani et al. 2017, §3.5; values recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
 #[test]
 fn paper_encoding_at_position_1_width_4() {
     let pe = Sinusoid::paper(4).unwrap();
@@ -31,7 +30,8 @@ fn paper_encoding_at_position_1_width_4() {
     assert_close(&pe.encode(1), &want, PRINTED_15_DIGITS, "p=1 d=4");
 }
 
-/// Source: DESIGN.md §3 check values (mpmath, 50 digits), interleaved and concatenated.
+/// Interleaved (Vaswani et al. 2017, §3.5) and concatenated layouts; values
+/// recomputed with mpmath 1.3.0 at 50 digits (vectors/mpmath/quoted_values.py).
 #[test]
 fn both_layouts_at_position_10_width_8() {
     let interleaved = [

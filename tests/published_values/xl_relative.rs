@@ -3,7 +3,8 @@
 use ndarray::{array, Array2};
 use posconform::xl_relative::rel_shift;
 
-/// Source: DESIGN.md §3 worked example (L=3, M=2, `BD[i][c] = 1000(i+1)+c`) of the
+/// A worked example (L=3, M=2, `BD[i][c] = 1000(i+1)+c`, worked by hand and in
+/// vectors/mpmath/quoted_values.py) of the
 /// relative-shift procedure of Dai et al. 2019, §3.3 and appendix B: prepend a zero
 /// column, reshape to (K+1)×L, drop the first row, reshape to L×K.
 #[test]

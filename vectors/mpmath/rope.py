@@ -57,7 +57,8 @@ def main():
                     "position": p,
                     "rotated": [digits(v) for v in rotate(x, p, pairing)],
                 })
-    # The relative check of DESIGN.md §3 is published for the adjacent pairing only;
+    # The relative check quoted in tests/published_values/rotary.rs is for the adjacent
+    # pairing only;
     # these are its half-split counterparts.
     q = [mp.mpf(v) for v in ("0.5", "-1", "2", "0.25")]
     k = [mp.mpf(v) for v in ("1.5", "0.75", "-0.5", "1")]
