@@ -104,6 +104,7 @@ fn mixed_report() -> Report {
             CaseReport::skipped(&skipped_case, "rotary scaling not supported"),
         ],
         notes: vec!["kernel restarted once".into()],
+        random: Default::default(),
     }
 }
 
@@ -523,6 +524,7 @@ fn json_exit_code_follows_the_verdicts() {
         subject: "vectors/core".into(),
         cases: vec![passing()],
         notes: Vec::new(),
+        random: Default::default(),
     };
     assert_eq!(parse_json(&only_pass)["exit_code"], report::EXIT_CONFORMING);
 
@@ -682,6 +684,7 @@ fn junit_failure_names_every_failing_output_worst_first() {
         subject: "vectors/core".into(),
         cases: vec![case],
         notes: Vec::new(),
+        random: Default::default(),
     };
     let cases = testcases(&junit_root(&report));
     let failure = cases[0].named("failure").next().unwrap();

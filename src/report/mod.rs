@@ -3,10 +3,7 @@
 //! Every renderer is a pure function from a [`Report`] to text; writing files is the
 //! caller's job (atomically, through [`write_atomic`]).
 
-use std::path::Path;
-
 use crate::compare::{CaseReport, Verdict};
-use crate::error::{Error, Result};
 
 pub mod json;
 pub mod junit;
@@ -32,6 +29,10 @@ pub struct Report {
     pub cases: Vec<CaseReport>,
     /// Run-level notes (unknown result files, kernel restarts, ...).
     pub notes: Vec<String>,
+    /// Ids of the cases in `cases` that the fuzzer drew at random (and the shrinking
+    /// steps the kernel could not answer). They count like every other case; the text
+    /// report summarises the ones that passed or failed and lists each error.
+    pub random: std::collections::BTreeSet<String>,
 }
 
 /// How many cases ended each way.
@@ -76,22 +77,21 @@ impl Report {
     }
 }
 
-/// Writes `contents` to `path` through a temporary file in the same directory and a
-/// rename, so a reader never sees a half-written report.
-pub fn write_atomic(path: &Path, contents: &[u8]) -> Result<()> {
-    let dir = path
-        .parent()
-        .filter(|p| !p.as_os_str().is_empty())
-        .unwrap_or(Path::new("."));
-    std::fs::create_dir_all(dir).map_err(|e| Error::io("create", dir, e))?;
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
-    let temp = dir.join(format!(".{name}.tmp{}", std::process::id()));
-    std::fs::write(&temp, contents).map_err(|e| Error::io("write", &temp, e))?;
-    std::fs::rename(&temp, path).map_err(|e| {
-        let _ = std::fs::remove_file(&temp);
-        Error::io("write", path, e)
-    })
+pub use crate::files::write_atomic;
+
+/// `text` with every control character (line breaks included), and the invisible
+/// characters that reorder text, written as a visible escape such as `\u{1b}`: what a
+/// kernel sends (names, messages, stderr) cannot move the cursor, recolour the
+/// terminal, or forge lines of a report.
+pub fn printable(text: &str) -> String {
+    let mut out = String::with_capacity(text.len());
+    for c in text.chars() {
+        let invisible = matches!(c, '\u{200e}' | '\u{200f}' | '\u{202a}'..='\u{202e}' | '\u{2066}'..='\u{2069}');
+        if c.is_control() || invisible {
+            out.extend(c.escape_unicode());
+        } else {
+            out.push(c);
+        }
+    }
+    out
 }
