@@ -496,7 +496,11 @@ fn read_array(wire: WireArray, dir: &Path, location: &str) -> Result<Tensor> {
                 ));
             }
             let path = dir.join(file);
-            read_npy(&path, &format!("{location} (side file {})", path.display()))
+            let at = format!("{location} (side file {})", path.display());
+            read_npy(&path, &at).map_err(|e| match e {
+                Error::Format { .. } if e.to_string().starts_with(&at) => e,
+                other => Error::format(&at, other.to_string()),
+            })
         }
     }
 }

@@ -95,11 +95,10 @@ pub fn interrupt(signal: i32) {
     for &group in &groups {
         signal_group(group, signal);
     }
+    // The checking thread notices the signal, ends its kernel and unregisters it;
+    // whatever is still registered after the grace period is killed here.
     let deadline = Instant::now() + GRACE;
-    while Instant::now() < deadline {
-        if live_groups().iter().all(|&g| !group_alive(g)) {
-            break;
-        }
+    while Instant::now() < deadline && !live_groups().is_empty() {
         std::thread::sleep(Duration::from_millis(10));
     }
     kill_all_now();
@@ -150,17 +149,6 @@ fn terminate_signal() -> i32 {
     libc::SIGTERM
 }
 
-/// Whether any process of the group is still alive (a zombie counts until reaped).
-#[cfg(unix)]
-fn group_alive(group: u32) -> bool {
-    let Ok(pid) = libc::pid_t::try_from(group) else {
-        return false;
-    };
-    // SAFETY: signal 0 only checks for existence and permission.
-    let r = unsafe { libc::kill(-pid, 0) };
-    r == 0 || std::io::Error::last_os_error().raw_os_error() != Some(libc::ESRCH)
-}
-
 #[cfg(not(unix))]
 fn signal_group(_group: u32, _signal: i32) {}
 
@@ -170,11 +158,6 @@ fn kill_group(_group: u32) {}
 #[cfg(not(unix))]
 fn terminate_signal() -> i32 {
     15
-}
-
-#[cfg(not(unix))]
-fn group_alive(_group: u32) -> bool {
-    false
 }
 
 // ---------------------------------------------------------------------------------
@@ -475,18 +458,19 @@ struct Running {
 }
 
 impl Running {
-    /// Ends the process group: SIGTERM, then SIGKILL after [`GRACE`] if anything is left;
-    /// then waits (bounded) for stderr to end so the error shows its last lines.
+    /// Ends the process group: SIGTERM to all of it, up to [`GRACE`] for the kernel to
+    /// exit, then SIGKILL to whatever is left of the group; then waits (bounded) for
+    /// stderr to end so the error shows the last lines.
     fn terminate(&mut self) {
         self.requests = None;
         let started = Instant::now();
         signal_group(self.group, terminate_signal());
-        while started.elapsed() < GRACE && group_alive(self.group) {
-            // Reaping happens on the waiter thread; this only watches.
-            if let Ok(Event::Exited(Ok(status))) =
-                self.events.recv_timeout(Duration::from_millis(10))
-            {
-                self.exited = Some(status);
+        while self.exited.is_none() && started.elapsed() < GRACE {
+            // Reaping happens on the waiter thread; this only listens for it.
+            match self.events.recv_timeout(Duration::from_millis(10)) {
+                Ok(Event::Exited(Ok(status))) => self.exited = Some(status),
+                Ok(Event::Exited(Err(_))) | Err(RecvTimeoutError::Disconnected) => break,
+                _ => {}
             }
         }
         kill_group(self.group);
