@@ -121,8 +121,22 @@ pub fn read_exact_len(file: &mut File, len: usize, path: &Path) -> Result<Vec<u8
 
 /// Opens `path` for appending, creating it if needed (a kernel log).
 pub fn open_append(path: &Path) -> Result<File> {
+    open_for_writing(path, true)
+}
+
+/// Creates (or truncates) `path` for writing as it goes (a protocol trace).
+pub fn create_streamed(path: &Path) -> Result<File> {
+    open_for_writing(path, false)
+}
+
+fn open_for_writing(path: &Path, append: bool) -> Result<File> {
     let mut options = std::fs::OpenOptions::new();
-    options.create(true).append(true);
+    options.create(true);
+    if append {
+        options.append(true);
+    } else {
+        options.write(true).truncate(true);
+    }
     #[cfg(unix)]
     {
         use std::os::unix::fs::OpenOptionsExt as _;

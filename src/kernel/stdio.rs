@@ -577,8 +577,7 @@ impl StdioKernel {
 
     /// Also records every protocol line, sent (`->`) and received (`<-`), in this file.
     pub fn with_trace(mut self, path: &Path) -> Result<Self> {
-        let file = std::fs::File::create(path).map_err(|e| Error::io("create", path, e))?;
-        self.trace = Some(file);
+        self.trace = Some(crate::files::create_streamed(path)?);
         Ok(self)
     }
 
