@@ -25,7 +25,7 @@ use std::io::{BufRead, BufReader, Read, Write};
 use std::path::{Path, PathBuf};
 use std::process::{Child, ChildStdin, Command, ExitStatus, Stdio};
 use std::sync::atomic::{AtomicI32, AtomicUsize, Ordering};
-use std::sync::mpsc::{self, Receiver, RecvTimeoutError, Sender};
+use std::sync::mpsc::{self, Receiver, RecvTimeoutError, Sender, SyncSender};
 use std::sync::{Arc, Condvar, Mutex};
 use std::time::{Duration, Instant};
 
@@ -45,6 +45,8 @@ pub const MAX_STDERR_LINE: usize = 8 * 1024;
 pub const MAX_HANDSHAKE_LINE: usize = 1 << 20;
 /// Time a process group gets between SIGTERM and SIGKILL.
 pub const GRACE: Duration = Duration::from_secs(2);
+/// Events (stdout lines among them) queued from one process before its threads wait.
+const EVENT_QUEUE: usize = 8;
 /// Time allowed, after a process ended, for its last stdout and stderr bytes to
 /// arrive (they are already in the pipes; this only bounds a descendant that escaped
 /// the process group and still holds them).
@@ -283,7 +285,7 @@ struct Log {
 /// A request for the writer thread: its id and its bytes.
 type Request = (u64, Vec<u8>);
 
-fn spawn_writer(mut stdin: ChildStdin, events: Sender<Event>) -> Sender<Request> {
+fn spawn_writer(mut stdin: ChildStdin, events: SyncSender<Event>) -> Sender<Request> {
     let (requests, pending) = mpsc::channel::<Request>();
     std::thread::spawn(move || {
         for (id, bytes) in pending {
@@ -305,7 +307,7 @@ fn spawn_writer(mut stdin: ChildStdin, events: Sender<Event>) -> Sender<Request>
 fn spawn_stdout_reader(
     stdout: std::process::ChildStdout,
     limit: Arc<AtomicUsize>,
-    events: Sender<Event>,
+    events: SyncSender<Event>,
 ) {
     std::thread::spawn(move || {
         let mut reader = BufReader::with_capacity(1 << 16, stdout);
@@ -426,7 +428,7 @@ fn spawn_stderr_reader(
 
 /// Watches the group leader and reports when it ends. The child stays shared so that,
 /// where there are no process groups, it can still be killed.
-fn spawn_waiter(child: Arc<Mutex<Child>>, events: Sender<Event>) {
+fn spawn_waiter(child: Arc<Mutex<Child>>, events: SyncSender<Event>) {
     std::thread::spawn(move || loop {
         let status = match child.lock() {
             Ok(mut c) => c.try_wait(),
@@ -706,7 +708,9 @@ impl StdioKernel {
                 "the kernel's standard streams could not be connected",
             ));
         };
-        let (sender, events) = mpsc::channel();
+        // Bounded: a kernel flooding stdout between requests is held back by the pipe,
+        // not buffered here without limit.
+        let (sender, events) = mpsc::sync_channel(EVENT_QUEUE);
         let line_limit = Arc::new(AtomicUsize::new(MAX_HANDSHAKE_LINE));
         let shared = Arc::new(Shared {
             tail: Mutex::new(Tail::default()),
