@@ -57,9 +57,12 @@ impl Kernel for MyRope {
         }
         // Malformed requests become JSON-RPC errors, never a panic.
         case.validate()?;
-        let bad = |what: &str| posconform::Error::Kernel {
-            kernel: "example-rust-rope".into(),
-            reason: what.into(),
+        let bad = |what: &str| {
+            posconform::Error::kernel(
+                posconform::KernelErrorKind::Failed,
+                "example-rust-rope",
+                what,
+            )
         };
         let (x, positions) = match (inputs.get("x"), inputs.get("positions")) {
             (Some(x), Some(p)) => (x, p),

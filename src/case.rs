@@ -234,9 +234,9 @@ pub struct Case {
 pub const MAX_ELEMENTS: usize = 1 << 27;
 
 impl Case {
-    /// `K = M + L`.
+    /// `K = M + L` (saturating: [`Case::validate`] refuses cases where it would not fit).
     pub fn key_len(&self) -> usize {
-        self.memory_len + self.query_len
+        self.memory_len.saturating_add(self.query_len)
     }
 
     /// Tokens in the sequence for `stream` and `decode`; `L` otherwise.
@@ -277,14 +277,30 @@ impl Case {
         }
     }
 
-    /// Relative positions listed by `encode` for bucketed and clipped schemes.
-    pub fn relative_positions(&self) -> Vec<i64> {
-        let reach = match &self.scheme {
-            SchemeSpec::Bucketed { max_distance, .. } => 2 * *max_distance as i64,
-            SchemeSpec::Clipped { clip_distance, .. } => 2 * *clip_distance as i64 + 2,
+    /// How far the relative positions of `encode` reach on each side of 0 (saturating).
+    fn relative_reach(&self) -> u64 {
+        let sat = |x: usize| u64::try_from(x).unwrap_or(u64::MAX);
+        match &self.scheme {
+            SchemeSpec::Bucketed { max_distance, .. } => sat(*max_distance).saturating_mul(2),
+            SchemeSpec::Clipped { clip_distance, .. } => {
+                sat(*clip_distance).saturating_mul(2).saturating_add(2)
+            }
             _ => 0,
         }
-        .max(self.key_len() as i64);
+        .max(sat(self.key_len()))
+    }
+
+    /// How many relative positions `encode` lists for bucketed and clipped schemes,
+    /// without listing them (saturating).
+    pub fn relative_positions_len(&self) -> usize {
+        let count = self.relative_reach().saturating_mul(2).saturating_add(1);
+        usize::try_from(count).unwrap_or(usize::MAX)
+    }
+
+    /// Relative positions listed by `encode` for bucketed and clipped schemes. Call it
+    /// on a validated case: [`Case::validate`] bounds how many there are.
+    pub fn relative_positions(&self) -> Vec<i64> {
+        let reach = i64::try_from(self.relative_reach()).unwrap_or(i64::MAX - 1);
         (-reach..=reach).collect()
     }
 
@@ -327,7 +343,8 @@ impl Case {
                         prefill,
                     ));
                 }
-                if chunks.contains(&0) || chunks.iter().sum::<usize>() != tokens - prefill {
+                let total = chunks.iter().try_fold(0usize, |acc, &c| acc.checked_add(c));
+                if chunks.contains(&0) || total != Some(tokens - prefill) {
                     return Err(Error::param(
                         "operation.chunks",
                         format!(
@@ -356,6 +373,13 @@ impl Case {
                 ));
             }
         }
+        if self.memory_len.checked_add(self.query_len).is_none() {
+            return Err(Error::param(
+                "memory_len",
+                "M + L within the address space",
+                self.memory_len,
+            ));
+        }
         let (first, last) = self.position_range();
         let limit = 1i64 << 53;
         if first < -limit
@@ -380,10 +404,11 @@ impl Case {
         .into_iter()
         .max()
         .unwrap_or(0);
-        if largest > MAX_ELEMENTS {
+        let max_elements = crate::tensor::max_elements();
+        if largest > max_elements {
             return Err(Error::param(
                 "shape",
-                format!("at most {MAX_ELEMENTS} elements per array"),
+                format!("at most {max_elements} elements per array"),
                 largest,
             ));
         }
@@ -450,6 +475,29 @@ impl Case {
                 }
             }
         }
+        // Every array the case implies, scheme tables and relative positions included,
+        // within the element limit (checked arithmetic, nothing allocated).
+        let shapes = self
+            .input_specs()
+            .into_iter()
+            .map(|spec| (spec.name, spec.shape))
+            .chain(
+                self.output_shapes()
+                    .into_iter()
+                    .map(|(name, shape)| (name.to_string(), shape)),
+            );
+        for (name, shape) in shapes {
+            let elements = shape
+                .iter()
+                .try_fold(1usize, |acc, &d| acc.checked_mul(d.max(1)));
+            if elements.map_or(true, |n| n > max_elements) {
+                return Err(Error::param(
+                    "shape",
+                    format!("at most {max_elements} elements per array"),
+                    format!("`{name}` of shape {shape:?}"),
+                ));
+            }
+        }
         Ok(())
     }
 
@@ -486,7 +534,7 @@ impl Case {
                 SchemeSpec::Alibi { .. } => {}
                 SchemeSpec::Bucketed { .. } | SchemeSpec::Clipped { .. } => specs.push(InputSpec {
                     name: "relative_positions".into(),
-                    shape: vec![self.relative_positions().len()],
+                    shape: vec![self.relative_positions_len()],
                     fill: Fill::RelativePositions,
                 }),
             }
@@ -585,10 +633,10 @@ impl Case {
                 SchemeSpec::XlRelative { .. } => vec![("r", vec![h, k, d])],
                 SchemeSpec::Alibi { .. } => vec![("slopes", vec![h])],
                 SchemeSpec::Bucketed { .. } => {
-                    vec![("buckets", vec![self.relative_positions().len()])]
+                    vec![("buckets", vec![self.relative_positions_len()])]
                 }
                 SchemeSpec::Clipped { .. } => {
-                    vec![("indices", vec![self.relative_positions().len()])]
+                    vec![("indices", vec![self.relative_positions_len()])]
                 }
             },
             Operation::Scores => vec![("scores", vec![h, l, k])],
@@ -596,7 +644,7 @@ impl Case {
             Operation::Stream { tokens } => vec![("output", vec![h, *tokens, d])],
             Operation::Decode {
                 tokens, prefill, ..
-            } => vec![("output", vec![h, tokens - prefill, d])],
+            } => vec![("output", vec![h, tokens.saturating_sub(*prefill), d])],
         }
     }
 }

@@ -2,9 +2,13 @@
 //! shrinking of each failure to a minimal failing case.
 //!
 //! Everything is deterministic given the seed (and a deterministic kernel). A kernel
-//! that crashes, hangs or breaks the protocol costs one case (reported as an error) and
-//! a restart; after `max_consecutive_errors` such cases in a row the run stops and the
-//! remaining cases are reported as not run. Finished results are never dropped.
+//! that crashes, hangs or prints garbage costs one case (reported as an error) and a
+//! restart; after `max_consecutive_errors` such cases in a row the run stops and the
+//! remaining cases are reported as not run. A kernel that answers a case with an error
+//! (or with malformed arrays) costs that case only: no restart, no count towards the
+//! stop. A signal to posconform stops the run the same way. Finished results are never
+//! dropped: every random case is in the report too (the text report summarises them),
+//! and so is every shrinking step the kernel could not answer.
 
 use std::path::PathBuf;
 use std::time::{Duration, Instant};
@@ -12,7 +16,7 @@ use std::time::{Duration, Instant};
 use crate::attention::Scale;
 use crate::case::{Arrays, Case, Operation, SchemeSpec};
 use crate::compare::{compare, CaseReport, CompareOptions, Verdict};
-use crate::error::Result;
+use crate::error::{KernelErrorKind, Result};
 use crate::generate::Stream;
 use crate::kernel::{Answer, Kernel, KernelInfo};
 use crate::precision::Dtype;
@@ -77,12 +81,18 @@ pub struct MinimalFailure {
 pub struct FuzzSummary {
     /// Random cases run.
     pub cases: usize,
+    /// Of which within budget.
+    pub passed: usize,
     /// Of which over budget.
     pub failed: usize,
     /// Of which the kernel could not answer.
     pub errors: usize,
     /// Of which the kernel declined.
     pub skipped: usize,
+    /// Smaller cases the shrinker ran.
+    pub shrink_runs: usize,
+    /// Of which the kernel could not answer (each is in the report as an error).
+    pub shrink_errors: usize,
     /// Wall time of the fuzzing phase (shrinking included).
     pub seconds: f64,
 }
@@ -92,7 +102,8 @@ pub struct FuzzSummary {
 pub struct CheckOutcome {
     /// The kernel's handshake.
     pub info: KernelInfo,
-    /// The suite's and fuzzing's case reports (fuzz failures appear shrunk).
+    /// Every case that ran: the suite, every random case, the shrunk minimal cases,
+    /// and the shrinking steps the kernel could not answer.
     pub report: Report,
     /// Fuzzing statistics, when fuzzing ran.
     pub fuzz: Option<FuzzSummary>,
@@ -104,15 +115,16 @@ pub struct CheckOutcome {
 pub type ProgressFn<'a> = dyn FnMut(&str, usize, usize) + 'a;
 
 /// Runs one case and compares; never fails (problems become the verdict). The second
-/// value says whether the kernel itself failed (so it needs a restart).
+/// value is the kind of the kernel's failure when it could not answer (an in-process
+/// kernel's own error counts as [`KernelErrorKind::Failed`]).
 pub fn run_case(
     kernel: &mut dyn Kernel,
     info: &KernelInfo,
     case: &Case,
     options: &CompareOptions,
-) -> (CaseReport, bool) {
+) -> (CaseReport, Option<KernelErrorKind>) {
     if let Err(reason) = info.declares(case) {
-        return (CaseReport::skipped(case, reason), false);
+        return (CaseReport::skipped(case, reason), None);
     }
     let dtype = info.dtype_for(case);
     let inputs = match case.inputs() {
@@ -120,7 +132,7 @@ pub fn run_case(
         Err(e) => {
             return (
                 CaseReport::error(case, format!("cannot build inputs: {e}")),
-                false,
+                None,
             )
         }
     };
@@ -129,7 +141,7 @@ pub fn run_case(
         Err(e) => {
             return (
                 CaseReport::error(case, format!("reference failed: {e}")),
-                false,
+                None,
             )
         }
     };
@@ -145,10 +157,13 @@ pub fn run_case(
         })
         .collect();
     match kernel.run(case, dtype, &sent) {
-        Err(e) => (CaseReport::error(case, e.to_string()), true),
+        Err(e) => {
+            let kind = e.kernel_kind().unwrap_or(KernelErrorKind::Failed);
+            (CaseReport::error(case, e.to_string()), Some(kind))
+        }
         Ok(Answer::Unsupported(reason)) => (
             CaseReport::skipped(case, format!("the kernel declined: {reason}")),
-            false,
+            None,
         ),
         Ok(Answer::Outputs { outputs, .. }) => {
             let options = CompareOptions {
@@ -160,7 +175,7 @@ pub fn run_case(
                 Err(e) => {
                     return (
                         CaseReport::error(case, format!("comparison failed: {e}")),
-                        false,
+                        None,
                     )
                 }
             };
@@ -174,13 +189,13 @@ pub fn run_case(
                     format!("the case is written for {}, which the kernel does not list; it was run in {dtype}", case.dtype),
                 );
             }
-            (report, false)
+            (report, None)
         }
     }
 }
 
-/// Runs cases with restarts and the consecutive-failure stop. Returns the reports and
-/// whether the run was stopped early.
+/// Runs cases with restarts and the consecutive-failure stop, and keeps the run-level
+/// notes.
 struct Runner<'k> {
     kernel: &'k mut dyn Kernel,
     info: KernelInfo,
@@ -193,35 +208,63 @@ struct Runner<'k> {
 }
 
 impl Runner<'_> {
+    fn stop(&mut self, why: String) {
+        self.notes.push(why.clone());
+        self.stopped = Some(why);
+    }
+
     fn run(&mut self, case: &Case, options: &CompareOptions) -> CaseReport {
+        if self.stopped.is_none() {
+            if let Some(signal) = crate::kernel::stdio::interrupted() {
+                self.stop(format!(
+                    "posconform received signal {signal}; the run stopped"
+                ));
+            }
+        }
         if let Some(why) = &self.stopped {
             return CaseReport::error(case, format!("not run: {why}"));
         }
-        let (report, kernel_failed) = run_case(self.kernel, &self.info, case, options);
+        let (report, failure) = run_case(self.kernel, &self.info, case, options);
         if matches!(report.verdict, Verdict::Pass | Verdict::Fail) {
             self.exercised
                 .push((case.clone(), self.info.dtype_for(case)));
         }
-        if kernel_failed {
-            self.consecutive += 1;
-            if self.consecutive >= self.limit {
-                self.stopped = Some(format!(
-                    "the kernel failed {} cases in a row; the run stopped",
-                    self.consecutive
-                ));
-                self.notes.push(self.stopped.clone().expect("just set"));
-            } else if let Err(e) = self.kernel.restart() {
-                self.notes.push(format!(
-                    "restarting the kernel after case {} failed: {e}",
+        match failure {
+            None => self.consecutive = 0,
+            Some(KernelErrorKind::Interrupted) => {
+                let signal = crate::kernel::stdio::interrupted().unwrap_or(0);
+                self.stop(format!(
+                    "posconform received signal {signal} during case {}; the run stopped",
                     case.id
                 ));
-                self.stopped = Some(format!("the kernel could not be restarted: {e}"));
-            } else {
-                self.notes
-                    .push(format!("the kernel was restarted after case {}", case.id));
             }
-        } else {
-            self.consecutive = 0;
+            Some(KernelErrorKind::CouldNotStart | KernelErrorKind::Handshake) => {
+                self.stop(format!(
+                    "the kernel could not be started again (case {}); the run stopped",
+                    case.id
+                ));
+            }
+            Some(kind) if kind.needs_restart() => {
+                self.consecutive += 1;
+                if self.consecutive >= self.limit {
+                    self.stop(format!(
+                        "the kernel failed {} cases in a row; the run stopped",
+                        self.consecutive
+                    ));
+                } else if let Err(e) = self.kernel.restart() {
+                    self.notes.push(format!(
+                        "restarting the kernel after case {} failed: {e}",
+                        case.id
+                    ));
+                    self.stopped = Some(format!("the kernel could not be restarted: {e}"));
+                } else {
+                    self.notes
+                        .push(format!("the kernel was restarted after case {}", case.id));
+                }
+            }
+            // The kernel answered (with an error, or with malformed arrays): the case
+            // is lost, the process is fine.
+            Some(_) => self.consecutive = 0,
         }
         report
     }
@@ -250,6 +293,7 @@ pub fn check(
         cases: Vec::new(),
         notes: Vec::new(),
         never_exercised: Vec::new(),
+        random: Default::default(),
     };
     for (n, case) in cases.iter().enumerate() {
         progress("suite", n, cases.len());
@@ -259,10 +303,20 @@ pub fn check(
     let mut fuzz = None;
     let mut minimal = Vec::new();
     if options.fuzz_cases > 0 && runner.stopped.is_none() {
-        let (summary, found) = fuzz_and_shrink(&mut runner, options, progress);
+        let fuzzed = fuzz_and_shrink(&mut runner, options, progress);
+        let summary = fuzzed.summary;
+        let shrinking = if summary.shrink_runs > 0 {
+            format!(
+                "; {} shrinking runs, {} of them unanswered",
+                summary.shrink_runs, summary.shrink_errors
+            )
+        } else {
+            String::new()
+        };
         report.notes.push(format!(
-            "fuzzing: {} random cases ({} over budget, {} errors, {} declined) in {:.1} s, {:.1} cases/s (seed {})",
+            "fuzzing: {} random cases ({} within budget, {} over budget, {} errors, {} declined{shrinking}) in {:.1} s, {:.1} cases/s (seed {})",
             summary.cases,
+            summary.passed,
             summary.failed,
             summary.errors,
             summary.skipped,
@@ -270,11 +324,15 @@ pub fn check(
             summary.cases as f64 / summary.seconds.max(1e-9),
             options.seed
         ));
-        for m in &found {
+        for case in fuzzed.cases {
+            report.random.insert(case.case.clone());
+            report.cases.push(case);
+        }
+        for m in &fuzzed.minimal {
             report.cases.push(m.report.clone());
         }
         fuzz = Some(summary);
-        minimal = found;
+        minimal = fuzzed.minimal;
     }
     if !info.conventions.is_empty() {
         report.notes.insert(
@@ -292,15 +350,24 @@ pub fn check(
     })
 }
 
+/// What fuzzing produced: the counts, every random case's report (and the shrinking
+/// steps that errored), the minimal failures.
+struct Fuzzed {
+    summary: FuzzSummary,
+    cases: Vec<CaseReport>,
+    minimal: Vec<MinimalFailure>,
+}
+
 fn fuzz_and_shrink(
     runner: &mut Runner<'_>,
     options: &CheckOptions,
     progress: &mut ProgressFn<'_>,
-) -> (FuzzSummary, Vec<MinimalFailure>) {
+) -> Fuzzed {
     let started = Instant::now();
     let mut stream = Stream::new(options.seed);
     let mut summary = FuzzSummary::default();
     let mut minimal: Vec<MinimalFailure> = Vec::new();
+    let mut cases: Vec<CaseReport> = Vec::new();
     let supported: Vec<(Scheme, Operation)> = runner
         .info
         .supports
@@ -312,7 +379,11 @@ fn fuzz_and_shrink(
         })
         .collect();
     if supported.is_empty() {
-        return (summary, minimal);
+        return Fuzzed {
+            summary,
+            cases,
+            minimal,
+        };
     }
     for n in 0..options.fuzz_cases {
         if options
@@ -329,7 +400,9 @@ fn fuzz_and_shrink(
         };
         let report = runner.run(&case, &options.compare);
         summary.cases += 1;
-        match report.verdict {
+        let verdict = report.verdict.clone();
+        cases.push(report.clone());
+        match verdict {
             Verdict::Fail => {
                 summary.failed += 1;
                 let key = (case.scheme.scheme(), case.operation.name());
@@ -338,7 +411,7 @@ fn fuzz_and_shrink(
                     .any(|m| (m.case.scheme.scheme(), m.case.operation.name()) == key)
                 {
                     progress("shrink", 0, 0);
-                    let mut m = shrink(runner, &case, report, options);
+                    let mut m = shrink(runner, &case, report, options, &mut summary, &mut cases);
                     if let Some(dir) = &options.save_dir {
                         match VectorFile::build(&m.case, options.compare.factor)
                             .and_then(|v| v.write(dir))
@@ -354,12 +427,16 @@ fn fuzz_and_shrink(
             }
             Verdict::Error(_) => summary.errors += 1,
             Verdict::Skipped(_) => summary.skipped += 1,
-            Verdict::Pass => {}
+            Verdict::Pass => summary.passed += 1,
         }
     }
     progress("fuzz", options.fuzz_cases, options.fuzz_cases);
     summary.seconds = started.elapsed().as_secs_f64();
-    (summary, minimal)
+    Fuzzed {
+        summary,
+        cases,
+        minimal,
+    }
 }
 
 fn operation_named(name: &str) -> Option<Operation> {
@@ -682,6 +759,8 @@ fn shrink(
     found: &Case,
     report: CaseReport,
     options: &CheckOptions,
+    summary: &mut FuzzSummary,
+    unanswered: &mut Vec<CaseReport>,
 ) -> MinimalFailure {
     let mut best = found.clone();
     let mut best_report = report;
@@ -695,11 +774,22 @@ fn shrink(
                 continue;
             }
             tried += 1;
+            summary.shrink_runs += 1;
+            let mut candidate = candidate;
+            // Each step gets an id of its own, so an unanswered one can be reported.
+            candidate.id = format!("{}.shrink{tried}", found.id);
             let r = runner.run(&candidate, &options.compare);
-            if r.verdict == Verdict::Fail {
-                best = candidate;
-                best_report = r;
-                continue 'outer;
+            match r.verdict {
+                Verdict::Fail => {
+                    best = candidate;
+                    best_report = r;
+                    continue 'outer;
+                }
+                Verdict::Error(_) => {
+                    summary.shrink_errors += 1;
+                    unanswered.push(r);
+                }
+                _ => {}
             }
         }
         break;

@@ -50,11 +50,13 @@ pub enum Error {
         reason: String,
     },
     /// The kernel under test could not answer: it crashed, hung, exited, broke the
-    /// protocol or returned malformed arrays.
+    /// protocol, returned malformed arrays or reported an error of its own.
     #[error("kernel {kernel}: {reason}")]
     Kernel {
         /// The kernel's name (or command).
         kernel: String,
+        /// Which way it failed; callers decide on this, never on the message text.
+        kind: KernelErrorKind,
         /// What went wrong, including the kernel's last stderr lines when there are any.
         reason: String,
     },
@@ -69,6 +71,69 @@ pub enum Error {
         #[source]
         source: std::io::Error,
     },
+}
+
+/// The ways a kernel can fail to answer, as carried by [`Error::Kernel`].
+///
+/// The checker treats them differently: a [`Failed`](Self::Failed) reply or a
+/// [`MalformedResult`](Self::MalformedResult) costs one case and nothing else, while a
+/// [`Timeout`](Self::Timeout), an [`Exited`](Self::Exited) process or
+/// [`Garbage`](Self::Garbage) on stdout means the process can no longer be trusted: it is
+/// replaced, and such failures in a row stop the run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum KernelErrorKind {
+    /// The program could not be started (missing, not executable, no resources).
+    CouldNotStart,
+    /// No complete answer within the timeout; the request write counts too.
+    Timeout,
+    /// The process exited, crashed or closed its stdout before answering.
+    Exited,
+    /// Something on stdout that is not the awaited JSON-RPC response: not JSON, the
+    /// wrong id, neither `result` nor `error`, or a line over the size limit.
+    Garbage,
+    /// A well-formed reply whose content is wrong: no `outputs`, arrays whose data do
+    /// not fit their shape, unknown dtypes.
+    MalformedResult,
+    /// The kernel reported that it failed on this case (a JSON-RPC error reply, or an
+    /// in-process kernel's own error).
+    Failed,
+    /// The handshake was refused or malformed (protocol version, missing fields).
+    Handshake,
+    /// posconform received a signal and stopped the kernel.
+    Interrupted,
+}
+
+impl KernelErrorKind {
+    /// Whether the process must be replaced after this failure (and the failure counts
+    /// towards the consecutive-failure stop): crashes, hangs and garbage on stdout.
+    pub fn needs_restart(self) -> bool {
+        matches!(
+            self,
+            KernelErrorKind::Timeout | KernelErrorKind::Exited | KernelErrorKind::Garbage
+        )
+    }
+
+    /// A short lowercase name (`timeout`, `exited`, ...), as in the JSON report.
+    pub fn name(self) -> &'static str {
+        match self {
+            KernelErrorKind::CouldNotStart => "could_not_start",
+            KernelErrorKind::Timeout => "timeout",
+            KernelErrorKind::Exited => "exited",
+            KernelErrorKind::Garbage => "garbage",
+            KernelErrorKind::MalformedResult => "malformed_result",
+            KernelErrorKind::Failed => "failed",
+            KernelErrorKind::Handshake => "handshake",
+            KernelErrorKind::Interrupted => "interrupted",
+        }
+    }
+}
+
+impl fmt::Display for KernelErrorKind {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
 }
 
 /// The library's result type.
@@ -102,6 +167,27 @@ impl Error {
             action,
             path: path.to_path_buf(),
             source,
+        }
+    }
+
+    /// An [`Error::Kernel`] of `kind` for the kernel `kernel`.
+    pub fn kernel(
+        kind: KernelErrorKind,
+        kernel: impl Into<String>,
+        reason: impl Into<String>,
+    ) -> Self {
+        Error::Kernel {
+            kernel: kernel.into(),
+            kind,
+            reason: reason.into(),
+        }
+    }
+
+    /// The kind of a kernel failure; `None` for every other error.
+    pub fn kernel_kind(&self) -> Option<KernelErrorKind> {
+        match self {
+            Error::Kernel { kind, .. } => Some(*kind),
+            _ => None,
         }
     }
 

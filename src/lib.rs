@@ -39,6 +39,7 @@ pub mod check;
 pub mod compare;
 pub mod demo;
 mod error;
+pub mod files;
 pub mod generate;
 pub mod kernel;
 pub mod precision;
@@ -52,6 +53,6 @@ pub mod vector;
 pub mod verify;
 
 pub use attention::{Scale, Window};
-pub use error::{Error, Result};
+pub use error::{Error, KernelErrorKind, Result};
 pub use scheme::sinusoidal::{Sinusoid, SinusoidLayout};
 pub use scheme::{alibi, bucketed, clipped, learned, rotary, sinusoidal, xl_relative, Scheme};

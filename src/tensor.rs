@@ -15,7 +15,8 @@ use std::fmt;
 use base64::Engine as _;
 use half::{bf16, f16};
 use ndarray::{ArrayD, ArrayViewD, IxDyn};
-use serde_json::{json, Map, Value};
+use serde::de::{self, Deserialize, Deserializer, IgnoredAny, MapAccess, SeqAccess, Visitor};
+use serde_json::{json, Value};
 
 use crate::error::{Error, Result};
 use crate::precision::Dtype;
@@ -81,10 +82,7 @@ impl Tensor {
         bytes: &[u8],
         location: &dyn fmt::Display,
     ) -> Result<Self> {
-        let count = element_count(shape, location)?;
-        let expected = count
-            .checked_mul(dtype.size())
-            .ok_or_else(|| Error::format(location, "shape is too large"))?;
+        let expected = byte_count(dtype, shape, location)?;
         if bytes.len() != expected {
             return Err(Error::format(
                 location,
@@ -97,15 +95,17 @@ impl Tensor {
         let values: Vec<f64> = bytes
             .chunks_exact(dtype.size())
             .map(|c| match dtype {
-                Dtype::F64 => f64::from_le_bytes(c.try_into().expect("8 bytes")),
-                Dtype::F32 => f32::from_le_bytes(c.try_into().expect("4 bytes")) as f64,
-                Dtype::F16 => f16::from_le_bytes(c.try_into().expect("2 bytes")).to_f64(),
-                Dtype::Bf16 => bf16::from_le_bytes(c.try_into().expect("2 bytes")).to_f64(),
-                Dtype::I64 => i64::from_le_bytes(c.try_into().expect("8 bytes")) as f64,
+                Dtype::F64 => f64::from_le_bytes(le(c)),
+                Dtype::F32 => f32::from_le_bytes(le(c)) as f64,
+                Dtype::F16 => f16::from_le_bytes(le(c)).to_f64(),
+                Dtype::Bf16 => bf16::from_le_bytes(le(c)).to_f64(),
+                Dtype::I64 => i64::from_le_bytes(le(c)) as f64,
             })
             .collect();
-        let values = ArrayD::from_shape_vec(IxDyn(shape), values).expect("length checked");
-        Ok(Tensor { dtype, values })
+        Ok(Tensor {
+            dtype,
+            values: shaped(shape, values, location)?,
+        })
     }
 
     /// The JSON array object with base64 data.
@@ -119,84 +119,28 @@ impl Tensor {
 
     /// Parses a JSON array object (base64 `data` or plain `values`).
     pub fn from_json(value: &Value, location: &dyn fmt::Display) -> Result<Self> {
-        let object = value.as_object().ok_or_else(|| {
-            Error::format(location, "expected an array object {dtype, shape, data}")
-        })?;
-        let dtype = field(object, "dtype", location)?
-            .as_str()
-            .ok_or_else(|| Error::format(location, "`dtype` must be a string"))?
-            .parse::<Dtype>()
-            .map_err(|e| Error::format(location, e.to_string()))?;
-        let shape: Vec<usize> = field(object, "shape", location)?
-            .as_array()
-            .ok_or_else(|| Error::format(location, "`shape` must be an array of integers"))?
-            .iter()
-            .map(|d| d.as_u64().map(|d| d as usize))
-            .collect::<Option<_>>()
-            .ok_or_else(|| Error::format(location, "`shape` must hold non-negative integers"))?;
-        if let Some(unknown) = object
-            .keys()
-            .find(|k| !["dtype", "shape", "data", "values"].contains(&k.as_str()))
-        {
-            return Err(Error::format(
-                location,
-                format!("unknown field `{unknown}`"),
-            ));
-        }
-        match (object.get("data"), object.get("values")) {
-            (Some(data), None) => {
-                let text = data
-                    .as_str()
-                    .ok_or_else(|| Error::format(location, "`data` must be a base64 string"))?;
-                let bytes = base64::engine::general_purpose::STANDARD
-                    .decode(text)
-                    .map_err(|e| Error::format(location, format!("`data` is not base64: {e}")))?;
-                Self::from_le_bytes(dtype, &shape, &bytes, location)
-            }
-            (None, Some(values)) => Self::from_values(dtype, &shape, values, location),
-            (Some(_), Some(_)) => Err(Error::format(location, "give `data` or `values`, not both")),
-            (None, None) => Err(Error::format(location, "missing `data` (or `values`)")),
-        }
+        let wire = WireArray::deserialize(value)
+            .map_err(|e| Error::format(location, format!("not an array object: {e}")))?;
+        wire.into_tensor(location)
     }
 
     fn from_values(
         dtype: Dtype,
         shape: &[usize],
-        values: &Value,
+        values: Vec<f64>,
         location: &dyn fmt::Display,
     ) -> Result<Self> {
-        let list = values
-            .as_array()
-            .ok_or_else(|| Error::format(location, "`values` must be a flat array"))?;
         let count = element_count(shape, location)?;
-        if list.len() != count {
+        if values.len() != count {
             return Err(Error::format(
                 location,
-                format!("shape {shape:?} needs {count} values, found {}", list.len()),
+                format!(
+                    "shape {shape:?} needs {count} values, found {}",
+                    values.len()
+                ),
             ));
         }
-        let parsed = list
-            .iter()
-            .enumerate()
-            .map(|(i, v)| match v {
-                Value::Number(n) => n.as_f64().ok_or(i),
-                Value::String(s) => match s.as_str() {
-                    "inf" | "+inf" => Ok(f64::INFINITY),
-                    "-inf" => Ok(f64::NEG_INFINITY),
-                    "nan" => Ok(f64::NAN),
-                    _ => Err(i),
-                },
-                _ => Err(i),
-            })
-            .collect::<std::result::Result<Vec<f64>, usize>>()
-            .map_err(|i| {
-                Error::format(
-                    location,
-                    format!("`values[{i}]` is not a number (or \"inf\", \"-inf\", \"nan\")"),
-                )
-            })?;
-        let array = ArrayD::from_shape_vec(IxDyn(shape), parsed).expect("length checked");
-        Ok(Tensor::from_f64(dtype, array))
+        Ok(Tensor::from_f64(dtype, shaped(shape, values, location)?))
     }
 
     /// The `.npy` (format 1.0) bytes of this tensor. Errors for bf16, which has no
@@ -229,11 +173,35 @@ impl Tensor {
 
     /// Parses `.npy` bytes; `location` names the file.
     pub fn from_npy(bytes: &[u8], location: &dyn fmt::Display) -> Result<Self> {
+        let header = NpyHeader::parse(bytes, location)?;
+        let data = bytes.get(header.data_offset..).unwrap_or(&[]);
+        header.decode(data, location)
+    }
+}
+
+/// The header of a `.npy` file: enough to know, before reading the data, how many
+/// bytes the data must have.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NpyHeader {
+    /// Element type.
+    pub dtype: Dtype,
+    /// Shape (C order).
+    pub shape: Vec<usize>,
+    /// Where the data begin.
+    pub data_offset: usize,
+    /// How many data bytes the shape and dtype call for (checked arithmetic).
+    pub data_len: usize,
+}
+
+impl NpyHeader {
+    /// Parses the header at the start of `bytes` (which may hold more than the
+    /// header); errors when `bytes` ends before the header does.
+    pub fn parse(bytes: &[u8], location: &dyn fmt::Display) -> Result<Self> {
         if bytes.len() < 10 || &bytes[..6] != b"\x93NUMPY" {
             return Err(Error::format(location, "not a .npy file (bad magic)"));
         }
         let (header_len, start) = match bytes[6] {
-            1 => (u16::from_le_bytes([bytes[8], bytes[9]]) as usize, 10),
+            1 => (u16::from_le_bytes([bytes[8], bytes[9]]) as usize, 10usize),
             2 | 3 if bytes.len() >= 12 => (
                 u32::from_le_bytes([bytes[8], bytes[9], bytes[10], bytes[11]]) as usize,
                 12,
@@ -245,14 +213,15 @@ impl Tensor {
                 ))
             }
         };
-        let header = bytes
-            .get(start..start + header_len)
+        let header = start
+            .checked_add(header_len)
+            .and_then(|end| bytes.get(start..end))
             .ok_or_else(|| Error::format(location, "truncated .npy header"))?;
         let header = std::str::from_utf8(header)
             .map_err(|_| Error::format(location, ".npy header is not text"))?;
         let descr = header_value(header, "descr")
             .ok_or_else(|| Error::format(location, ".npy header has no 'descr'"))?;
-        let descr = descr.trim_matches(|c| c == '\'' || c == '"');
+        let descr = descr.trim().trim_matches(|c| c == '\'' || c == '"');
         let dtype = Dtype::ALL
             .iter()
             .copied()
@@ -260,7 +229,10 @@ impl Tensor {
             .ok_or_else(|| {
                 Error::format(
                     location,
-                    format!("unsupported .npy dtype '{descr}' (use <f8, <f4, <f2 or <i8)"),
+                    format!(
+                        "unsupported .npy dtype '{}' (use <f8, <f4, <f2 or <i8)",
+                        descr.escape_debug()
+                    ),
                 )
             })?;
         if header_value(header, "fortran_order").map(str::trim) != Some("False") {
@@ -280,9 +252,24 @@ impl Tensor {
             .filter(|s| !s.is_empty())
             .map(|s| s.parse::<usize>())
             .collect::<std::result::Result<Vec<_>, _>>()
-            .map_err(|_| Error::format(location, format!("bad .npy shape {shape_text}")))?;
-        let data = &bytes[start + header_len..];
-        Self::from_le_bytes(dtype, &shape, data, location).map_err(|e| match e {
+            .map_err(|_| {
+                Error::format(
+                    location,
+                    format!("bad .npy shape {}", shape_text.escape_debug()),
+                )
+            })?;
+        let data_len = byte_count(dtype, &shape, location)?;
+        Ok(NpyHeader {
+            dtype,
+            shape,
+            data_offset: start + header_len,
+            data_len,
+        })
+    }
+
+    /// Decodes the data that follow the header.
+    pub fn decode(&self, data: &[u8], location: &dyn fmt::Display) -> Result<Tensor> {
+        Tensor::from_le_bytes(self.dtype, &self.shape, data, location).map_err(|e| match e {
             Error::Format { location, reason } => Error::Format {
                 location,
                 reason: format!("truncated or oversized .npy data: {reason}"),
@@ -292,22 +279,61 @@ impl Tensor {
     }
 }
 
-fn field<'a>(
-    object: &'a Map<String, Value>,
-    name: &str,
-    location: &dyn fmt::Display,
-) -> Result<&'a Value> {
-    object
-        .get(name)
-        .ok_or_else(|| Error::format(location, format!("missing `{name}`")))
+/// The largest number of elements one array may have, whatever its origin (a case, a
+/// kernel's reply, a result or vector file). Every shape is checked against it before
+/// anything is allocated; this function is the one place the limit is decided.
+pub fn max_elements() -> usize {
+    crate::case::MAX_ELEMENTS
 }
 
-fn element_count(shape: &[usize], location: &dyn fmt::Display) -> Result<usize> {
-    shape
+/// The number of elements of `shape`, checked: no overflow, and at most
+/// [`max_elements`] counting every zero-length axis as one (so `[0, 2^63]` is refused
+/// rather than passed on to code that multiplies the other axes).
+pub fn element_count(shape: &[usize], location: &dyn fmt::Display) -> Result<usize> {
+    const MAX_RANK: usize = 16;
+    if shape.len() > MAX_RANK {
+        return Err(Error::format(
+            location,
+            format!(
+                "{} dimensions; at most {MAX_RANK} are accepted",
+                shape.len()
+            ),
+        ));
+    }
+    let limit = max_elements();
+    let spread = shape
         .iter()
-        .try_fold(1usize, |acc, &d| acc.checked_mul(d))
-        .filter(|&n| n <= 1 << 32)
+        .try_fold(1usize, |acc, &d| acc.checked_mul(d.max(1)))
+        .filter(|&n| n <= limit);
+    match spread {
+        Some(_) => Ok(shape.iter().product()),
+        None => Err(Error::format(
+            location,
+            format!("shape {shape:?} is too large (at most {limit} elements per array)"),
+        )),
+    }
+}
+
+/// Bytes of `shape` elements of `dtype`, checked as [`element_count`].
+fn byte_count(dtype: Dtype, shape: &[usize], location: &dyn fmt::Display) -> Result<usize> {
+    element_count(shape, location)?
+        .checked_mul(dtype.size())
         .ok_or_else(|| Error::format(location, format!("shape {shape:?} is too large")))
+}
+
+/// `values` as an array of `shape`, whose element count the caller has checked.
+fn shaped(shape: &[usize], values: Vec<f64>, location: &dyn fmt::Display) -> Result<ArrayD<f64>> {
+    ArrayD::from_shape_vec(IxDyn(shape), values)
+        .map_err(|e| Error::format(location, format!("shape {shape:?}: {e}")))
+}
+
+/// The first `N` bytes of a chunk of exactly `N` (as `chunks_exact` yields).
+fn le<const N: usize>(chunk: &[u8]) -> [u8; N] {
+    let mut out = [0u8; N];
+    for (o, c) in out.iter_mut().zip(chunk) {
+        *o = *c;
+    }
+    out
 }
 
 fn npy_descr(dtype: Dtype) -> Option<&'static str> {
@@ -337,4 +363,432 @@ fn header_value<'a>(header: &'a str, key: &str) -> Option<&'a str> {
         }
     }
     None
+}
+
+/// An array object as it arrives in a reply or a file, parsed in one pass straight into
+/// typed fields (no generic JSON tree): `values` become f64s as they are read, `data`
+/// stays a string until its length has been checked against the shape.
+///
+/// Deserialising never fails on the *content* of a field (a `dtype` that is not a
+/// string, an unknown key, a value that is not a number): those are recorded and
+/// reported by [`WireArray::into_tensor`] with the caller's location.
+#[derive(Debug, Default)]
+pub struct WireArray {
+    not_object: bool,
+    dtype: Option<Option<String>>,
+    shape: Option<Option<Vec<usize>>>,
+    data: Option<Option<String>>,
+    values: Option<Option<Values>>,
+    npy: Option<Option<String>>,
+    unknown: Option<String>,
+}
+
+#[derive(Debug, Default)]
+struct Values {
+    parsed: Vec<f64>,
+    first_bad: Option<usize>,
+}
+
+impl WireArray {
+    /// The side file named by `{"npy": "<file>"}` (vector files only), if any.
+    pub fn npy(&self) -> Option<Result<&str>> {
+        match &self.npy {
+            None => None,
+            Some(Some(name)) => Some(Ok(name)),
+            Some(None) => Some(Err(Error::format(
+                "array object",
+                "`npy` must be a file name",
+            ))),
+        }
+    }
+
+    /// Validates and decodes the array; `location` names the file and field (or the
+    /// reply and field) in every error.
+    pub fn into_tensor(self, location: &dyn fmt::Display) -> Result<Tensor> {
+        if self.not_object {
+            return Err(Error::format(
+                location,
+                "expected an array object {dtype, shape, data}",
+            ));
+        }
+        if let Some(unknown) = &self.unknown {
+            return Err(Error::format(
+                location,
+                format!("unknown field `{}`", unknown.escape_debug()),
+            ));
+        }
+        if self.npy.is_some() {
+            return Err(Error::format(
+                location,
+                "unknown field `npy` (side files are for vector files only)",
+            ));
+        }
+        let dtype = match self.dtype {
+            None => return Err(Error::format(location, "missing `dtype`")),
+            Some(None) => return Err(Error::format(location, "`dtype` must be a string")),
+            Some(Some(text)) => text
+                .parse::<Dtype>()
+                .map_err(|e| Error::format(location, e.to_string()))?,
+        };
+        let shape = match self.shape {
+            None => return Err(Error::format(location, "missing `shape`")),
+            Some(None) => {
+                return Err(Error::format(
+                    location,
+                    "`shape` must be an array of non-negative integers",
+                ))
+            }
+            Some(Some(shape)) => shape,
+        };
+        match (self.data, self.values) {
+            (Some(data), None) => {
+                let text =
+                    data.ok_or_else(|| Error::format(location, "`data` must be a base64 string"))?;
+                let needed = byte_count(dtype, &shape, location)?;
+                // Decoded length from the text length alone, so a payload of the wrong
+                // size is refused before it is decoded.
+                let found = decoded_len(&text);
+                if found != Some(needed) {
+                    let found = found.map_or_else(
+                        || format!("{} base64 characters", text.len()),
+                        |n| format!("{n} bytes"),
+                    );
+                    return Err(Error::format(
+                        location,
+                        format!("shape {shape:?} of {dtype} needs {needed} bytes, found {found}"),
+                    ));
+                }
+                let bytes = base64::engine::general_purpose::STANDARD
+                    .decode(text.as_bytes())
+                    .map_err(|e| Error::format(location, format!("`data` is not base64: {e}")))?;
+                drop(text);
+                Tensor::from_le_bytes(dtype, &shape, &bytes, location)
+            }
+            (None, Some(values)) => {
+                let values = values
+                    .ok_or_else(|| Error::format(location, "`values` must be a flat array"))?;
+                if let Some(i) = values.first_bad {
+                    return Err(Error::format(
+                        location,
+                        format!("`values[{i}]` is not a number (or \"inf\", \"-inf\", \"nan\")"),
+                    ));
+                }
+                Tensor::from_values(dtype, &shape, values.parsed, location)
+            }
+            (Some(_), Some(_)) => Err(Error::format(location, "give `data` or `values`, not both")),
+            (None, None) => Err(Error::format(location, "missing `data` (or `values`)")),
+        }
+    }
+}
+
+/// Bytes a padded standard base64 text decodes to, from its length and padding.
+fn decoded_len(text: &str) -> Option<usize> {
+    let bytes = text.as_bytes();
+    if bytes.len() % 4 != 0 {
+        return None;
+    }
+    let padding = bytes.iter().rev().take(2).filter(|&&b| b == b'=').count();
+    (bytes.len() / 4 * 3).checked_sub(padding)
+}
+
+impl<'de> Deserialize<'de> for WireArray {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> std::result::Result<Self, D::Error> {
+        deserializer.deserialize_any(WireVisitor)
+    }
+}
+
+/// Accepts any JSON value; `on_other` is what a non-object becomes.
+macro_rules! not_this_kind {
+    ($value:ty, $other:expr) => {
+        fn visit_bool<E: de::Error>(self, _: bool) -> std::result::Result<$value, E> {
+            Ok($other)
+        }
+        fn visit_i64<E: de::Error>(self, _: i64) -> std::result::Result<$value, E> {
+            Ok($other)
+        }
+        fn visit_u64<E: de::Error>(self, _: u64) -> std::result::Result<$value, E> {
+            Ok($other)
+        }
+        fn visit_f64<E: de::Error>(self, _: f64) -> std::result::Result<$value, E> {
+            Ok($other)
+        }
+        fn visit_unit<E: de::Error>(self) -> std::result::Result<$value, E> {
+            Ok($other)
+        }
+        fn visit_none<E: de::Error>(self) -> std::result::Result<$value, E> {
+            Ok($other)
+        }
+    };
+}
+
+fn drain_seq<'de, A: SeqAccess<'de>>(mut seq: A) -> std::result::Result<(), A::Error> {
+    while seq.next_element::<IgnoredAny>()?.is_some() {}
+    Ok(())
+}
+
+fn drain_map<'de, A: MapAccess<'de>>(mut map: A) -> std::result::Result<(), A::Error> {
+    while map.next_entry::<IgnoredAny, IgnoredAny>()?.is_some() {}
+    Ok(())
+}
+
+struct WireVisitor;
+
+impl<'de> Visitor<'de> for WireVisitor {
+    type Value = WireArray;
+
+    fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str("an array object {dtype, shape, data}")
+    }
+
+    not_this_kind!(
+        WireArray,
+        WireArray {
+            not_object: true,
+            ..WireArray::default()
+        }
+    );
+
+    fn visit_str<E: de::Error>(self, _: &str) -> std::result::Result<WireArray, E> {
+        Ok(WireArray {
+            not_object: true,
+            ..WireArray::default()
+        })
+    }
+
+    fn visit_seq<A: SeqAccess<'de>>(self, seq: A) -> std::result::Result<WireArray, A::Error> {
+        drain_seq(seq)?;
+        Ok(WireArray {
+            not_object: true,
+            ..WireArray::default()
+        })
+    }
+
+    fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> std::result::Result<WireArray, A::Error> {
+        let mut wire = WireArray::default();
+        while let Some(key) = map.next_key::<std::borrow::Cow<'de, str>>()? {
+            match key.as_ref() {
+                "dtype" => wire.dtype = Some(map.next_value::<Text>()?.0),
+                "shape" => wire.shape = Some(map.next_value::<Shape>()?.0),
+                "data" => wire.data = Some(map.next_value::<Text>()?.0),
+                "values" => wire.values = Some(map.next_value::<ValueList>()?.0),
+                "npy" => wire.npy = Some(map.next_value::<Text>()?.0),
+                other => {
+                    if wire.unknown.is_none() {
+                        wire.unknown = Some(other.chars().take(64).collect());
+                    }
+                    map.next_value::<IgnoredAny>()?;
+                }
+            }
+        }
+        Ok(wire)
+    }
+}
+
+/// A string, or `None` for any other JSON value.
+struct Text(Option<String>);
+
+impl<'de> Deserialize<'de> for Text {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> std::result::Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = Text;
+            fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                f.write_str("a string")
+            }
+            not_this_kind!(Text, Text(None));
+            fn visit_str<E: de::Error>(self, v: &str) -> std::result::Result<Text, E> {
+                Ok(Text(Some(v.to_string())))
+            }
+            fn visit_string<E: de::Error>(self, v: String) -> std::result::Result<Text, E> {
+                Ok(Text(Some(v)))
+            }
+            fn visit_seq<A: SeqAccess<'de>>(self, seq: A) -> std::result::Result<Text, A::Error> {
+                drain_seq(seq)?;
+                Ok(Text(None))
+            }
+            fn visit_map<A: MapAccess<'de>>(self, map: A) -> std::result::Result<Text, A::Error> {
+                drain_map(map)?;
+                Ok(Text(None))
+            }
+        }
+        deserializer.deserialize_any(V)
+    }
+}
+
+/// A list of non-negative integers, or `None` for anything else.
+struct Shape(Option<Vec<usize>>);
+
+impl<'de> Deserialize<'de> for Shape {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> std::result::Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = Shape;
+            fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                f.write_str("a list of non-negative integers")
+            }
+            not_this_kind!(Shape, Shape(None));
+            fn visit_str<E: de::Error>(self, _: &str) -> std::result::Result<Shape, E> {
+                Ok(Shape(None))
+            }
+            fn visit_map<A: MapAccess<'de>>(self, map: A) -> std::result::Result<Shape, A::Error> {
+                drain_map(map)?;
+                Ok(Shape(None))
+            }
+            fn visit_seq<A: SeqAccess<'de>>(
+                self,
+                mut seq: A,
+            ) -> std::result::Result<Shape, A::Error> {
+                let mut dims = Vec::new();
+                let mut valid = true;
+                while let Some(d) = seq.next_element::<Dimension>()? {
+                    match d.0 {
+                        Some(d) if valid => dims.push(d),
+                        _ => valid = false,
+                    }
+                }
+                Ok(Shape(valid.then_some(dims)))
+            }
+        }
+        deserializer.deserialize_any(V)
+    }
+}
+
+/// One dimension: a non-negative integer that fits `usize`, or `None`.
+struct Dimension(Option<usize>);
+
+impl<'de> Deserialize<'de> for Dimension {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> std::result::Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = Dimension;
+            fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                f.write_str("a non-negative integer")
+            }
+            fn visit_bool<E: de::Error>(self, _: bool) -> std::result::Result<Dimension, E> {
+                Ok(Dimension(None))
+            }
+            fn visit_i64<E: de::Error>(self, v: i64) -> std::result::Result<Dimension, E> {
+                Ok(Dimension(usize::try_from(v).ok()))
+            }
+            fn visit_u64<E: de::Error>(self, v: u64) -> std::result::Result<Dimension, E> {
+                Ok(Dimension(usize::try_from(v).ok()))
+            }
+            fn visit_f64<E: de::Error>(self, _: f64) -> std::result::Result<Dimension, E> {
+                Ok(Dimension(None))
+            }
+            fn visit_str<E: de::Error>(self, _: &str) -> std::result::Result<Dimension, E> {
+                Ok(Dimension(None))
+            }
+            fn visit_unit<E: de::Error>(self) -> std::result::Result<Dimension, E> {
+                Ok(Dimension(None))
+            }
+            fn visit_seq<A: SeqAccess<'de>>(
+                self,
+                seq: A,
+            ) -> std::result::Result<Dimension, A::Error> {
+                drain_seq(seq)?;
+                Ok(Dimension(None))
+            }
+            fn visit_map<A: MapAccess<'de>>(
+                self,
+                map: A,
+            ) -> std::result::Result<Dimension, A::Error> {
+                drain_map(map)?;
+                Ok(Dimension(None))
+            }
+        }
+        deserializer.deserialize_any(V)
+    }
+}
+
+/// A flat list of numbers (and `"inf"`, `"-inf"`, `"nan"`), parsed straight to f64;
+/// `None` when it is not a list.
+struct ValueList(Option<Values>);
+
+impl<'de> Deserialize<'de> for ValueList {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> std::result::Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = ValueList;
+            fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                f.write_str("a flat list of numbers")
+            }
+            not_this_kind!(ValueList, ValueList(None));
+            fn visit_str<E: de::Error>(self, _: &str) -> std::result::Result<ValueList, E> {
+                Ok(ValueList(None))
+            }
+            fn visit_map<A: MapAccess<'de>>(
+                self,
+                map: A,
+            ) -> std::result::Result<ValueList, A::Error> {
+                drain_map(map)?;
+                Ok(ValueList(None))
+            }
+            fn visit_seq<A: SeqAccess<'de>>(
+                self,
+                mut seq: A,
+            ) -> std::result::Result<ValueList, A::Error> {
+                let mut values = Values::default();
+                let mut index = 0;
+                while let Some(x) = seq.next_element::<Number>()? {
+                    match x.0 {
+                        Some(x) => values.parsed.push(x),
+                        None if values.first_bad.is_none() => values.first_bad = Some(index),
+                        None => {}
+                    }
+                    index += 1;
+                }
+                Ok(ValueList(Some(values)))
+            }
+        }
+        deserializer.deserialize_any(V)
+    }
+}
+
+/// One element of `values`: a number or one of the non-finite spellings; `None` for
+/// anything else.
+struct Number(Option<f64>);
+
+impl<'de> Deserialize<'de> for Number {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> std::result::Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = Number;
+            fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                f.write_str("a number")
+            }
+            fn visit_bool<E: de::Error>(self, _: bool) -> std::result::Result<Number, E> {
+                Ok(Number(None))
+            }
+            fn visit_i64<E: de::Error>(self, v: i64) -> std::result::Result<Number, E> {
+                Ok(Number(Some(v as f64)))
+            }
+            fn visit_u64<E: de::Error>(self, v: u64) -> std::result::Result<Number, E> {
+                Ok(Number(Some(v as f64)))
+            }
+            fn visit_f64<E: de::Error>(self, v: f64) -> std::result::Result<Number, E> {
+                Ok(Number(Some(v)))
+            }
+            fn visit_str<E: de::Error>(self, v: &str) -> std::result::Result<Number, E> {
+                Ok(Number(match v {
+                    "inf" | "+inf" => Some(f64::INFINITY),
+                    "-inf" => Some(f64::NEG_INFINITY),
+                    "nan" => Some(f64::NAN),
+                    _ => None,
+                }))
+            }
+            fn visit_unit<E: de::Error>(self) -> std::result::Result<Number, E> {
+                Ok(Number(None))
+            }
+            fn visit_seq<A: SeqAccess<'de>>(self, seq: A) -> std::result::Result<Number, A::Error> {
+                drain_seq(seq)?;
+                Ok(Number(None))
+            }
+            fn visit_map<A: MapAccess<'de>>(self, map: A) -> std::result::Result<Number, A::Error> {
+                drain_map(map)?;
+                Ok(Number(None))
+            }
+        }
+        deserializer.deserialize_any(V)
+    }
 }

@@ -1,7 +1,10 @@
 //! Offline verification: compare a results directory with a vectors directory.
 //!
 //! Every vector file is one case. A missing, malformed or mis-shaped result makes that
-//! case an error naming the file and field; the other cases still run.
+//! case an error naming the file and field; the other cases still run. Only regular
+//! files are read (a FIFO or a device in either directory is refused by type, never
+//! opened for reading), a result file larger than its case can need is refused
+//! unread, and `<id>.json` and `<id>.<output>.npy` that both hold an output must agree.
 
 use std::collections::BTreeSet;
 use std::path::Path;
@@ -9,7 +12,7 @@ use std::path::Path;
 use crate::compare::{budgets, compare_with_budgets, CaseReport, CompareOptions};
 use crate::error::{Error, Result};
 use crate::report::Report;
-use crate::vector::{read_results, vector_files, VectorFile, INDEX_FILE};
+use crate::vector::{read_results_for, vector_files, VectorFile, INDEX_FILE};
 
 /// Verifies every case of `vectors` against `results`.
 ///
@@ -31,6 +34,7 @@ pub fn verify(vectors: &Path, results: &Path, options: &CompareOptions) -> Resul
         cases: Vec::new(),
         notes: Vec::new(),
         never_exercised: Vec::new(),
+        random: Default::default(),
     };
     let mut known = BTreeSet::new();
     for file in &files {
@@ -74,7 +78,7 @@ pub fn verify(vectors: &Path, results: &Path, options: &CompareOptions) -> Resul
 pub fn verify_one(vector: &VectorFile, results: &Path, options: &CompareOptions) -> CaseReport {
     let case = &vector.case;
     let outputs: Vec<&str> = case.output_shapes().iter().map(|(n, _)| *n).collect();
-    let got = match read_results(results, &case.id, &outputs) {
+    let got = match read_results_for(results, case) {
         Ok(Some(got)) => got,
         Ok(None) => {
             let npy: Vec<String> = outputs

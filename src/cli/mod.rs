@@ -39,10 +39,12 @@ enum Command {
         /// Suite to write: core (small, committed) or long (large, generated on demand).
         #[arg(long, default_value = "core")]
         suite: String,
-        /// Directory to write into; stale vector files there are removed.
+        /// Directory to write into. Only files an earlier emit listed in DIR/index.json
+        /// are replaced or removed; any other file in the way is an error.
         #[arg(long)]
         out: PathBuf,
-        /// Budget factor c: a kernel may make c times the same-precision baseline's error.
+        /// Budget factor c (finite, >= 1): a kernel may make c times the same-precision
+        /// baseline's error.
         #[arg(long, default_value_t = 2.0)]
         factor: f64,
     },
@@ -85,19 +87,20 @@ struct CheckArgs {
     /// Random cases after the suite (default 200; 0 turns fuzzing off).
     #[arg(long)]
     fuzz: Option<usize>,
-    /// Stop fuzzing after this many seconds.
+    /// Stop fuzzing after this many seconds (0 to 604800).
     #[arg(long, value_name = "SECONDS")]
     fuzz_time: Option<f64>,
     /// Seed of the fuzzer; the same seed gives the same cases.
     #[arg(long, default_value_t = 0x5eed)]
     seed: u64,
-    /// Seconds the kernel may take to answer one request.
+    /// Seconds the kernel may take to read one request and answer it (more than 0, at
+    /// most 604800). On a timeout the kernel and every process it started are stopped.
     #[arg(long, default_value_t = 30.0)]
     timeout: f64,
     /// Directory where minimal failing cases are saved as vector files.
     #[arg(long, value_name = "DIR", default_value = "posconform-failures")]
     save_failures: PathBuf,
-    /// Append the kernel's stderr to this file.
+    /// Append the kernel's stderr to this file (an error if it cannot be written).
     #[arg(long, value_name = "FILE")]
     kernel_log: Option<PathBuf>,
     /// Record every protocol line sent and received in this file.
@@ -138,7 +141,7 @@ struct OutputArgs {
     /// probabilities output into this directory.
     #[arg(long, value_name = "DIR")]
     svg: Option<PathBuf>,
-    /// Budget factor c against the same-precision baseline.
+    /// Budget factor c (finite, >= 1) against the same-precision baseline.
     #[arg(long, default_value_t = 2.0)]
     factor: f64,
     /// Derive budgets for this dtype instead of the one the kernel declares (a looser
@@ -184,6 +187,7 @@ fn dispatch(command: Command) -> anyhow::Result<u8> {
         } => emit(&name, &out, factor),
         Command::Verify(args) => {
             let options = compare_options(&args.output)?;
+            check_report_paths(&args.output)?;
             let report = posconform::verify::verify(&args.vectors, &args.results, &options)?;
             finish(&report, &args.output, "")
         }
@@ -200,14 +204,94 @@ fn serve(kernel: &mut dyn posconform::kernel::Kernel) -> anyhow::Result<u8> {
     Ok(0)
 }
 
-fn check(args: CheckArgs) -> anyhow::Result<u8> {
-    let compare = compare_options(&args.output)?;
-    if !(args.timeout.is_finite() && args.timeout > 0.0) {
+/// The longest time option accepted: one week.
+const MAX_SECONDS: f64 = 604_800.0;
+
+/// A time option in seconds: finite, from 0 (or more than 0) to [`MAX_SECONDS`].
+fn seconds(option: &str, value: f64, zero_allowed: bool) -> anyhow::Result<std::time::Duration> {
+    let low_ok = if zero_allowed {
+        value >= 0.0
+    } else {
+        value > 0.0
+    };
+    if !(value.is_finite() && low_ok && value <= MAX_SECONDS) {
+        let low = if zero_allowed {
+            "from 0"
+        } else {
+            "more than 0"
+        };
         bail!(
-            "--timeout must be a positive number of seconds, given {}",
-            args.timeout
+            "{option} must be a number of seconds {low} to {MAX_SECONDS} (one week), given {value}"
         );
     }
+    std::time::Duration::try_from_secs_f64(value)
+        .with_context(|| format!("{option}: {value} seconds"))
+}
+
+fn factor_ok(factor: f64) -> anyhow::Result<()> {
+    if !(factor.is_finite() && factor >= 1.0) {
+        bail!("--factor must be a finite number >= 1, given {factor}");
+    }
+    Ok(())
+}
+
+/// Report files and directories are checked before the run, so a bad path costs
+/// nothing: no report is lost to it and the exit code still tells the verdict.
+fn check_report_paths(args: &OutputArgs) -> anyhow::Result<()> {
+    for (option, path) in [("--json", &args.json), ("--junit", &args.junit)] {
+        if let Some(path) = path {
+            posconform::files::check_output_file(path)
+                .with_context(|| format!("{option} {}", path.display()))?;
+        }
+    }
+    if let Some(dir) = &args.svg {
+        posconform::files::check_output_dir(dir)
+            .with_context(|| format!("--svg {}", dir.display()))?;
+    }
+    Ok(())
+}
+
+/// Installs the handler that stops the kernels when posconform gets SIGINT, SIGTERM or
+/// SIGHUP: the first signal is forwarded to them (the run then ends with the results
+/// it has), a second one kills them and exits at once.
+#[cfg(unix)]
+fn forward_signals() -> anyhow::Result<()> {
+    use signal_hook::consts::{SIGHUP, SIGINT, SIGTERM};
+    let mut signals = signal_hook::iterator::Signals::new([SIGINT, SIGTERM, SIGHUP])
+        .context("installing the signal handler")?;
+    std::thread::spawn(move || {
+        let mut first = true;
+        for signal in signals.forever() {
+            if first {
+                first = false;
+                eprintln!(
+                    "posconform: signal {signal}: stopping the kernel (send it again to quit at once)"
+                );
+                std::thread::spawn(move || posconform::kernel::stdio::interrupt(signal));
+            } else {
+                posconform::kernel::stdio::kill_all_now();
+                std::process::exit(i32::from(EXIT_COULD_NOT_RUN));
+            }
+        }
+    });
+    Ok(())
+}
+
+#[cfg(not(unix))]
+fn forward_signals() -> anyhow::Result<()> {
+    Ok(())
+}
+
+fn check(args: CheckArgs) -> anyhow::Result<u8> {
+    let compare = compare_options(&args.output)?;
+    let timeout = seconds("--timeout", args.timeout, false)?;
+    let fuzz_time = match args.fuzz_time {
+        Some(t) => Some(seconds("--fuzz-time", t, true)?),
+        None => None,
+    };
+    check_report_paths(&args.output)?;
+    posconform::files::check_output_dir(&args.save_failures)
+        .with_context(|| format!("--save-failures {}", args.save_failures.display()))?;
     let cases = if args.case.is_empty() {
         suite(&args.suite)?
     } else {
@@ -219,23 +303,17 @@ fn check(args: CheckArgs) -> anyhow::Result<u8> {
     let fuzz_cases = args
         .fuzz
         .unwrap_or(if args.case.is_empty() { 200 } else { 0 });
-    let fuzz_time = match args.fuzz_time {
-        Some(t) if !(t.is_finite() && t >= 0.0) => {
-            bail!("--fuzz-time must be a number of seconds >= 0, given {t}")
-        }
-        Some(t) => Some(std::time::Duration::from_secs_f64(t)),
-        None => None,
-    };
     let argv = posconform::kernel::stdio::split_command(&args.kernel)?;
-    let mut kernel = posconform::kernel::stdio::StdioKernel::new(
-        argv,
-        std::time::Duration::from_secs_f64(args.timeout),
-    );
+    let mut kernel = posconform::kernel::stdio::StdioKernel::new(argv, timeout);
     if let Some(log) = &args.kernel_log {
-        kernel = kernel.with_log(log.clone());
+        kernel = kernel
+            .with_log(log)
+            .with_context(|| format!("--kernel-log {}", log.display()))?;
     }
     if let Some(trace) = &args.trace {
-        kernel = kernel.with_trace(trace)?;
+        kernel = kernel
+            .with_trace(trace)
+            .with_context(|| format!("--trace {}", trace.display()))?;
     }
     let options = posconform::check::CheckOptions {
         compare,
@@ -245,9 +323,24 @@ fn check(args: CheckArgs) -> anyhow::Result<u8> {
         save_dir: Some(args.save_failures.clone()),
         ..Default::default()
     };
-    let outcome = run_check(&mut kernel, &cases, &options, args.quiet)?;
+    forward_signals()?;
+    let mut outcome = run_check(&mut kernel, &cases, &options, args.quiet)?;
+    // The kernel (and whatever it started) is stopped before the reports are written.
+    let log_problem = kernel.log_problem();
+    drop(kernel);
+    if let Some(problem) = &log_problem {
+        outcome
+            .report
+            .notes
+            .push(format!("the kernel log is incomplete: {problem}"));
+    }
     let extra = report::text::render_minimal(&outcome.minimal);
-    finish(&outcome.report, &args.output, &extra)
+    let code = finish(&outcome.report, &args.output, &extra)?;
+    if let Some(problem) = log_problem {
+        eprintln!("posconform: error: the kernel log is incomplete: {problem}");
+        return Ok(code.max(EXIT_COULD_NOT_RUN));
+    }
+    Ok(code)
 }
 
 fn run_check(
@@ -261,11 +354,11 @@ fn run_check(
         indicatif::ProgressBar::hidden()
     } else {
         let bar = indicatif::ProgressBar::new(0);
-        bar.set_style(
+        if let Ok(style) =
             indicatif::ProgressStyle::with_template("{prefix:>7} [{bar:30}] {pos}/{len} {elapsed}")
-                .expect("valid template")
-                .progress_chars("=> "),
-        );
+        {
+            bar.set_style(style.progress_chars("=> "));
+        }
         bar
     };
     let started = std::time::Instant::now();
@@ -286,6 +379,13 @@ fn run_check(
 fn demo(fuzz: usize, seed: u64) -> anyhow::Result<u8> {
     let exe = std::env::current_exe()
         .context("finding the posconform executable to start the demo kernel")?;
+    // A fresh private directory (unpredictable name, owner-only) for the minimal
+    // failing cases, kept after the run so the printed replay commands work.
+    let save = tempfile::Builder::new()
+        .prefix("posconform-demo-")
+        .tempdir()
+        .context("creating a private temporary directory for the demo's failing cases")?
+        .keep();
     println!(
         "Demo: Brightwater Audio (a fictional team) is porting Kestrel-XL, a streaming captioning\n\
          model with Transformer-XL relative attention and segment memory, to their Tern runtime.\n\
@@ -295,14 +395,15 @@ fn demo(fuzz: usize, seed: u64) -> anyhow::Result<u8> {
     let argv = vec![exe.display().to_string(), "__demo-kernel".to_string()];
     let mut kernel =
         posconform::kernel::stdio::StdioKernel::new(argv, std::time::Duration::from_secs(30));
-    let save = std::env::temp_dir().join("posconform-demo-failures");
     let options = posconform::check::CheckOptions {
         fuzz_cases: fuzz,
         seed,
         save_dir: Some(save),
         ..Default::default()
     };
+    forward_signals()?;
     let outcome = run_check(&mut kernel, &suite("core")?, &options, false)?;
+    drop(kernel);
     let mut out = std::io::stdout().lock();
     out.write_all(report::text::render(&outcome.report).as_bytes())?;
     out.write_all(report::text::render_minimal(&outcome.minimal).as_bytes())?;
@@ -323,12 +424,7 @@ fn demo(fuzz: usize, seed: u64) -> anyhow::Result<u8> {
 }
 
 fn compare_options(args: &OutputArgs) -> anyhow::Result<CompareOptions> {
-    if !(args.factor.is_finite() && args.factor >= 1.0) {
-        bail!(
-            "--factor must be a finite number >= 1, given {}",
-            args.factor
-        );
-    }
+    factor_ok(args.factor)?;
     Ok(CompareOptions {
         factor: args.factor,
         budget_dtype: args.budget_dtype,
@@ -365,11 +461,12 @@ fn list(name: Option<&str>) -> anyhow::Result<u8> {
 }
 
 fn emit(name: &str, out: &Path, factor: f64) -> anyhow::Result<u8> {
+    factor_ok(factor)?;
     let cases = suite(name)?;
-    let written = posconform::vector::emit_suite(name, &cases, out, factor)
+    let emitted = posconform::vector::emit_into(name, &cases, out, factor)
         .with_context(|| format!("writing suite {name} to {}", out.display()))?;
-    let removed = remove_stale(out, &written)?;
-    let bytes: u64 = written
+    let bytes: u64 = emitted
+        .written
         .iter()
         .filter_map(|p| std::fs::metadata(p).ok())
         .map(|m| m.len())
@@ -378,41 +475,18 @@ fn emit(name: &str, out: &Path, factor: f64) -> anyhow::Result<u8> {
         "wrote {} cases of suite {name} to {} ({} files, {:.1} MB){}",
         cases.len(),
         out.display(),
-        written.len(),
+        emitted.written.len(),
         bytes as f64 / 1e6,
-        if removed > 0 {
-            format!("; removed {removed} stale files")
-        } else {
+        if emitted.removed.is_empty() {
             String::new()
+        } else {
+            format!(
+                "; removed {} files an earlier emit had written",
+                emitted.removed.len()
+            )
         }
     );
     Ok(0)
-}
-
-/// Removes vector files (and their side files) that an earlier emit left and this one
-/// did not write, so a regenerated directory holds exactly the suite.
-fn remove_stale(dir: &Path, written: &[PathBuf]) -> anyhow::Result<usize> {
-    let mut removed = 0;
-    for entry in std::fs::read_dir(dir).with_context(|| format!("listing {}", dir.display()))? {
-        let path = entry?.path();
-        if written.contains(&path) {
-            continue;
-        }
-        let ours = match path.extension().and_then(|x| x.to_str()) {
-            Some("json") => std::fs::read_to_string(&path)
-                .is_ok_and(|t| t.contains("\"format\": \"posconform.")),
-            Some("npy") => path
-                .file_name()
-                .is_some_and(|n| n.to_string_lossy().matches('.').count() >= 3),
-            _ => false,
-        };
-        if ours {
-            std::fs::remove_file(&path)
-                .with_context(|| format!("removing stale {}", path.display()))?;
-            removed += 1;
-        }
-    }
-    Ok(removed)
 }
 
 /// Prints the report (text followed by `extra`), writes the requested files, and

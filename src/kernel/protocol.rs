@@ -1,15 +1,18 @@
 //! Protocol v1 messages (docs/protocol.md) and the server side: [`serve`] answers the
 //! harness on stdin/stdout for any [`Kernel`], so a Rust kernel plugs in with one call.
 
+use std::collections::BTreeMap;
 use std::io::{BufRead, Write};
 
+use serde::Deserialize as _;
+use serde_json::value::RawValue;
 use serde_json::{json, Map, Value};
 
 use crate::case::{Arrays, Case};
-use crate::error::{Error, Result};
+use crate::error::{Error, KernelErrorKind, Result};
 use crate::kernel::{Answer, Kernel, KernelInfo};
 use crate::precision::Dtype;
-use crate::tensor::Tensor;
+use crate::tensor::{Tensor, WireArray};
 
 /// The protocol version this build speaks.
 pub const PROTOCOL_VERSION: u64 = 1;
@@ -50,20 +53,115 @@ pub fn handshake_result(info: &KernelInfo) -> Value {
     })
 }
 
+/// What a kernel said in answer to one request, parsed from one stdout line.
+#[derive(Debug)]
+pub enum Reply<'a> {
+    /// The `result` member, still as JSON text (parsed by the caller into typed data).
+    Result(&'a RawValue),
+    /// A JSON-RPC error object.
+    Error {
+        /// Its `code` (0 when missing or not an integer).
+        code: i64,
+        /// Its `message`.
+        message: String,
+    },
+}
+
+/// The members of a response the harness reads; anything else is ignored. `result`
+/// stays raw text so a large reply is parsed once, straight into typed arrays.
+#[derive(serde::Deserialize)]
+#[serde(expecting = "a JSON-RPC response object")]
+struct Envelope<'a> {
+    #[serde(borrow, default)]
+    id: Option<&'a RawValue>,
+    #[serde(borrow, default)]
+    result: Option<&'a RawValue>,
+    #[serde(default)]
+    error: Option<Value>,
+}
+
+/// Parses one stdout line as the response to request `id` of `method`; `who` names
+/// the kernel. Anything else is an [`Error::Kernel`] of kind
+/// [`KernelErrorKind::Garbage`] that keeps the JSON parser's own reason.
+pub fn parse_reply<'a>(line: &'a [u8], id: u64, method: &str, who: &str) -> Result<Reply<'a>> {
+    let garbage = |reason: String| Error::kernel(KernelErrorKind::Garbage, who, reason);
+    let quote = |line: &[u8]| {
+        let end = line.len().min(200);
+        let mut shown = String::from_utf8_lossy(&line[..end]).trim().to_string();
+        if line.len() > end {
+            shown.push_str(" ...");
+        }
+        shown
+    };
+    let envelope: Envelope<'a> = serde_json::from_slice(line).map_err(|e| {
+        garbage(format!(
+            "printed something that is not a JSON-RPC response on stdout (answering `{method}`): {e}: {:?}",
+            quote(line)
+        ))
+    })?;
+    let wanted = Value::from(id);
+    let given: Option<Value> = envelope
+        .id
+        .and_then(|raw| serde_json::from_str(raw.get()).ok());
+    if given.as_ref() != Some(&wanted) {
+        let given = envelope.id.map_or("no id".to_string(), |raw| {
+            format!("id {}", quote(raw.get().as_bytes()))
+        });
+        return Err(garbage(format!(
+            "answered `{method}` request {id} with {given}"
+        )));
+    }
+    if let Some(error) = envelope.error.filter(|e| !e.is_null()) {
+        let code = error.get("code").and_then(Value::as_i64).unwrap_or(0);
+        let message = match error.get("message") {
+            Some(Value::String(m)) => m.clone(),
+            Some(other) => other.to_string(),
+            None => String::new(),
+        };
+        return Ok(Reply::Error { code, message });
+    }
+    match envelope.result {
+        Some(result) => Ok(Reply::Result(result)),
+        None => Err(garbage(format!(
+            "reply to `{method}` has neither `result` nor `error`"
+        ))),
+    }
+}
+
 /// Parses a handshake result; `who` names the kernel in errors.
 pub fn parse_handshake(result: &Value, who: &str) -> Result<KernelInfo> {
-    let bad = |reason: String| Error::Kernel {
-        kernel: who.to_string(),
-        reason: format!("handshake: {reason}"),
+    let bad = |reason: String| {
+        Error::kernel(
+            KernelErrorKind::Handshake,
+            who,
+            format!("handshake: {reason}"),
+        )
     };
-    match result.get("protocol").and_then(Value::as_u64) {
-        Some(PROTOCOL_VERSION) => {}
-        Some(v) => {
+    match result.get("protocol") {
+        Some(Value::Number(n)) if n.as_u64() == Some(PROTOCOL_VERSION) => {}
+        Some(Value::Number(n)) => {
             return Err(bad(format!(
-                "speaks protocol {v}; this build speaks {PROTOCOL_VERSION}"
+                "speaks protocol {n}; this build speaks {PROTOCOL_VERSION} (the JSON integer {PROTOCOL_VERSION})"
             )))
         }
-        None => return Err(bad("missing `protocol`".into())),
+        Some(Value::String(text)) => {
+            return Err(bad(format!(
+                "gives `protocol` as the string {:?}; this build speaks protocol {PROTOCOL_VERSION}, written as the JSON integer {PROTOCOL_VERSION}",
+                text.chars().take(40).collect::<String>()
+            )))
+        }
+        Some(other) => {
+            let mut shown = other.to_string();
+            shown.truncate(60);
+            return Err(bad(format!(
+                "`protocol` is {shown}; this build speaks protocol {PROTOCOL_VERSION}, written as the JSON integer {PROTOCOL_VERSION}"
+            )));
+        }
+        None => {
+            return Err(bad(format!(
+                "missing `protocol` (this build speaks protocol {PROTOCOL_VERSION})"
+            )))
+        }
     }
     let text = |field: &str| {
         result
@@ -98,28 +196,58 @@ pub fn parse_handshake(result: &Value, who: &str) -> Result<KernelInfo> {
     })
 }
 
-/// Parses a `run` result into outputs; `who` names the kernel in errors.
-pub fn parse_outputs(result: &Value, who: &str) -> Result<Answer> {
+/// The members of a `run` result the harness reads, parsed in one pass into typed
+/// arrays.
+#[derive(serde::Deserialize)]
+#[serde(expecting = "a run result object {outputs, elapsed_ms}")]
+struct RunResult {
+    #[serde(default)]
+    outputs: Option<BTreeMap<String, WireArray>>,
+    #[serde(default)]
+    elapsed_ms: Option<Value>,
+}
+
+fn outputs_of(result: RunResult, who: &str) -> Result<Answer> {
+    let malformed = |reason: String| Error::kernel(KernelErrorKind::MalformedResult, who, reason);
     let object = result
-        .get("outputs")
-        .and_then(Value::as_object)
-        .ok_or_else(|| Error::Kernel {
-            kernel: who.to_string(),
-            reason: "run result has no `outputs` object".into(),
-        })?;
+        .outputs
+        .ok_or_else(|| malformed("run result has no `outputs` object".into()))?;
     let mut outputs = Arrays::new();
-    for (name, v) in object {
-        let tensor = Tensor::from_json(v, &format!("kernel reply, field `outputs.{name}`"))
-            .map_err(|e| Error::Kernel {
-                kernel: who.to_string(),
-                reason: format!("malformed reply: {e}"),
-            })?;
-        outputs.insert(name.clone(), tensor);
+    for (name, wire) in object {
+        let tensor = wire
+            .into_tensor(&format!("kernel reply, field `outputs.{name}`"))
+            .map_err(|e| malformed(format!("malformed reply: {e}")))?;
+        outputs.insert(name, tensor);
     }
     Ok(Answer::Outputs {
         outputs,
-        elapsed_ms: result.get("elapsed_ms").and_then(Value::as_f64),
+        elapsed_ms: result.elapsed_ms.as_ref().and_then(Value::as_f64),
     })
+}
+
+/// Parses a `run` result (the raw `result` text of a reply) into outputs; `who` names
+/// the kernel in errors.
+pub fn parse_run_result(result: &RawValue, who: &str) -> Result<Answer> {
+    let parsed: RunResult = serde_json::from_str(result.get()).map_err(|e| {
+        Error::kernel(
+            KernelErrorKind::MalformedResult,
+            who,
+            format!("malformed run result: {e}"),
+        )
+    })?;
+    outputs_of(parsed, who)
+}
+
+/// Parses a `run` result into outputs; `who` names the kernel in errors.
+pub fn parse_outputs(result: &Value, who: &str) -> Result<Answer> {
+    let parsed = RunResult::deserialize(result).map_err(|e| {
+        Error::kernel(
+            KernelErrorKind::MalformedResult,
+            who,
+            format!("malformed run result: {e}"),
+        )
+    })?;
+    outputs_of(parsed, who)
 }
 
 fn response(id: &Value, outcome: std::result::Result<Value, (i64, String)>) -> String {
@@ -136,12 +264,20 @@ fn response(id: &Value, outcome: std::result::Result<Value, (i64, String)>) -> S
 /// line per request to `output`, returns on `shutdown` or end of input.
 pub fn serve(kernel: &mut dyn Kernel, input: impl BufRead, mut output: impl Write) -> Result<()> {
     let io = |e| Error::io("write", std::path::Path::new("<stdout>"), e);
-    for line in input.lines() {
-        let line = line.map_err(|e| Error::io("read", std::path::Path::new("<stdin>"), e))?;
-        if line.trim().is_empty() {
+    let mut input = input;
+    let mut bytes = Vec::new();
+    loop {
+        bytes.clear();
+        let read = input
+            .read_until(b'\n', &mut bytes)
+            .map_err(|e| Error::io("read", std::path::Path::new("<stdin>"), e))?;
+        if read == 0 {
+            break;
+        }
+        if bytes.iter().all(u8::is_ascii_whitespace) {
             continue;
         }
-        let message: Value = match serde_json::from_str(&line) {
+        let message: Value = match serde_json::from_slice(&bytes) {
             Ok(m) => m,
             Err(e) => {
                 writeln!(

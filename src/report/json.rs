@@ -21,6 +21,7 @@
 //!       "faults": [1, 2],
 //!       "memory_len": 4,
 //!       "query_len": 9,
+//!       "random": false,
 //!       "verdict": { "kind": "fail" },
 //!       "warnings": [],
 //!       "outputs": [
@@ -45,10 +46,12 @@
 //! (docs/protocol.md, "Capabilities"); it is empty for `verify`.
 //!
 //! `verdict.kind` is `pass`, `fail`, `skipped` or `error`; the last two carry a
-//! `reason` string. `worst` is the element furthest over its own tolerance (`ratio` =
-//! `error / tolerance`), `null` when no element was compared. `dtype` is the dtype the
-//! kernel declared for the case (budgets follow it), `array_dtype` the dtype of the
-//! array it returned. `masking` is `null`
+//! `reason` string (for an error, the kernel's message and its last stderr lines).
+//! `random` is true for cases the fuzzer drew (and shrinking steps the kernel could not
+//! answer); they count in `counts` like every other case. `worst` is the element
+//! furthest over its own tolerance (`ratio` = `error / tolerance`), `null` when no
+//! element was compared. `dtype` is the dtype the kernel declared for the case (budgets
+//! follow it), `array_dtype` the dtype of the array it returned. `masking` is `null`
 //! for outputs that have no masked entries by construction.
 //!
 //! Non-finite numbers: JSON numbers cannot express infinities or NaN (serde_json would
@@ -81,7 +84,11 @@ pub fn render(report: &Report) -> String {
         counts: report.counts(),
         notes: &report.notes,
         never_exercised: &report.never_exercised,
-        cases: report.cases.iter().map(CaseDocument::from).collect(),
+        cases: report
+            .cases
+            .iter()
+            .map(|c| CaseDocument::new(c, report.random.contains(&c.case)))
+            .collect(),
     };
     // Every field is a string, integer, bool or finite-or-string real, so
     // serialisation cannot fail; a panic here would be a bug in this module.
@@ -135,13 +142,14 @@ struct CaseDocument<'a> {
     faults: &'a [u8],
     memory_len: usize,
     query_len: usize,
+    random: bool,
     verdict: &'a Verdict,
     warnings: &'a [String],
     outputs: Vec<OutputDocument<'a>>,
 }
 
-impl<'a> From<&'a CaseReport> for CaseDocument<'a> {
-    fn from(case: &'a CaseReport) -> Self {
+impl<'a> CaseDocument<'a> {
+    fn new(case: &'a CaseReport, random: bool) -> Self {
         CaseDocument {
             id: &case.case,
             scheme: &case.scheme,
@@ -149,6 +157,7 @@ impl<'a> From<&'a CaseReport> for CaseDocument<'a> {
             faults: &case.faults,
             memory_len: case.memory_len,
             query_len: case.query_len,
+            random,
             verdict: &case.verdict,
             warnings: &case.warnings,
             outputs: case.outputs.iter().map(OutputDocument::from).collect(),

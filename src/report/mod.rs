@@ -3,10 +3,7 @@
 //! Every renderer is a pure function from a [`Report`] to text; writing files is the
 //! caller's job (atomically, through [`write_atomic`]).
 
-use std::path::Path;
-
 use crate::compare::{CaseReport, Verdict};
-use crate::error::{Error, Result};
 
 pub mod json;
 pub mod junit;
@@ -34,6 +31,10 @@ pub struct Report {
     pub notes: Vec<String>,
     /// What no compared case covered (`check` only; docs/protocol.md, "Capabilities").
     pub never_exercised: Vec<crate::kernel::capability::Gap>,
+    /// Ids of the cases in `cases` that the fuzzer drew at random (and the shrinking
+    /// steps the kernel could not answer). They count like every other case; the text
+    /// report summarises the ones that passed or failed and lists each error.
+    pub random: std::collections::BTreeSet<String>,
 }
 
 /// How many cases ended each way.
@@ -64,13 +65,17 @@ impl Report {
         c
     }
 
-    /// [`EXIT_NONCONFORMING`] if any case failed; otherwise [`EXIT_COULD_NOT_RUN`] if any
-    /// case could not be compared or none passed; otherwise [`EXIT_CONFORMING`].
+    /// [`EXIT_COULD_NOT_RUN`] if any case could not be compared (a verdict is then
+    /// incomplete, whatever else failed) or, with no failure, if none passed;
+    /// otherwise [`EXIT_NONCONFORMING`] if any case failed; otherwise
+    /// [`EXIT_CONFORMING`].
     pub fn exit_code(&self) -> u8 {
         let c = self.counts();
-        if c.failed > 0 {
+        if c.errors > 0 {
+            EXIT_COULD_NOT_RUN
+        } else if c.failed > 0 {
             EXIT_NONCONFORMING
-        } else if c.errors > 0 || c.passed == 0 {
+        } else if c.passed == 0 {
             EXIT_COULD_NOT_RUN
         } else {
             EXIT_CONFORMING
@@ -78,22 +83,21 @@ impl Report {
     }
 }
 
-/// Writes `contents` to `path` through a temporary file in the same directory and a
-/// rename, so a reader never sees a half-written report.
-pub fn write_atomic(path: &Path, contents: &[u8]) -> Result<()> {
-    let dir = path
-        .parent()
-        .filter(|p| !p.as_os_str().is_empty())
-        .unwrap_or(Path::new("."));
-    std::fs::create_dir_all(dir).map_err(|e| Error::io("create", dir, e))?;
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
-    let temp = dir.join(format!(".{name}.tmp{}", std::process::id()));
-    std::fs::write(&temp, contents).map_err(|e| Error::io("write", &temp, e))?;
-    std::fs::rename(&temp, path).map_err(|e| {
-        let _ = std::fs::remove_file(&temp);
-        Error::io("write", path, e)
-    })
+pub use crate::files::write_atomic;
+
+/// `text` with every control character (line breaks included), and the invisible
+/// characters that reorder text, written as a visible escape such as `\u{1b}`: what a
+/// kernel sends (names, messages, stderr) cannot move the cursor, recolour the
+/// terminal, or forge lines of a report.
+pub fn printable(text: &str) -> String {
+    let mut out = String::with_capacity(text.len());
+    for c in text.chars() {
+        let invisible = matches!(c, '\u{200e}' | '\u{200f}' | '\u{202a}'..='\u{202e}' | '\u{2066}'..='\u{2069}');
+        if c.is_control() || invisible {
+            out.extend(c.escape_unicode());
+        } else {
+            out.push(c);
+        }
+    }
+    out
 }

@@ -4,7 +4,12 @@
 use std::fmt::Write as _;
 
 use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
-use crate::report::Report;
+use crate::report::{printable, Report};
+
+/// Each line of `text` made printable (kernel messages, stderr lines).
+fn printable_lines(text: &str) -> impl Iterator<Item = String> + '_ {
+    text.lines().map(printable)
+}
 
 /// Names of the axes of an output, for "head 0, query 3, key 7" style coordinates.
 pub fn axis_names(case: &CaseReport, output: &str) -> &'static [&'static str] {
@@ -119,11 +124,17 @@ fn describe_masking(m: &Masking) -> String {
 /// Renders the whole report.
 pub fn render(report: &Report) -> String {
     let mut s = String::new();
-    let _ = writeln!(s, "posconform {}: {}", report.mode, report.subject);
+    let _ = writeln!(
+        s,
+        "posconform {}: {}",
+        printable(&report.mode),
+        printable(&report.subject)
+    );
     let _ = writeln!(s);
     let width = report
         .cases
         .iter()
+        .filter(|c| !report.random.contains(&c.case))
         .map(|c| c.case.len())
         .max()
         .unwrap_or(4)
@@ -135,8 +146,12 @@ pub fn render(report: &Report) -> String {
         "  {:<7} {:<width$}  {:<8} {:>10} {:>10} {:>9}  criterion",
         "verdict", "case", "output", "error", "tolerance", "err/tol"
     );
-    // Skipped cases are summarised per reason so they do not bury the findings.
+    // Skipped cases are summarised per reason, and random cases that passed or failed
+    // per scheme and operation, so they do not bury the findings; random cases that
+    // could not be compared are listed one by one like any other.
     let mut skipped: Vec<(&str, Vec<&str>)> = Vec::new();
+    let mut random_passed: Vec<&str> = Vec::new();
+    let mut random_failed: Vec<((&str, &str), Vec<&str>)> = Vec::new();
     for case in &report.cases {
         if let Verdict::Skipped(reason) = &case.verdict {
             match skipped.iter_mut().find(|(r, _)| r == reason) {
@@ -145,14 +160,31 @@ pub fn render(report: &Report) -> String {
             }
             continue;
         }
+        if report.random.contains(&case.case) {
+            match case.verdict {
+                Verdict::Pass => {
+                    random_passed.push(&case.case);
+                    continue;
+                }
+                Verdict::Fail => {
+                    let key = (case.scheme.as_str(), case.operation.as_str());
+                    match random_failed.iter_mut().find(|(k, _)| *k == key) {
+                        Some((_, ids)) => ids.push(&case.case),
+                        None => random_failed.push((key, vec![&case.case])),
+                    }
+                    continue;
+                }
+                _ => {}
+            }
+        }
         match (&case.verdict, worst_output(case)) {
             (Verdict::Pass | Verdict::Fail, Some(o)) => {
                 let _ = writeln!(
                     s,
                     "  {:<7} {:<width$}  {:<8} {:>10.2e} {:>10.2e} {:>9}  {}",
                     verdict_word(&case.verdict),
-                    case.case,
-                    o.name,
+                    printable(&case.case),
+                    printable(&o.name),
                     o.worst_error,
                     o.worst_tolerance,
                     format_ratio(o.worst_ratio),
@@ -164,8 +196,8 @@ pub fn render(report: &Report) -> String {
                     s,
                     "  {:<7} {:<width$}  {}",
                     verdict_word(&case.verdict),
-                    case.case,
-                    first_line(reason)
+                    printable(&case.case),
+                    printable(first_line(reason))
                 );
             }
             (v, None) => {
@@ -173,25 +205,57 @@ pub fn render(report: &Report) -> String {
                     s,
                     "  {:<7} {:<width$}  (no outputs)",
                     verdict_word(v),
-                    case.case
+                    printable(&case.case)
                 );
             }
         }
+    }
+    if !random_passed.is_empty() {
+        let _ = writeln!(
+            s,
+            "  {:<7} {} random {} within budget ({})",
+            "pass",
+            random_passed.len(),
+            if random_passed.len() == 1 {
+                "case"
+            } else {
+                "cases"
+            },
+            few(&random_passed)
+        );
+    }
+    for ((scheme, operation), ids) in &random_failed {
+        let _ = writeln!(
+            s,
+            "  {:<7} {} random {} {} {} over budget ({}); the shrunk case is below",
+            "FAIL",
+            ids.len(),
+            printable(scheme),
+            printable(operation),
+            if ids.len() == 1 { "case" } else { "cases" },
+            few(ids)
+        );
     }
     for (reason, ids) in &skipped {
         let noun = if ids.len() == 1 { "case" } else { "cases" };
         let _ = writeln!(
             s,
-            "  {:<7} {} {noun}: {reason} ({})",
+            "  {:<7} {} {noun}: {} ({})",
             "skip",
             ids.len(),
+            printable(first_line(reason)),
             few(ids)
         );
     }
     let findings: Vec<&CaseReport> = report
         .cases
         .iter()
-        .filter(|c| !matches!(c.verdict, Verdict::Pass | Verdict::Skipped(_)))
+        .filter(|c| match c.verdict {
+            Verdict::Pass | Verdict::Skipped(_) => false,
+            // A random failure is told by its shrunk form.
+            Verdict::Fail => !report.random.contains(&c.case),
+            Verdict::Error(_) => true,
+        })
         .collect();
     if !findings.is_empty() {
         let _ = writeln!(s, "\nFindings");
@@ -212,8 +276,9 @@ pub fn render(report: &Report) -> String {
     if !warnings.is_empty() {
         let _ = writeln!(s, "\nWarnings (read before trusting a pass)");
         for (w, ids) in &warnings {
+            let w = printable(w);
             if ids.len() == 1 {
-                let _ = writeln!(s, "  {}: {w}", ids[0]);
+                let _ = writeln!(s, "  {}: {w}", printable(ids[0]));
             } else {
                 let _ = writeln!(s, "  {} cases ({}): {w}", ids.len(), few(ids));
             }
@@ -222,7 +287,9 @@ pub fn render(report: &Report) -> String {
     if !report.notes.is_empty() {
         let _ = writeln!(s, "\nNotes");
         for n in &report.notes {
-            let _ = writeln!(s, "  {n}");
+            for line in printable_lines(n) {
+                let _ = writeln!(s, "  {line}");
+            }
         }
     }
     if !report.never_exercised.is_empty() {
@@ -285,7 +352,12 @@ fn wrap_list(s: &mut String, lead: &str, items: &[&str]) {
 
 /// Up to three ids, then how many more.
 fn few(ids: &[&str]) -> String {
-    let shown = ids.iter().take(3).copied().collect::<Vec<_>>().join(", ");
+    let shown = ids
+        .iter()
+        .take(3)
+        .map(|id| printable(id))
+        .collect::<Vec<_>>()
+        .join(", ");
     if ids.len() > 3 {
         format!("{shown} and {} more", ids.len() - 3)
     } else {
@@ -358,12 +430,12 @@ fn findings_of(s: &mut String, case: &CaseReport) {
         s,
         "  {} {} [{} {}]{targets}",
         verdict_word(&case.verdict),
-        case.case,
-        case.scheme,
-        case.operation
+        printable(&case.case),
+        printable(&case.scheme),
+        printable(&case.operation)
     );
     if let Verdict::Error(reason) = &case.verdict {
-        for line in reason.lines() {
+        for line in printable_lines(reason) {
             let _ = writeln!(s, "    {line}");
         }
     }

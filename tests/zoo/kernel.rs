@@ -312,9 +312,12 @@ impl Kernel for ZooKernel {
             Compute::F64 => Engine::<f64>::new(&self.variant, profile, case, dtype).run(inputs),
             Compute::F32 => Engine::<f32>::new(&self.variant, profile, case, dtype).run(inputs),
         }
-        .map_err(|reason| Error::Kernel {
-            kernel: self.variant.name.clone(),
-            reason: format!("case {}: {reason}", case.id),
+        .map_err(|reason| {
+            Error::kernel(
+                posconform::KernelErrorKind::Failed,
+                self.variant.name.clone(),
+                format!("case {}: {reason}", case.id),
+            )
         })?;
         Ok(Answer::Outputs {
             outputs,
