@@ -15,7 +15,7 @@ use posconform::alibi::{self, AlibiParams};
 use posconform::attention::dot_scores;
 use posconform::bucketed::{self, bucket, BucketedParams, Buckets};
 use posconform::clipped::{self, ClippedParams};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::Scale;
 
 const HEADS: usize = 8;

@@ -10,7 +10,7 @@
 use criterion::{black_box, criterion_group, criterion_main, Criterion};
 use ndarray::Array3;
 use posconform::attention::dot_scores;
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::rotary::{self, Pairing, Rotary, RotaryParams};
 use posconform::Scale;
 

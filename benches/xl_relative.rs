@@ -11,7 +11,7 @@ use std::time::Duration;
 
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion};
 use ndarray::{Array2, Array3, Axis};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::xl_relative::{scores, scores_naive, RelativeInputs, RelativeParams};
 
 struct Inputs {

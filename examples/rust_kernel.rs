@@ -18,7 +18,7 @@
 use ndarray::{Array1, Array3};
 use posconform::case::{Arrays, Case, Operation, SchemeSpec};
 use posconform::kernel::{Answer, Kernel, KernelInfo, Support};
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::rotary::{Pairing, RotaryScaling};
 use posconform::tensor::Tensor;
 use posconform::{Result, Scheme};

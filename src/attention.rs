@@ -13,7 +13,7 @@ use std::ops::Range;
 use ndarray::{Array2, Array3, ArrayView2, ArrayView3, Zip};
 
 use crate::error::{expect_shape, Error, Result};
-use crate::precision::gemm;
+use crate::math::product::gemm;
 
 /// The shape of one causal attention step: `L` current queries over `M` memory keys
 /// followed by the `L` current keys (docs/conventions.md).

@@ -34,8 +34,8 @@ use ndarray::{Array1, ArrayD, IxDyn};
 
 use crate::attention::Scale;
 use crate::error::{Error, Result};
-use crate::generate::Stream;
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
+use crate::math::stream::Stream;
 use crate::scheme::rotary::{Pairing, RotaryScaling};
 use crate::scheme::sinusoidal::SinusoidLayout;
 use crate::scheme::Scheme;

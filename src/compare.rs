@@ -27,7 +27,7 @@ use ndarray::{ArrayD, Dimension};
 
 use crate::case::{Arrays, Case, Operation};
 use crate::error::Result;
-use crate::precision::{ulp_distance, Dtype};
+use crate::math::precision::{ulp_distance, Dtype};
 use crate::reference::{self, Outputs};
 
 /// How to compare.
@@ -137,7 +137,7 @@ pub fn budgets(
         // it uses the probabilistic size sqrt(n)·u of a sum's rounding error (Higham and
         // Mary 2019, from memory), in the accumulation precision.
         let n = reference::reduction_length(case, name) as f64;
-        let floor = n.sqrt() * crate::precision::accumulation_gamma(dtype, 1) * largest;
+        let floor = n.sqrt() * crate::math::precision::accumulation_gamma(dtype, 1) * largest;
         out.insert(
             name.clone(),
             Budget {

@@ -17,7 +17,7 @@ use crate::attention::{attend, masked_softmax};
 use crate::case::{fixed, Arrays, Case, Operation, SchemeSpec};
 use crate::error::{Error, Result};
 use crate::kernel::{Answer, Kernel, KernelInfo, Support};
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 use crate::scheme::xl_relative::{scores, RelativeInputs, RelativeParams};
 use crate::scheme::Scheme;
 use crate::tensor::Tensor;

@@ -32,7 +32,6 @@
 //! ```
 #![deny(missing_docs)]
 
-pub mod angle;
 pub mod attention;
 pub mod case;
 pub mod check;
@@ -40,9 +39,8 @@ pub mod compare;
 pub mod demo;
 mod error;
 pub mod files;
-pub mod generate;
 pub mod kernel;
-pub mod precision;
+pub mod math;
 pub mod recurrence;
 pub mod reference;
 pub mod report;

@@ -16,7 +16,7 @@ use ndarray::{concatenate, s, Array2, Array3, ArrayView2, ArrayView3, Axis};
 
 use crate::attention::{attend, masked_softmax, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
-use crate::precision::{gemm, matmul};
+use crate::math::product::{gemm, matmul};
 use crate::scheme::sinusoidal::Sinusoid;
 use crate::scheme::xl_relative::{
     relative_embeddings, scores, scores_at_positions, RelativeInputs, RelativeParams,

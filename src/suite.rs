@@ -12,7 +12,7 @@
 use crate::attention::Scale;
 use crate::case::{Case, Operation, SchemeSpec};
 use crate::error::{Error, Result};
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 use crate::scheme::rotary::{Pairing, RotaryScaling};
 use crate::scheme::sinusoidal::SinusoidLayout;
 

@@ -19,7 +19,7 @@ use serde::de::{self, Deserialize, Deserializer, IgnoredAny, MapAccess, SeqAcces
 use serde_json::{json, Value};
 
 use crate::error::{Error, Result};
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 
 /// An array of one dtype. Elements are held as f64, which represents every f32, f16
 /// and bf16 value exactly, and every i64 up to 2^53 in magnitude.

@@ -19,7 +19,7 @@ use serde_json::{json, Map, Value};
 use crate::case::{Arrays, Case};
 use crate::compare::budgets;
 use crate::error::{Error, Result};
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 use crate::reference;
 use crate::report::write_atomic;
 use crate::tensor::{Tensor, WireArray};

@@ -10,7 +10,7 @@ use posconform::kernel::protocol::parse_handshake;
 use posconform::kernel::{
     full_support, Answer, Kernel, KernelInfo, ReferenceKernel, Support, OPERATIONS,
 };
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::report::EXIT_CONFORMING;
 use posconform::rotary::Pairing;
 use posconform::suite::suite;

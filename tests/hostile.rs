@@ -18,7 +18,7 @@ use posconform::check::{check, CheckOptions, CheckOutcome};
 use posconform::compare::{CompareOptions, Verdict};
 use posconform::kernel::stdio::StdioKernel;
 use posconform::kernel::Kernel;
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::report::{self, EXIT_COULD_NOT_RUN};
 use posconform::suite::suite;
 use posconform::tensor::Tensor;

@@ -3,8 +3,8 @@
 
 use ndarray::{Array2, Array3};
 use posconform::attention::{apply_causal_mask, attend, dot_scores, masked_softmax};
-use posconform::generate::Stream;
 use posconform::learned::LearnedTable;
+use posconform::math::Stream;
 use posconform::recurrence::{stream, update_memory, LayerWeights, RelativeLayer};
 use posconform::xl_relative::{
     relative_embeddings, scores, scores_at_positions, scores_naive, terms, RelativeInputs,
@@ -301,7 +301,7 @@ proptest! {
     fn npy_reader_never_panics(mut bytes in proptest::collection::vec(any::<u8>(), 0..200), prefix in any::<bool>()) {
         if prefix {
             let mut valid = posconform::tensor::Tensor::from_f64(
-                posconform::precision::Dtype::F32,
+                posconform::math::Dtype::F32,
                 ndarray::ArrayD::zeros(ndarray::IxDyn(&[2, 3])),
             )
             .to_npy()

@@ -368,7 +368,7 @@ fn served_reference_rejects_inputs_that_disagree_with_the_case() {
         .into_dyn();
     inputs.insert(
         "k".into(),
-        posconform::tensor::Tensor::from_f64(posconform::precision::Dtype::F32, k),
+        posconform::tensor::Tensor::from_f64(posconform::math::Dtype::F32, k),
     );
     let request =
         posconform::kernel::protocol::request(1, "run", run_params(&case, case.dtype, &inputs));

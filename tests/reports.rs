@@ -5,7 +5,7 @@
 use ndarray::Array3;
 use posconform::case::{Arrays, Case};
 use posconform::compare::{compare, CaseReport, CompareOptions, Criterion, OutputReport, Verdict};
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::reference::{self, Outputs};
 use posconform::report::{self, json, junit, svg, Report};
 use posconform::tensor::Tensor;

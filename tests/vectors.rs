@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 use ndarray::ArrayD;
 use posconform::case::{Arrays, Case};
 use posconform::compare::{compare, CompareOptions, Verdict};
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::reference;
 use posconform::report::text;
 use posconform::suite::suite;

@@ -7,7 +7,7 @@ use std::process::ExitCode;
 use anyhow::{bail, Context as _};
 use clap::{Parser, Subcommand, ValueEnum};
 use posconform::compare::CompareOptions;
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::report::{self, write_atomic, Report, EXIT_COULD_NOT_RUN};
 use posconform::suite::{suite, SUITES};
 use posconform::Scheme;

@@ -14,7 +14,7 @@ use serde_json::{Map, Value};
 
 use crate::case::Case;
 use crate::kernel::{KernelInfo, Support, OPERATIONS};
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 use crate::scheme::Scheme;
 
 /// What values a scheme parameter takes, which decides the forms a kernel may list.

@@ -6,7 +6,7 @@
 
 use crate::case::{Arrays, Case};
 use crate::error::Result;
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 use crate::reference;
 use crate::scheme::Scheme;
 use crate::tensor::Tensor;

@@ -11,7 +11,7 @@ use serde_json::{json, Map, Value};
 use crate::case::{Arrays, Case};
 use crate::error::{Error, KernelErrorKind, Result};
 use crate::kernel::{Answer, Kernel, KernelInfo};
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 use crate::tensor::{Tensor, WireArray};
 
 /// The protocol version this build speaks.

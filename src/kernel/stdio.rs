@@ -35,7 +35,7 @@ use crate::case::{Arrays, Case};
 use crate::error::{Error, KernelErrorKind, Result};
 use crate::kernel::protocol::{self, Reply, UNSUPPORTED};
 use crate::kernel::{Answer, Kernel, KernelInfo};
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 
 /// How many stderr lines are shown with an error.
 const STDERR_TAIL: usize = 12;

@@ -65,7 +65,7 @@ use serde::{Serialize, Serializer};
 
 use super::{Counts, Report};
 use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
-use crate::precision::Dtype;
+use crate::math::precision::Dtype;
 
 /// The value of `"format"`, naming this document type.
 pub const FORMAT: &str = "posconform.report";

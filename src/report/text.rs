@@ -381,8 +381,12 @@ fn format_ratio(ratio: f64) -> String {
 
 /// `got` and `expected` with as many significant digits as it takes to tell them apart,
 /// up to what the dtype resolves (17 for f64, 9 for f32, 5 for f16, 4 for bf16).
-pub fn format_pair(got: f64, expected: f64, dtype: crate::precision::Dtype) -> (String, String) {
-    use crate::precision::Dtype;
+pub fn format_pair(
+    got: f64,
+    expected: f64,
+    dtype: crate::math::precision::Dtype,
+) -> (String, String) {
+    use crate::math::precision::Dtype;
     let most = match dtype {
         Dtype::F64 | Dtype::I64 => 17,
         Dtype::F32 => 9,

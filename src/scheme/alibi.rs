@@ -152,7 +152,7 @@ pub fn scores(
         .and(k.outer_iter())
         .and(slopes)
         .for_each(|mut head, qh, kh, &slope| {
-            crate::precision::gemm(factor, &qh, &kh.t(), 0.0, &mut head);
+            crate::math::product::gemm(factor, &qh, &kh.t(), 0.0, &mut head);
             add_bias_and_mask(head, window, slope, params.form, params.query_start);
         });
     Ok(out)

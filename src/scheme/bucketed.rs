@@ -242,7 +242,7 @@ pub fn scores(
         .and(k.outer_iter())
         .and(table.outer_iter())
         .for_each(|mut head, qh, kh, row| {
-            crate::precision::gemm(factor, &qh, &kh.t(), 0.0, &mut head);
+            crate::math::product::gemm(factor, &qh, &kh.t(), 0.0, &mut head);
             add_bias_and_mask(
                 head,
                 window,

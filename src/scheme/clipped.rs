@@ -101,11 +101,11 @@ pub fn attention(
     let clip = params.clip_distance;
     for (h, mut out_h) in out.outer_iter_mut().enumerate() {
         let p = probs.index_axis(Axis(0), h);
-        crate::precision::gemm(1.0, &p, &v.index_axis(Axis(0), h), 0.0, &mut out_h);
+        crate::math::product::gemm(1.0, &p, &v.index_axis(Axis(0), h), 0.0, &mut out_h);
         // Σ_j α_ij a^V_ij = Σ_r (mass of row r) · w^V[r]: many keys share a clipped row.
         let mass = mass_per_embedding(p, window, clip);
         let table = w_value.index_axis(Axis(0), if w_value.dim().0 == 1 { 0 } else { h });
-        crate::precision::gemm(1.0, &mass, &table, 1.0, &mut out_h);
+        crate::math::product::gemm(1.0, &mass, &table, 1.0, &mut out_h);
     }
     Ok((probs, out))
 }
@@ -173,9 +173,9 @@ fn scores_checked(
     for (h, mut out_h) in out.outer_iter_mut().enumerate() {
         let qh = q.index_axis(Axis(0), h);
         let table = w_key.index_axis(Axis(0), if w_key.dim().0 == 1 { 0 } else { h });
-        crate::precision::gemm(factor, &qh, &k.index_axis(Axis(0), h).t(), 0.0, &mut out_h);
+        crate::math::product::gemm(factor, &qh, &k.index_axis(Axis(0), h).t(), 0.0, &mut out_h);
         // q_i·a^K_ij takes only 2k+1 values per query: one product with the table.
-        crate::precision::gemm(factor, &qh, &table.t(), 0.0, &mut q_dot_table);
+        crate::math::product::gemm(factor, &qh, &table.t(), 0.0, &mut q_dot_table);
         for (i, mut row) in out_h.outer_iter_mut().enumerate() {
             let visible = window.memory_len() + i + 1;
             let near = near_start(window, i, clip);

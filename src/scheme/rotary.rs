@@ -29,9 +29,9 @@
 
 use ndarray::{Array2, Array3, ArrayView3, Axis};
 
-use crate::angle::{self, DoubleDouble};
 use crate::attention::{attend, dot_scores, masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
+use crate::math::angle::{self, DoubleDouble};
 use crate::scheme::sinusoidal::precise_frequencies;
 
 /// The base of the paper's `θ_i = 10000^(-2(i-1)/d)` (Su et al. 2021, under eq. 15,

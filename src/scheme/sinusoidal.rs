@@ -14,8 +14,8 @@
 
 use ndarray::Array2;
 
-use crate::angle::{self, DoubleDouble};
 use crate::error::{Error, Result};
+use crate::math::angle::{self, DoubleDouble};
 
 /// Where the sine and cosine of one frequency sit in the encoding vector.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]

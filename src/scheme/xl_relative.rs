@@ -24,7 +24,7 @@ use ndarray::{s, Array2, Array3, ArrayView1, ArrayView2, ArrayView3, Axis, Zip};
 
 use crate::attention::{expect_per_head, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
-use crate::precision::{gemm, matmul};
+use crate::math::product::{gemm, matmul};
 use crate::scheme::sinusoidal::Sinusoid;
 
 /// The inputs of one relative-attention scoring step for all heads.

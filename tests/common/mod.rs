@@ -2,7 +2,7 @@
 #![allow(dead_code)]
 
 use ndarray::{Array2, Array3};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 
 /// Random relative-attention inputs `(q, k, r, u, v)` for `H, L, M, d`.
 #[derive(Debug, Clone)]

@@ -2,8 +2,8 @@
 //! encoding (docs/conventions.md, "learned"); relative distances never do.
 
 use ndarray::Array2;
-use posconform::generate::Stream;
 use posconform::learned::{aliased_pairs, LearnedTable};
+use posconform::math::Stream;
 use posconform::{Sinusoid, Window};
 use proptest::prelude::*;
 

@@ -7,7 +7,7 @@
 use ndarray::{s, Array3, ArrayView3};
 use posconform::alibi::{self, AlibiParams, BiasForm};
 use posconform::attention::{attend, dot_scores, masked_softmax};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::Scale;
 use proptest::prelude::*;
 

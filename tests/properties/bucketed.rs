@@ -6,7 +6,7 @@
 use ndarray::{Array2, ArrayView3};
 use posconform::attention::dot_scores;
 use posconform::bucketed::{self, bucket, BucketedParams, Buckets};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::Scale;
 use proptest::prelude::*;
 

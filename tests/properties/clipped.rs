@@ -5,7 +5,7 @@
 
 use ndarray::{Array3, ArrayView3};
 use posconform::clipped::{self, embedding_index, ClippedParams};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::Scale;
 use proptest::prelude::*;
 

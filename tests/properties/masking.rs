@@ -2,7 +2,7 @@
 
 use ndarray::{s, Array3};
 use posconform::attention::{attention, masked_softmax};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::xl_relative::{scores, terms, RelativeParams};
 use posconform::Window;
 use proptest::prelude::*;

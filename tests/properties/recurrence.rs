@@ -2,7 +2,7 @@
 //! definition.
 
 use ndarray::{s, Array2, ArrayView2};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::recurrence::{
     one_shot, recurrence_visibility, stream, LayerWeights, RelativeLayer,
 };

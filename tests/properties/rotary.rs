@@ -6,7 +6,7 @@
 
 use ndarray::{s, Array3, ArrayView3};
 use posconform::attention::{attend, dot_scores, masked_softmax};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::rotary::{
     self, Pairing, Rotary, RotaryAttention, RotaryCache, RotaryParams, RotaryScaling, DEFAULT_BASE,
 };

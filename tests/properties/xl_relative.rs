@@ -2,7 +2,7 @@
 //! invariance of relative scores under a global position offset.
 
 use ndarray::{s, Array2, Array3};
-use posconform::generate::Stream;
+use posconform::math::Stream;
 use posconform::xl_relative::{
     scores, scores_at_positions, scores_naive, standard_positions, RelativeInputs, RelativeParams,
 };

@@ -3,9 +3,9 @@
 use posconform::case::{Case, Operation, SchemeSpec};
 use posconform::check::{check, CheckOptions, CheckOutcome};
 use posconform::compare::{CaseReport, Verdict};
-use posconform::generate::Stream;
 use posconform::kernel::Kernel;
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
+use posconform::math::Stream;
 use posconform::Scheme;
 
 use crate::kernel::{Variant, ZooKernel};

@@ -34,7 +34,7 @@ use std::collections::BTreeSet;
 use ndarray::{ArrayD, IxDyn};
 use posconform::case::{Arrays, Case, Operation, SchemeSpec};
 use posconform::kernel::{full_support, Answer, Kernel, KernelInfo};
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::rotary::{Pairing, RotaryScaling};
 use posconform::{Error, Result, Scale, SinusoidLayout};
 

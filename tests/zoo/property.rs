@@ -1,14 +1,14 @@
 //! No false alarm on random cases: a random correct variant and a random case of a
 //! random scheme and operation it lists (the checker's own generator,
-//! `posconform::check::random_case`, driven by a seeded `posconform::generate::Stream`)
+//! `posconform::check::random_case`, driven by a seeded `posconform::math::Stream`)
 //! pass through `posconform::check::run_case`. The companion plants each bug in the
 //! drawn variant and shows the same property then fails.
 
 use posconform::case::Operation;
 use posconform::check::{random_case, run_case};
 use posconform::compare::{CompareOptions, Verdict};
-use posconform::generate::Stream;
 use posconform::kernel::{Kernel, KernelInfo};
+use posconform::math::Stream;
 use proptest::prelude::*;
 use proptest::test_runner::{Config, TestCaseError, TestRunner};
 

@@ -6,7 +6,7 @@ use std::fmt::Debug;
 use std::ops::{Add, Div, Mul, Neg, Sub};
 
 use half::{bf16, f16};
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 
 /// A floating-point type the kernel arithmetic is written over.
 pub trait Real:

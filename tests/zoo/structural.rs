@@ -8,7 +8,7 @@
 use ndarray::Dimension;
 use posconform::case::{is_integer_output, Case};
 use posconform::kernel::Answer;
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::reference;
 
 use crate::harness::{random_cases, raw_run};

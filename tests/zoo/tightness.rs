@@ -25,7 +25,7 @@ use posconform::case::{Case, Operation, SchemeSpec};
 use posconform::check::run_case;
 use posconform::compare::{CompareOptions, Verdict};
 use posconform::kernel::Kernel;
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 use posconform::rotary::{Pairing, RotaryScaling};
 use posconform::{Scale, SinusoidLayout};
 

@@ -3,7 +3,7 @@
 //! dtype, accumulation in f32 or wider, any summation order, any exact softmax form) and
 //! the base kernels planted bugs are added to.
 
-use posconform::precision::Dtype;
+use posconform::math::Dtype;
 
 use crate::kernel::{
     AlibiForm, AngleForm, Compute, DecodeForm, Freq, Profile, Softmax, Variant, XlForm,
