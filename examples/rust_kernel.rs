@@ -16,10 +16,11 @@
 //! capabilities) is still declined with `-32001`.
 
 use ndarray::{Array1, Array3};
-use posconform::case::{Arrays, Case, Operation, SchemeSpec};
+use posconform::case::{Arrays, Case, Operation};
 use posconform::kernel::{Answer, Kernel, KernelInfo, Support};
 use posconform::math::Dtype;
 use posconform::rotary::{Pairing, RotaryScaling};
+use posconform::scheme::{rotary::RotarySpec, SchemeSpec};
 use posconform::tensor::Tensor;
 use posconform::{Result, Scheme};
 
@@ -31,8 +32,11 @@ impl Kernel for MyRope {
         Ok(KernelInfo {
             name: "example-rust-rope".into(),
             version: "0.1.0".into(),
-            supports: vec![Support::new(Scheme::Rotary, &["encode"])
-                .with_parameter("scaling", vec![serde_json::json!("none")])],
+            supports: vec![Support::new(
+                Scheme::Rotary,
+                &[posconform::case::OperationKind::Encode],
+            )
+            .with_parameter("scaling", vec![serde_json::json!("none")])],
             dtypes: vec![Dtype::F64],
             conventions: Vec::new(),
         })
@@ -40,13 +44,13 @@ impl Kernel for MyRope {
 
     fn run(&mut self, case: &Case, _dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
         let (
-            SchemeSpec::Rotary {
+            SchemeSpec::Rotary(RotarySpec {
                 rotary_dim,
                 base,
                 pairing,
                 scaling,
                 ..
-            },
+            }),
             Operation::Encode,
         ) = (&case.scheme, &case.operation)
         else {

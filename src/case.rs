@@ -1,7 +1,7 @@
 //! Cases: one operation of one scheme, with its parameters, shapes, dtype and seed.
 //!
 //! A case fully determines its inputs (generated from the seed with the portable
-//! ChaCha stream of [`crate::generate`], already rounded to the case dtype so a kernel
+//! ChaCha stream of [`crate::math::stream`], already rounded to the case dtype so a kernel
 //! of that dtype receives them exactly) and its expected outputs (the f64 reference of
 //! [`crate::reference`]).
 //!
@@ -21,178 +21,22 @@
 //! the rest in the listed chunk sizes; its output is the rows of full causal attention
 //! for tokens `P..T`.
 //!
-//! Scheme arrays: `learned` a `table[P_max, d]`; `xl_relative` `r[H,R,d]` (projected
-//! relative embeddings by distance), `content_bias[H,d]` (u), `position_bias[H,d]` (v);
-//! `bucketed` `bias_table[H, nb]`; `clipped` `w_key`, `w_value[H, 2k+1, d]`. Encode
-//! inputs: `sinusoidal` `positions[L]`; `learned` `table`, `positions[L]`; `rotary`
-//! `x[H,L,d]`, `positions[L]`; `xl_relative` `w_kr[H,d,d]`; `alibi` none; `bucketed`
-//! and `clipped` `relative_positions[N]`.
+//! The scheme's own arrays (encode inputs, tables, biases) come from its
+//! [`SchemeModel`]: see each scheme module and docs/conventions.md.
 
 use std::collections::BTreeMap;
 
-use ndarray::{Array1, ArrayD, IxDyn};
+use ndarray::{Array1, IxDyn};
 
-use crate::attention::Scale;
 use crate::error::{Error, Result};
-use crate::math::precision::Dtype;
-use crate::math::stream::Stream;
-use crate::scheme::rotary::{Pairing, RotaryScaling};
-use crate::scheme::sinusoidal::SinusoidLayout;
-use crate::scheme::Scheme;
+use crate::math::{Dtype, Stream};
+use crate::scheme::{SchemeModel, SchemeSpec};
 use crate::tensor::Tensor;
+
+pub use crate::shape::{Fill, InputSpec, Operation, OperationKind, Output, Shape};
 
 /// Named arrays: a case's inputs, expected outputs, or a kernel's results.
 pub type Arrays = BTreeMap<String, Tensor>;
-
-/// How an input array is filled.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub enum Fill {
-    /// Uniform in `[-scale, scale)` from the seed's stream, rounded to the case dtype.
-    Uniform(f64),
-    /// Absolute positions `p0, p0 + 1, …` (i64).
-    Positions,
-    /// The relative positions of [`Case::relative_positions`] (i64).
-    RelativePositions,
-}
-
-/// One input array of a case.
-#[derive(Debug, Clone, PartialEq)]
-pub struct InputSpec {
-    /// Its name.
-    pub name: String,
-    /// Its shape.
-    pub shape: Vec<usize>,
-    /// How it is filled.
-    pub fill: Fill,
-}
-
-/// What the kernel is asked to compute.
-#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
-#[serde(tag = "kind", rename_all = "snake_case")]
-pub enum Operation {
-    /// The scheme's encoding table (sinusoid rows, learned rows, rotated vectors,
-    /// relative embeddings, slopes, bucket or clip indices).
-    Encode,
-    /// Pre-softmax scores over `[memory ; current]`.
-    Scores,
-    /// Probabilities and attention outputs over `[memory ; current]`.
-    Attention,
-    /// A whole sequence through attention in segments of `L` with memory `M`.
-    Stream {
-        /// `T`, the number of tokens.
-        tokens: usize,
-    },
-    /// A prefill of `prefill` tokens, then cached decoding in `chunks`.
-    Decode {
-        /// `T`, the number of tokens.
-        tokens: usize,
-        /// `P`, the tokens given at once before decoding starts.
-        prefill: usize,
-        /// The sizes of the decoding steps; they sum to `T - P`.
-        chunks: Vec<usize>,
-    },
-}
-
-impl Operation {
-    /// The operation's name in files and on the command line.
-    pub fn name(&self) -> &'static str {
-        match self {
-            Operation::Encode => "encode",
-            Operation::Scores => "scores",
-            Operation::Attention => "attention",
-            Operation::Stream { .. } => "stream",
-            Operation::Decode { .. } => "decode",
-        }
-    }
-}
-
-/// A scheme with its parameters.
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-#[serde(tag = "name", rename_all = "snake_case")]
-pub enum SchemeSpec {
-    /// Absolute sinusoid added to queries and keys (Vaswani et al. 2017, §3.5).
-    Sinusoidal {
-        /// Frequency base.
-        base: f64,
-        /// Pair layout.
-        layout: SinusoidLayout,
-    },
-    /// Learned absolute table added to queries and keys.
-    Learned {
-        /// `P_max`, rows in the table.
-        max_positions: usize,
-    },
-    /// Transformer-XL relative scoring (Dai et al. 2019, §3.3).
-    XlRelative {
-        /// Score scale.
-        scale: Scale,
-        /// Optional clamp length of the distance.
-        clamp_len: Option<usize>,
-    },
-    /// Rotary embedding (Su et al. 2021).
-    Rotary {
-        /// `d_rot`, the rotated leading part of each head.
-        rotary_dim: usize,
-        /// Frequency base.
-        base: f64,
-        /// Pair layout.
-        pairing: Pairing,
-        /// Context-extension scaling.
-        scaling: RotaryScaling,
-        /// Score scale.
-        scale: Scale,
-    },
-    /// ALiBi, distance form, slopes by the published rule (Press et al. 2022, §3).
-    Alibi {
-        /// Scale of `q·k` (never of the bias).
-        scale: Scale,
-    },
-    /// T5 bucketed relative bias (Raffel et al. 2020, §2.1).
-    Bucketed {
-        /// Number of buckets.
-        num_buckets: usize,
-        /// Distance where the logarithmic buckets end.
-        max_distance: usize,
-        /// Whether keys after the query get their own buckets.
-        bidirectional: bool,
-        /// Scale of `q·k` (T5 uses 1).
-        scale: Scale,
-    },
-    /// Clipped relative positions (Shaw et al. 2018).
-    Clipped {
-        /// `k`, the clip distance.
-        clip_distance: usize,
-        /// Score scale.
-        scale: Scale,
-    },
-}
-
-impl SchemeSpec {
-    /// The scheme this spec parameterises.
-    pub fn scheme(&self) -> Scheme {
-        match self {
-            SchemeSpec::Sinusoidal { .. } => Scheme::Sinusoidal,
-            SchemeSpec::Learned { .. } => Scheme::Learned,
-            SchemeSpec::XlRelative { .. } => Scheme::XlRelative,
-            SchemeSpec::Rotary { .. } => Scheme::Rotary,
-            SchemeSpec::Alibi { .. } => Scheme::Alibi,
-            SchemeSpec::Bucketed { .. } => Scheme::Bucketed,
-            SchemeSpec::Clipped { .. } => Scheme::Clipped,
-        }
-    }
-
-    /// The score scale the scheme uses.
-    pub fn scale(&self) -> Scale {
-        match self {
-            SchemeSpec::Sinusoidal { .. } | SchemeSpec::Learned { .. } => Scale::InverseSqrtDim,
-            SchemeSpec::XlRelative { scale, .. }
-            | SchemeSpec::Rotary { scale, .. }
-            | SchemeSpec::Alibi { scale }
-            | SchemeSpec::Bucketed { scale, .. }
-            | SchemeSpec::Clipped { scale, .. } => *scale,
-        }
-    }
-}
 
 /// One conformance case.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -234,74 +78,37 @@ pub struct Case {
 pub const MAX_ELEMENTS: usize = 1 << 27;
 
 impl Case {
+    /// The sizes and positions of the case, as schemes see them.
+    pub fn shape(&self) -> Shape<'_> {
+        Shape {
+            heads: self.heads,
+            query_len: self.query_len,
+            memory_len: self.memory_len,
+            head_dim: self.head_dim,
+            query_start: self.query_start,
+            operation: &self.operation,
+        }
+    }
+
+    /// What the case's scheme contributes, with its parameters.
+    pub fn model(&self) -> &dyn SchemeModel {
+        self.scheme.model()
+    }
+
     /// `K = M + L` (saturating: [`Case::validate`] refuses cases where it would not fit).
     pub fn key_len(&self) -> usize {
-        self.memory_len.saturating_add(self.query_len)
+        self.shape().key_len()
     }
 
     /// Tokens in the sequence for `stream` and `decode`; `L` otherwise.
     pub fn tokens(&self) -> usize {
-        match &self.operation {
-            Operation::Stream { tokens } | Operation::Decode { tokens, .. } => *tokens,
-            _ => self.query_len,
-        }
-    }
-
-    /// Number of relative-embedding rows `r` the case needs (xl_relative).
-    pub fn relative_rows(&self) -> usize {
-        let rows = match &self.operation {
-            Operation::Stream { tokens } => (*tokens).min(self.key_len()),
-            Operation::Decode { tokens, .. } => *tokens,
-            _ => self.key_len(),
-        };
-        match &self.scheme {
-            SchemeSpec::XlRelative {
-                clamp_len: Some(c), ..
-            } => rows.min(c + 1),
-            _ => rows,
-        }
+        self.shape().tokens()
     }
 
     /// The absolute positions the case touches, `first..last` (exclusive): keys from
     /// `p0 - M` for one window, tokens from `p0` for stream and decode.
     pub fn position_range(&self) -> (i64, i64) {
-        match &self.operation {
-            Operation::Stream { tokens } | Operation::Decode { tokens, .. } => (
-                self.query_start,
-                self.query_start.saturating_add(*tokens as i64),
-            ),
-            _ => (
-                self.query_start.saturating_sub(self.memory_len as i64),
-                self.query_start.saturating_add(self.query_len as i64),
-            ),
-        }
-    }
-
-    /// How far the relative positions of `encode` reach on each side of 0 (saturating).
-    fn relative_reach(&self) -> u64 {
-        let sat = |x: usize| u64::try_from(x).unwrap_or(u64::MAX);
-        match &self.scheme {
-            SchemeSpec::Bucketed { max_distance, .. } => sat(*max_distance).saturating_mul(2),
-            SchemeSpec::Clipped { clip_distance, .. } => {
-                sat(*clip_distance).saturating_mul(2).saturating_add(2)
-            }
-            _ => 0,
-        }
-        .max(sat(self.key_len()))
-    }
-
-    /// How many relative positions `encode` lists for bucketed and clipped schemes,
-    /// without listing them (saturating).
-    pub fn relative_positions_len(&self) -> usize {
-        let count = self.relative_reach().saturating_mul(2).saturating_add(1);
-        usize::try_from(count).unwrap_or(usize::MAX)
-    }
-
-    /// Relative positions listed by `encode` for bucketed and clipped schemes. Call it
-    /// on a validated case: [`Case::validate`] bounds how many there are.
-    pub fn relative_positions(&self) -> Vec<i64> {
-        let reach = i64::try_from(self.relative_reach()).unwrap_or(i64::MAX - 1);
-        (-reach..=reach).collect()
+        self.shape().position_range()
     }
 
     /// Checks every parameter, naming the field that is wrong.
@@ -358,7 +165,7 @@ impl Case {
             _ => {}
         }
         if !self.hidden_keys.is_empty() {
-            if !matches!(self.operation, Operation::Scores | Operation::Attention) {
+            if !self.operation.kind().is_window() {
                 return Err(Error::param(
                     "hidden_keys",
                     "empty unless the operation is scores or attention",
@@ -412,69 +219,7 @@ impl Case {
                 largest,
             ));
         }
-        match &self.scheme {
-            SchemeSpec::Sinusoidal { base, .. } => crate::scheme::sinusoidal::Sinusoid::new(
-                self.head_dim,
-                *base,
-                SinusoidLayout::Interleaved,
-            )
-            .map(drop)?,
-            SchemeSpec::Learned { max_positions } => {
-                at_least_one("scheme.max_positions", *max_positions)?;
-                if first < 0 || last > *max_positions as i64 {
-                    return Err(Error::param(
-                        "query_start",
-                        format!("positions {first}..{last} inside the table 0..{max_positions}"),
-                        self.query_start,
-                    ));
-                }
-            }
-            SchemeSpec::XlRelative { scale, .. } => scale.validate()?,
-            SchemeSpec::Rotary {
-                rotary_dim,
-                base,
-                pairing,
-                scaling,
-                scale,
-            } => {
-                scale.validate()?;
-                crate::scheme::rotary::Rotary::new(crate::scheme::rotary::RotaryParams {
-                    head_dim: self.head_dim,
-                    rotary_dim: *rotary_dim,
-                    base: *base,
-                    pairing: *pairing,
-                    scaling: *scaling,
-                })
-                .map(drop)?
-            }
-            SchemeSpec::Alibi { scale } => {
-                scale.validate()?;
-                crate::scheme::alibi::slopes(self.heads).map(drop)?
-            }
-            SchemeSpec::Bucketed {
-                num_buckets,
-                max_distance,
-                bidirectional,
-                scale,
-            } => {
-                scale.validate()?;
-                crate::scheme::bucketed::Buckets::new(*num_buckets, *max_distance, *bidirectional)
-                    .map(drop)?
-            }
-            SchemeSpec::Clipped {
-                clip_distance,
-                scale,
-            } => {
-                scale.validate()?;
-                if *clip_distance > 1 << 20 {
-                    return Err(Error::param(
-                        "scheme.clip_distance",
-                        "<= 2^20",
-                        clip_distance,
-                    ));
-                }
-            }
-        }
+        self.model().validate(&self.shape())?;
         // Every array the case implies, scheme tables and relative positions included,
         // within the element limit (checked arithmetic, nothing allocated).
         let shapes = self
@@ -484,7 +229,7 @@ impl Case {
             .chain(
                 self.output_shapes()
                     .into_iter()
-                    .map(|(name, shape)| (name.to_string(), shape)),
+                    .map(|(output, shape)| (output.name(), shape)),
             );
         for (name, shape) in shapes {
             let elements = shape
@@ -503,72 +248,26 @@ impl Case {
 
     /// The inputs of this case, in generation order: name, shape and how each is
     /// filled. The order is part of the vector format (it fixes which part of the seed's
-    /// stream each array takes), so new arrays go at the end of their branch.
+    /// stream each array takes), so new arrays go at the end.
     pub fn input_specs(&self) -> Vec<InputSpec> {
-        let (h, d, l) = (self.heads, self.head_dim, self.query_len);
-        let uniform = |name: &str, shape: Vec<usize>, scale: f64| InputSpec {
-            name: name.into(),
-            shape,
-            fill: Fill::Uniform(scale),
-        };
-        let positions = |n: usize| InputSpec {
-            name: "positions".into(),
-            shape: vec![n],
-            fill: Fill::Positions,
-        };
-        let mut specs = Vec::new();
+        let shape = self.shape();
         if self.operation == Operation::Encode {
-            match &self.scheme {
-                SchemeSpec::Sinusoidal { .. } => specs.push(positions(l)),
-                SchemeSpec::Learned { max_positions } => {
-                    specs.push(uniform("table", vec![*max_positions, d], 1.0));
-                    specs.push(positions(l));
-                }
-                SchemeSpec::Rotary { .. } => {
-                    specs.push(uniform("x", vec![h, l, d], 1.0));
-                    specs.push(positions(l));
-                }
-                SchemeSpec::XlRelative { .. } => {
-                    specs.push(uniform("w_kr", vec![h, d, d], 1.0 / (d as f64).sqrt()))
-                }
-                SchemeSpec::Alibi { .. } => {}
-                SchemeSpec::Bucketed { .. } | SchemeSpec::Clipped { .. } => specs.push(InputSpec {
-                    name: "relative_positions".into(),
-                    shape: vec![self.relative_positions_len()],
-                    fill: Fill::RelativePositions,
-                }),
-            }
-            return specs;
+            return self.model().encode_inputs(&shape);
         }
-        let (queries, keys) = match &self.operation {
-            Operation::Scores | Operation::Attention => (l, self.key_len()),
-            _ => (self.tokens(), self.tokens()),
+        let (h, d) = (self.heads, self.head_dim);
+        let (queries, keys) = if self.operation.kind().is_window() {
+            (self.query_len, self.key_len())
+        } else {
+            (self.tokens(), self.tokens())
         };
-        specs.push(uniform("q", vec![h, queries, d], 1.0));
-        specs.push(uniform("k", vec![h, keys, d], 1.0));
+        let mut specs = vec![
+            InputSpec::uniform("q", vec![h, queries, d], 1.0),
+            InputSpec::uniform("k", vec![h, keys, d], 1.0),
+        ];
         if self.operation != Operation::Scores {
-            specs.push(uniform("v", vec![h, keys, d], 1.0));
+            specs.push(InputSpec::uniform("v", vec![h, keys, d], 1.0));
         }
-        match &self.scheme {
-            SchemeSpec::Sinusoidal { .. }
-            | SchemeSpec::Rotary { .. }
-            | SchemeSpec::Alibi { .. } => {}
-            SchemeSpec::Learned { max_positions } => {
-                specs.push(uniform("table", vec![*max_positions, d], 1.0))
-            }
-            SchemeSpec::XlRelative { .. } => {
-                specs.push(uniform("r", vec![h, self.relative_rows(), d], 1.0));
-                specs.push(uniform("content_bias", vec![h, d], 0.5));
-                specs.push(uniform("position_bias", vec![h, d], 0.5));
-            }
-            SchemeSpec::Bucketed { num_buckets, .. } => {
-                specs.push(uniform("bias_table", vec![h, *num_buckets], 2.0))
-            }
-            SchemeSpec::Clipped { clip_distance, .. } => {
-                specs.push(uniform("w_key", vec![h, 2 * clip_distance + 1, d], 0.5));
-                specs.push(uniform("w_value", vec![h, 2 * clip_distance + 1, d], 0.5));
-            }
-        }
+        specs.extend(self.model().window_inputs(&shape));
         specs
     }
 
@@ -588,13 +287,14 @@ impl Case {
                     );
                     Tensor::from_f64(Dtype::I64, p.into_dyn())
                 }
-                Fill::RelativePositions => {
-                    let rel =
-                        Array1::from_iter(self.relative_positions().into_iter().map(|x| x as f64));
+                Fill::RelativePositions { reach } => {
+                    // validate() bounds the count, so the reach fits an i64.
+                    let reach = i64::try_from(reach).unwrap_or(i64::MAX - 1);
+                    let rel = Array1::from_iter((-reach..=reach).map(|x| x as f64));
                     Tensor::from_f64(Dtype::I64, rel.into_dyn())
                 }
             };
-            arrays.insert(spec.name, tensor);
+            arrays.insert(spec.name.to_string(), tensor);
         }
         Ok(arrays)
     }
@@ -603,7 +303,7 @@ impl Case {
     /// the first array that does not (extra arrays are allowed and ignored).
     pub fn check_inputs(&self, inputs: &Arrays) -> Result<()> {
         for spec in self.input_specs() {
-            match inputs.get(&spec.name) {
+            match inputs.get(spec.name) {
                 None => {
                     return Err(Error::format(
                         format!("case {}", self.id),
@@ -622,58 +322,20 @@ impl Case {
         Ok(())
     }
 
-    /// Names and shapes of the outputs a kernel must return for this case.
-    pub fn output_shapes(&self) -> Vec<(&'static str, Vec<usize>)> {
+    /// The outputs a kernel must return for this case, with their shapes.
+    pub fn output_shapes(&self) -> Vec<(Output, Vec<usize>)> {
         let (h, l, k, d) = (self.heads, self.query_len, self.key_len(), self.head_dim);
         match &self.operation {
-            Operation::Encode => match &self.scheme {
-                SchemeSpec::Sinusoidal { .. } => vec![("table", vec![l, d])],
-                SchemeSpec::Learned { .. } => vec![("rows", vec![l, d])],
-                SchemeSpec::Rotary { .. } => vec![("rotated", vec![h, l, d])],
-                SchemeSpec::XlRelative { .. } => vec![("r", vec![h, k, d])],
-                SchemeSpec::Alibi { .. } => vec![("slopes", vec![h])],
-                SchemeSpec::Bucketed { .. } => {
-                    vec![("buckets", vec![self.relative_positions_len()])]
-                }
-                SchemeSpec::Clipped { .. } => {
-                    vec![("indices", vec![self.relative_positions_len()])]
-                }
-            },
-            Operation::Scores => vec![("scores", vec![h, l, k])],
-            Operation::Attention => vec![("probs", vec![h, l, k]), ("output", vec![h, l, d])],
-            Operation::Stream { tokens } => vec![("output", vec![h, *tokens, d])],
+            Operation::Encode => vec![self.model().encode_output(&self.shape())],
+            Operation::Scores => vec![(Output::Scores, vec![h, l, k])],
+            Operation::Attention => vec![
+                (Output::Probs, vec![h, l, k]),
+                (Output::Output, vec![h, l, d]),
+            ],
+            Operation::Stream { tokens } => vec![(Output::Output, vec![h, *tokens, d])],
             Operation::Decode {
                 tokens, prefill, ..
-            } => vec![("output", vec![h, tokens.saturating_sub(*prefill), d])],
+            } => vec![(Output::Output, vec![h, tokens.saturating_sub(*prefill), d])],
         }
     }
-}
-
-/// Whether an output holds integers (bucket and clip indices), compared exactly.
-pub fn is_integer_output(name: &str) -> bool {
-    matches!(name, "buckets" | "indices")
-}
-
-/// Looks up a named input, as an error naming the case and array when it is missing.
-pub(crate) fn input<'a>(arrays: &'a Arrays, case: &Case, name: &str) -> Result<&'a Tensor> {
-    arrays.get(name).ok_or_else(|| {
-        Error::format(
-            format!("case {}", case.id),
-            format!("missing input array `{name}`"),
-        )
-    })
-}
-
-/// A dynamic array as a fixed-dimension one, naming the array on mismatch.
-pub(crate) fn fixed<D: ndarray::Dimension>(
-    name: &str,
-    x: ArrayD<f64>,
-) -> Result<ndarray::Array<f64, D>> {
-    let shape = x.shape().to_vec();
-    x.into_dimensionality::<D>().map_err(|_| {
-        Error::format(
-            format!("array `{name}`"),
-            format!("unexpected rank {}", shape.len()),
-        )
-    })
 }

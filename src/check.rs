@@ -13,17 +13,15 @@
 use std::path::PathBuf;
 use std::time::{Duration, Instant};
 
-use crate::attention::Scale;
-use crate::case::{Arrays, Case, Operation, SchemeSpec};
-use crate::compare::{compare, CaseReport, CompareOptions, Verdict};
+use crate::case::{Arrays, Case, Operation, OperationKind};
+use crate::compare::{compare, CaseReport, CompareOptions, Verdict, Warning};
 use crate::error::{KernelErrorKind, Result};
 use crate::kernel::{Answer, Kernel, KernelInfo};
 use crate::math::precision::Dtype;
 use crate::math::stream::Stream;
 use crate::reference;
 use crate::report::Report;
-use crate::scheme::rotary::{Pairing, RotaryScaling};
-use crate::scheme::sinusoidal::SinusoidLayout;
+use crate::scheme::model::{pick, range};
 use crate::scheme::Scheme;
 use crate::tensor::Tensor;
 use crate::vector::VectorFile;
@@ -183,10 +181,13 @@ pub fn run_case(
                 // Replaces compare's generic note with the reason the dtypes differ.
                 report
                     .warnings
-                    .retain(|w| !w.starts_with("the case is written for"));
+                    .retain(|w| !matches!(w, Warning::ComputedIn { .. }));
                 report.warnings.insert(
                     0,
-                    format!("the case is written for {}, which the kernel does not list; it was run in {dtype}", case.dtype),
+                    Warning::NotListed {
+                        case: case.dtype,
+                        ran: dtype,
+                    },
                 );
             }
             (report, None)
@@ -375,7 +376,7 @@ fn fuzz_and_shrink(
         .flat_map(|s| {
             s.operations
                 .iter()
-                .filter_map(move |o| operation_named(o).map(|op| (s.scheme, op)))
+                .map(move |&o| (s.scheme, operation_of(o)))
         })
         .collect();
     if supported.is_empty() {
@@ -439,27 +440,19 @@ fn fuzz_and_shrink(
     }
 }
 
-fn operation_named(name: &str) -> Option<Operation> {
-    Some(match name {
-        "encode" => Operation::Encode,
-        "scores" => Operation::Scores,
-        "attention" => Operation::Attention,
-        "stream" => Operation::Stream { tokens: 1 },
-        "decode" => Operation::Decode {
+/// A placeholder operation of `kind`, whose sizes the fuzzer draws.
+fn operation_of(kind: OperationKind) -> Operation {
+    match kind {
+        OperationKind::Encode => Operation::Encode,
+        OperationKind::Scores => Operation::Scores,
+        OperationKind::Attention => Operation::Attention,
+        OperationKind::Stream => Operation::Stream { tokens: 1 },
+        OperationKind::Decode => Operation::Decode {
             tokens: 2,
             prefill: 1,
             chunks: vec![1],
         },
-        _ => return None,
-    })
-}
-
-fn pick<T: Clone>(stream: &mut Stream, items: &[T]) -> T {
-    items[stream.below(items.len() as u64) as usize].clone()
-}
-
-fn range(stream: &mut Stream, lo: usize, hi: usize) -> usize {
-    lo + stream.below((hi - lo + 1) as u64) as usize
+    }
 }
 
 /// A random valid case of `scheme` and `operation` (None after a few invalid draws).
@@ -483,7 +476,7 @@ pub fn random_declared_case(
     operation: Operation,
     n: usize,
 ) -> Option<Case> {
-    let dtypes = info.operation_dtypes(scheme, operation.name());
+    let dtypes = info.operation_dtypes(scheme, operation.kind());
     random_case_where(stream, scheme, operation, &dtypes, n, 64, &|case| {
         info.declares(case).is_ok()
     })
@@ -501,11 +494,7 @@ fn random_case_where(
 ) -> Option<Case> {
     let floats: Vec<Dtype> = dtypes.iter().copied().filter(|d| d.is_float()).collect();
     for _ in 0..attempts {
-        let heads = if scheme == Scheme::Alibi {
-            range(stream, 1, 12)
-        } else {
-            range(stream, 1, 3)
-        };
+        let heads = range(stream, 1, scheme.max_random_heads());
         let query_len = range(stream, 1, 9);
         let memory_len = if stream.below(4) == 0 {
             0
@@ -541,73 +530,15 @@ fn random_case_where(
             }
             other => other.clone(),
         };
-        let key_len = memory_len + query_len;
-        let spec = match scheme {
-            Scheme::Sinusoidal => SchemeSpec::Sinusoidal {
-                base: 10_000.0,
-                layout: pick(
-                    stream,
-                    &[SinusoidLayout::Interleaved, SinusoidLayout::Concatenated],
-                ),
-            },
-            Scheme::Learned => SchemeSpec::Learned {
-                max_positions: query_start as usize + key_len * 4 + 8,
-            },
-            Scheme::XlRelative => SchemeSpec::XlRelative {
-                scale: if stream.below(3) == 0 {
-                    Scale::Fixed(0.25)
-                } else {
-                    Scale::InverseSqrtDim
-                },
-                clamp_len: match (stream.below(3) == 0, &operation) {
-                    // `encode` returns r for every distance whatever the clamp (the clamp
-                    // acts where r is indexed), so a clamp there would only invite the
-                    // authors'-code reading that clamps the table itself.
-                    (true, Operation::Encode) => None,
-                    (true, _) => Some(range(stream, 0, key_len)),
-                    (false, _) => None,
-                },
-            },
-            Scheme::Rotary => {
-                let rotary_dim = if stream.below(3) == 0 {
-                    2 * range(stream, 1, head_dim / 2)
-                } else {
-                    head_dim
-                };
-                let scaling = match stream.below(4) {
-                    0 => RotaryScaling::LinearInterpolation {
-                        factor: range(stream, 2, 8) as f64,
-                    },
-                    1 if rotary_dim > 2 => RotaryScaling::NtkAware {
-                        factor: range(stream, 2, 8) as f64,
-                    },
-                    _ => RotaryScaling::None,
-                };
-                SchemeSpec::Rotary {
-                    rotary_dim,
-                    base: 10_000.0,
-                    pairing: pick(stream, &[Pairing::Adjacent, Pairing::HalfSplit]),
-                    scaling,
-                    scale: Scale::InverseSqrtDim,
-                }
-            }
-            Scheme::Alibi => SchemeSpec::Alibi {
-                scale: Scale::InverseSqrtDim,
-            },
-            Scheme::Bucketed => {
-                let num_buckets = pick(stream, &[8usize, 16, 32]);
-                SchemeSpec::Bucketed {
-                    num_buckets,
-                    max_distance: num_buckets * range(stream, 1, 4),
-                    bidirectional: stream.below(2) == 0,
-                    scale: Scale::Fixed(1.0),
-                }
-            }
-            Scheme::Clipped => SchemeSpec::Clipped {
-                clip_distance: range(stream, 1, 8),
-                scale: Scale::InverseSqrtDim,
-            },
+        let shape = crate::shape::Shape {
+            heads,
+            query_len,
+            memory_len,
+            head_dim,
+            query_start,
+            operation: &operation,
         };
+        let spec = scheme.random_spec(stream, &shape);
         let case = Case {
             id: format!("fuzz.{n:04}.{}.{}", scheme.name(), operation.name()),
             scheme: spec,
@@ -657,8 +588,8 @@ fn smaller(case: &Case) -> Vec<Case> {
     for v in [2, case.head_dim / 2, case.head_dim.saturating_sub(2)] {
         push(&|c| {
             c.head_dim = v.max(2) & !1;
-            if let SchemeSpec::Rotary { rotary_dim, .. } = &mut c.scheme {
-                *rotary_dim = (*rotary_dim).min(c.head_dim);
+            if let Some(fitted) = c.model().fit_head_dim(c.head_dim) {
+                c.scheme = fitted;
             }
         });
     }
@@ -704,36 +635,8 @@ fn smaller(case: &Case) -> Vec<Case> {
         }
         _ => {}
     }
-    match &case.scheme {
-        SchemeSpec::XlRelative { scale, clamp_len } => {
-            let (scale, clamp_len) = (*scale, *clamp_len);
-            push(&|c| {
-                c.scheme = SchemeSpec::XlRelative {
-                    scale,
-                    clamp_len: None,
-                }
-            });
-            push(&|c| {
-                c.scheme = SchemeSpec::XlRelative {
-                    scale: Scale::InverseSqrtDim,
-                    clamp_len,
-                }
-            });
-        }
-        SchemeSpec::Rotary { .. } => {
-            push(&|c| {
-                let d = c.head_dim;
-                if let SchemeSpec::Rotary { rotary_dim, .. } = &mut c.scheme {
-                    *rotary_dim = d;
-                }
-            });
-            push(&|c| {
-                if let SchemeSpec::Rotary { scaling, .. } = &mut c.scheme {
-                    *scaling = RotaryScaling::None;
-                }
-            });
-        }
-        _ => {}
+    for simpler in case.model().simpler(&case.shape()) {
+        push(&|c| c.scheme = simpler.clone());
     }
     out
 }
@@ -743,17 +646,7 @@ fn smaller(case: &Case) -> Vec<Case> {
 fn complexity(case: &Case) -> (usize, i64, usize) {
     let elements =
         case.heads * case.tokens().max(case.query_len) * (case.key_len() + case.head_dim);
-    let extras = match &case.scheme {
-        SchemeSpec::XlRelative { scale, clamp_len } => {
-            (*scale != Scale::InverseSqrtDim) as usize + clamp_len.is_some() as usize
-        }
-        SchemeSpec::Rotary {
-            rotary_dim,
-            scaling,
-            ..
-        } => (*rotary_dim != case.head_dim) as usize + (*scaling != RotaryScaling::None) as usize,
-        _ => 0,
-    } + case.hidden_keys.len();
+    let extras = case.model().extras(&case.shape()) + case.hidden_keys.len();
     (elements, case.query_start.abs(), extras)
 }
 

@@ -1,18 +1,6 @@
-//! Comparison of a kernel's outputs with the expected ones: budgets, error statistics
-//! and the mismatch report. A mismatch is a result (a value in a [`CaseReport`]), not
-//! an error.
-//!
-//! Budgets (docs/budgets.md), per output array, for the dtype the kernel declares:
-//! - *analytic*: the per-element bound of [`crate::reference::analytic_bounds`],
-//!   derived from the numerical contract for every output;
-//! - *baseline*: `c × max(baseline error, floor)`, where the baseline error is the
-//!   largest deviation of the same-precision reference ([`crate::reference::baseline`])
-//!   from the f64 oracle (common practice: c = 2), and the floor `sqrt(n)·u·max|expected|`
-//!   keeps an f64 budget from being zero;
-//! - *exact*: integer outputs (buckets, indices) must match exactly.
-//!
-//! An element is within budget when its error is at most the larger of its analytic
-//! bound and the baseline allowance. The report says which criterion decided.
+//! Comparison of a kernel's outputs with the expected ones, element by element against
+//! their budgets ([`crate::budget`]), into a report value. A mismatch is a result (a
+//! [`CaseReport`]), not an error.
 //!
 //! Masked entries are the ones the case hides (the causal mask over `[memory ; current]`
 //! and the case's hidden keys), never the ones whose expected value happens to be 0: a
@@ -20,15 +8,21 @@
 //! in the budget dtype; a masked probability must be exactly 0. A visible probability
 //! that underflows to 0 in the reference is compared like any other element (a kernel
 //! may return a subnormal there).
+//!
+//! The element loop allocates nothing per element: coordinates are derived from flat
+//! indices only for the few elements a report names.
 
 use std::collections::BTreeMap;
+use std::fmt;
 
-use ndarray::{ArrayD, Dimension};
+use ndarray::{ArrayD, ArrayViewD};
 
-use crate::case::{Arrays, Case, Operation};
+use crate::budget::{budgets, Budget, Budgets};
+use crate::case::{Arrays, Case, Operation, OperationKind, Output};
 use crate::error::Result;
 use crate::math::precision::{ulp_distance, Dtype};
-use crate::reference::{self, Outputs};
+use crate::reference::Outputs;
+use crate::scheme::Scheme;
 
 /// How to compare.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -53,106 +47,6 @@ impl Default for CompareOptions {
     }
 }
 
-/// The error budget of one output array.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Budget {
-    /// The dtype the budget was derived for.
-    pub dtype: Dtype,
-    /// `c`.
-    pub factor: f64,
-    /// Largest deviation of the same-precision baseline from the oracle.
-    pub baseline_error: f64,
-    /// `sqrt(n)·u·max|expected|` (u of the accumulation precision).
-    pub floor: f64,
-    /// Per-element analytic bound, where one exists.
-    pub analytic: Option<ArrayD<f64>>,
-    /// Integer output: exact match required.
-    pub exact: bool,
-}
-
-impl Budget {
-    /// The baseline allowance `c · max(baseline error, floor)`.
-    pub fn allowance(&self) -> f64 {
-        if self.exact {
-            0.0
-        } else {
-            self.factor * self.baseline_error.max(self.floor)
-        }
-    }
-
-    /// The per-element tolerance: the larger of the analytic bound and the allowance.
-    pub fn tolerance(&self) -> ArrayD<f64> {
-        let allowance = self.allowance();
-        match &self.analytic {
-            Some(bound) => bound.mapv(|b| b.max(allowance)),
-            None => ArrayD::from_elem(ndarray::IxDyn(&[]), allowance),
-        }
-    }
-
-    fn at(&self, index: &[usize]) -> (f64, f64) {
-        let analytic = self
-            .analytic
-            .as_ref()
-            .and_then(|a| a.get(index).copied())
-            .unwrap_or(0.0);
-        (analytic, self.allowance())
-    }
-}
-
-/// Budgets of every output of `case` for a kernel computing in `dtype`.
-pub fn budgets(
-    case: &Case,
-    inputs: &Arrays,
-    expected: &Outputs,
-    dtype: Dtype,
-    factor: f64,
-) -> Result<BTreeMap<String, Budget>> {
-    // The f64 baseline is the oracle itself: its error is 0 by construction.
-    let baseline = if dtype == Dtype::F64 {
-        Outputs::new()
-    } else {
-        reference::baseline(case, inputs, dtype)?
-    };
-    let mut analytic = reference::analytic_bounds(case, inputs, dtype)?;
-    let mut out = BTreeMap::new();
-    for (name, want) in expected {
-        let exact = crate::case::is_integer_output(name);
-        let dtype = if exact { Dtype::I64 } else { dtype };
-        let baseline_error = baseline
-            .get(name)
-            .map(|b| {
-                want.iter()
-                    .zip(b.iter())
-                    .filter(|(w, _)| w.is_finite())
-                    .map(|(w, b)| (w - b).abs())
-                    .fold(0.0, f64::max)
-            })
-            .unwrap_or(0.0);
-        let largest = want
-            .iter()
-            .filter(|x| x.is_finite())
-            .fold(0.0f64, |m, x| m.max(x.abs()));
-        // The worst case is the analytic bound's job; the floor only keeps an f64
-        // baseline budget (where the baseline is the oracle itself) from being zero, so
-        // it uses the probabilistic size sqrt(n)·u of a sum's rounding error (Higham and
-        // Mary 2019, from memory), in the accumulation precision.
-        let n = reference::reduction_length(case, name) as f64;
-        let floor = n.sqrt() * crate::math::precision::accumulation_gamma(dtype, 1) * largest;
-        out.insert(
-            name.clone(),
-            Budget {
-                dtype,
-                factor,
-                baseline_error,
-                floor,
-                analytic: analytic.remove(name),
-                exact,
-            },
-        );
-    }
-    Ok(out)
-}
-
 /// Which criterion accepted an output (a pass), or whose tolerance applied at the worst
 /// element (a failure).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
@@ -164,6 +58,17 @@ pub enum Criterion {
     Baseline,
     /// Integer output equal element for element.
     Exact,
+}
+
+impl Criterion {
+    /// The name used in every report.
+    pub fn name(self) -> &'static str {
+        match self {
+            Criterion::Analytic => "analytic",
+            Criterion::Baseline => "baseline",
+            Criterion::Exact => "exact",
+        }
+    }
 }
 
 /// The masking convention seen in a kernel's masked entries.
@@ -221,11 +126,165 @@ pub enum Pattern {
     },
 }
 
+/// Something a user must know before trusting the numbers of a case.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Warning {
+    /// The kernel returned an output the case does not have.
+    IgnoredOutput {
+        /// The output's name as the kernel spelled it.
+        name: String,
+    },
+    /// An output came back in another dtype than the kernel declared for the case.
+    ArrayDtype {
+        /// The output.
+        output: Output,
+        /// What the kernel declared.
+        declared: Dtype,
+        /// What the array carries.
+        array: Dtype,
+    },
+    /// `--budget-dtype` asked for a looser budget than the declared dtype.
+    LooseBudget {
+        /// The output.
+        output: Output,
+        /// The dtype the budget was derived for.
+        budget: Dtype,
+        /// What the kernel declared.
+        declared: Dtype,
+    },
+    /// Every value of an output is representable in a narrower dtype.
+    FitsNarrower {
+        /// The output.
+        output: Output,
+        /// What the kernel declared.
+        declared: Dtype,
+        /// The narrower dtype.
+        narrow: Dtype,
+    },
+    /// The kernel computes the case in another dtype than the case is written for.
+    ComputedIn {
+        /// The case's dtype.
+        case: Dtype,
+        /// The dtypes the outputs were judged in.
+        computed: Vec<Dtype>,
+    },
+    /// The kernel does not list the case's dtype; the case ran in another.
+    NotListed {
+        /// The case's dtype.
+        case: Dtype,
+        /// The dtype it ran in.
+        ran: Dtype,
+    },
+    /// A vector file written by another version of posconform, whose values this build
+    /// derives differently (the stored ones are used).
+    OtherVersion {
+        /// Who wrote the file.
+        writer: String,
+        /// This build.
+        this: String,
+        /// Largest relative difference of expected values.
+        expected: f64,
+        /// Largest relative difference of tolerances.
+        tolerance: f64,
+    },
+    /// A vector file written by another version that this build cannot re-derive.
+    NotRederived {
+        /// Who wrote the file.
+        writer: String,
+        /// This build.
+        this: String,
+        /// Why.
+        reason: String,
+    },
+}
+
+impl fmt::Display for Warning {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Warning::IgnoredOutput { name } => {
+                write!(f, "output `{name}` is not part of this case and was ignored")
+            }
+            Warning::ArrayDtype {
+                output,
+                declared,
+                array,
+            } => {
+                write!(
+                    f,
+                    "output `{output}` came back as {array} although the kernel computes this case in \
+                     {declared}; judged at the {declared} budget"
+                )?;
+                if array.unit_roundoff() > declared.unit_roundoff() {
+                    write!(
+                        f,
+                        "; values rounded to {array} cannot be expected to meet it"
+                    )?;
+                }
+                Ok(())
+            }
+            Warning::LooseBudget {
+                output,
+                budget,
+                declared,
+            } => write!(
+                f,
+                "output `{output}`: tolerance derived for {budget}; your kernel claimed {declared}. \
+                 A pass here does not show {declared} accuracy"
+            ),
+            Warning::FitsNarrower {
+                output,
+                declared,
+                narrow,
+            } => write!(
+                f,
+                "output `{output}`: the kernel claimed {declared} but every value is representable in \
+                 {narrow}; it may compute in {narrow}"
+            ),
+            Warning::ComputedIn { case, computed } => {
+                let names: Vec<&str> = computed.iter().map(|d| d.name()).collect();
+                write!(
+                    f,
+                    "the case is written for {case}; the kernel computes it in {}, and budgets follow that dtype",
+                    names.join(", ")
+                )
+            }
+            Warning::NotListed { case, ran } => write!(
+                f,
+                "the case is written for {case}, which the kernel does not list; it was run in {ran}"
+            ),
+            Warning::OtherVersion {
+                writer,
+                this,
+                expected,
+                tolerance,
+            } => write!(
+                f,
+                "written by {writer}; this build ({this}) derives expected values differing by up to \
+                 {expected:.1e} (relative) and tolerances by up to {tolerance:.1e}; judged with the stored ones"
+            ),
+            Warning::NotRederived {
+                writer,
+                this,
+                reason,
+            } => write!(
+                f,
+                "written by {writer}; this build ({this}) cannot re-derive it ({reason}); judged with the stored values"
+            ),
+        }
+    }
+}
+
+impl serde::Serialize for Warning {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> std::result::Result<S::Ok, S::Error> {
+        s.collect_str(self)
+    }
+}
+
 /// The comparison of one output array.
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct OutputReport {
-    /// The output's name.
-    pub name: String,
+    /// The output.
+    pub name: Output,
     /// Its shape.
     pub shape: Vec<usize>,
     /// The dtype the kernel declared for this case.
@@ -293,10 +352,10 @@ pub enum Verdict {
 pub struct CaseReport {
     /// The case id.
     pub case: String,
-    /// The scheme name.
-    pub scheme: String,
-    /// The operation name.
-    pub operation: String,
+    /// The scheme (`None` for a vector file that could not be read).
+    pub scheme: Option<Scheme>,
+    /// The operation (`None` for a vector file that could not be read).
+    pub operation: Option<OperationKind>,
     /// Fault classes the case targets.
     pub faults: Vec<u8>,
     /// `M` and `L` of the case (for labelling heatmaps).
@@ -308,7 +367,7 @@ pub struct CaseReport {
     /// Per-output comparisons.
     pub outputs: Vec<OutputReport>,
     /// Things the user must know before trusting the numbers.
-    pub warnings: Vec<String>,
+    pub warnings: Vec<Warning>,
 }
 
 impl CaseReport {
@@ -322,8 +381,8 @@ impl CaseReport {
     pub fn unreadable(id: &str, reason: impl Into<String>) -> Self {
         CaseReport {
             case: id.to_string(),
-            scheme: "?".into(),
-            operation: "?".into(),
+            scheme: None,
+            operation: None,
             faults: Vec::new(),
             memory_len: 0,
             query_len: 0,
@@ -341,8 +400,8 @@ impl CaseReport {
     fn empty(case: &Case, verdict: Verdict) -> Self {
         CaseReport {
             case: case.id.clone(),
-            scheme: case.scheme.scheme().name().to_string(),
-            operation: case.operation.name().to_string(),
+            scheme: Some(case.scheme.scheme()),
+            operation: Some(case.operation.kind()),
             faults: case.faults.clone(),
             memory_len: case.memory_len,
             query_len: case.query_len,
@@ -350,6 +409,16 @@ impl CaseReport {
             outputs: Vec::new(),
             warnings: Vec::new(),
         }
+    }
+
+    /// The scheme's name, `?` when unknown.
+    pub fn scheme_name(&self) -> &'static str {
+        self.scheme.map_or("?", Scheme::name)
+    }
+
+    /// The operation's name, `?` when unknown.
+    pub fn operation_name(&self) -> &'static str {
+        self.operation.map_or("?", OperationKind::name)
     }
 }
 
@@ -383,7 +452,7 @@ pub fn compare(
 }
 
 /// Budgets of every output of a case for one dtype, on demand.
-pub type BudgetSource<'a> = dyn FnMut(Dtype) -> Result<BTreeMap<String, Budget>> + 'a;
+pub type BudgetSource<'a> = dyn FnMut(Dtype) -> Result<Budgets> + 'a;
 
 /// [`compare`] with the budgets supplied by `budgets_for` (per budget dtype; e.g. the
 /// ones stored in a vector file).
@@ -395,31 +464,32 @@ pub fn compare_with_budgets(
     budgets_for: &mut BudgetSource<'_>,
 ) -> Result<CaseReport> {
     let mut report = CaseReport::empty(case, Verdict::Pass);
-    for name in got.keys().filter(|n| !expected.contains_key(*n)) {
-        report.warnings.push(format!(
-            "output `{name}` is not part of this case and was ignored"
-        ));
+    let known: Vec<&str> = expected.keys().map(|o| o.name()).collect();
+    for name in got.keys().filter(|n| !known.contains(&n.as_str())) {
+        report
+            .warnings
+            .push(Warning::IgnoredOutput { name: name.clone() });
     }
     let mut structural = Vec::new();
-    let mut budget_cache: BTreeMap<Dtype, BTreeMap<String, Budget>> = BTreeMap::new();
+    let mut budget_cache: BTreeMap<Dtype, Budgets> = BTreeMap::new();
     let visibility = Visibility::of(case);
-    for (name, want) in expected {
-        let Some(tensor) = got.get(name) else {
-            structural.push(format!("missing output `{name}`"));
+    for (&output, want) in expected {
+        let Some(tensor) = got.get(output.name()) else {
+            structural.push(format!("missing output `{output}`"));
             continue;
         };
         if tensor.shape() != want.shape() {
             structural.push(format!(
-                "output `{name}` has shape {:?}, expected {:?}",
+                "output `{output}` has shape {:?}, expected {:?}",
                 tensor.shape(),
                 want.shape()
             ));
             continue;
         }
-        let exact = crate::case::is_integer_output(name);
+        let exact = output.is_integer();
         if !exact && !tensor.dtype().is_float() {
             structural.push(format!(
-                "output `{name}` is declared i64; a float dtype is expected"
+                "output `{output}` is declared i64; a float dtype is expected"
             ));
             continue;
         }
@@ -436,11 +506,11 @@ pub fn compare_with_budgets(
         };
         if !exact {
             warn_about_dtypes(
-                name,
+                output,
                 declared,
                 array_dtype,
                 budget_dtype,
-                tensor,
+                tensor.view(),
                 &mut report.warnings,
             );
         }
@@ -457,35 +527,33 @@ pub fn compare_with_budgets(
             std::collections::btree_map::Entry::Occupied(e) => e.into_mut(),
             std::collections::btree_map::Entry::Vacant(e) => e.insert(budgets_for(source_dtype)?),
         };
-        let Some(budget) = budgets_for_dtype.get(name) else {
-            structural.push(format!("no budget for output `{name}`"));
+        let Some(budget) = budgets_for_dtype.get(&output) else {
+            structural.push(format!("no budget for output `{output}`"));
             continue;
         };
-        let mut output = compare_output(
+        let mut out = compare_output(
             case,
-            name,
+            output,
             want,
             tensor.view(),
             declared,
             budget,
             &visibility,
         );
-        output.array_dtype = array_dtype;
-        report.outputs.push(output);
+        out.array_dtype = array_dtype;
+        report.outputs.push(out);
     }
-    let answered: std::collections::BTreeSet<Dtype> = report
+    let computed: std::collections::BTreeSet<Dtype> = report
         .outputs
         .iter()
-        .filter(|o| !crate::case::is_integer_output(&o.name))
+        .filter(|o| !o.name.is_integer())
         .map(|o| o.dtype)
         .collect();
-    if answered.iter().any(|d| *d != case.dtype) {
-        let names: Vec<&str> = answered.iter().map(|d| d.name()).collect();
-        report.warnings.push(format!(
-            "the case is written for {}; the kernel computes it in {}, and budgets follow that dtype",
-            case.dtype,
-            names.join(", ")
-        ));
+    if computed.iter().any(|d| *d != case.dtype) {
+        report.warnings.push(Warning::ComputedIn {
+            case: case.dtype,
+            computed: computed.into_iter().collect(),
+        });
     }
     if !structural.is_empty() {
         report.verdict = Verdict::Error(structural.join("; "));
@@ -497,94 +565,164 @@ pub fn compare_with_budgets(
 
 /// Which entries of the key-indexed outputs (`scores`, `probs` of `scores` and
 /// `attention` cases) the case hides: the causal mask over `[memory ; current]` and
-/// the hidden keys.
-struct Visibility {
-    mask: Option<ndarray::Array2<bool>>,
+/// the hidden keys, as a flat `[L, K]` table.
+#[derive(Debug, Clone)]
+pub struct Visibility {
+    /// `(L, K, visible[i·K + j])` for window operations.
+    mask: Option<(usize, usize, Vec<bool>)>,
 }
 
 impl Visibility {
-    fn of(case: &Case) -> Self {
-        let mask = matches!(case.operation, Operation::Scores | Operation::Attention).then(|| {
-            ndarray::Array2::from_shape_fn((case.query_len, case.key_len()), |(i, j)| {
-                j <= case.memory_len + i && !case.hidden_keys.contains(&j)
-            })
+    /// The visibility of `case`'s key-indexed entries.
+    pub fn of(case: &Case) -> Self {
+        let mask = case.operation.kind().is_window().then(|| {
+            let (l, k) = (case.query_len, case.key_len());
+            let mut visible = vec![false; l * k];
+            for i in 0..l {
+                for j in 0..k {
+                    visible[i * k + j] = j <= case.memory_len + i;
+                }
+            }
+            for &j in &case.hidden_keys {
+                for i in 0..l {
+                    if j < k {
+                        visible[i * k + j] = false;
+                    }
+                }
+            }
+            (l, k, visible)
         });
         Visibility { mask }
     }
 
-    /// Whether the element at `index` of `output` is hidden from its query.
-    fn hidden(&self, output: &str, index: &[usize]) -> bool {
-        match (&self.mask, output, index) {
-            (Some(mask), "scores" | "probs", [_, i, j]) => {
-                !mask.get([*i, *j]).copied().unwrap_or(true)
-            }
-            _ => false,
+    /// Whether flat element `n` of a key-indexed `[H, L, K]` output is hidden.
+    fn hidden(&self, n: usize) -> bool {
+        match &self.mask {
+            Some((l, k, visible)) => !visible[n % (l * k)],
+            None => false,
         }
     }
 }
 
 fn warn_about_dtypes(
-    name: &str,
+    output: Output,
     declared: Dtype,
     array_dtype: Dtype,
     budget_dtype: Dtype,
-    tensor: &crate::tensor::Tensor,
-    warnings: &mut Vec<String>,
+    values: ArrayViewD<'_, f64>,
+    warnings: &mut Vec<Warning>,
 ) {
     if array_dtype != declared {
-        let consequence = if array_dtype.unit_roundoff() < declared.unit_roundoff() {
-            String::new()
-        } else {
-            format!("; values rounded to {array_dtype} cannot be expected to meet it")
-        };
-        warnings.push(format!(
-            "output `{name}` came back as {array_dtype} although the kernel computes this case in {declared}; \
-             judged at the {declared} budget{consequence}"
-        ));
+        warnings.push(Warning::ArrayDtype {
+            output,
+            declared,
+            array: array_dtype,
+        });
     }
     if budget_dtype.unit_roundoff() > declared.unit_roundoff() {
-        warnings.push(format!(
-            "output `{name}`: tolerance derived for {budget_dtype}; your kernel claimed {declared}. \
-             A pass here does not show {declared} accuracy"
-        ));
+        warnings.push(Warning::LooseBudget {
+            output,
+            budget: budget_dtype,
+            declared,
+        });
     }
     // A kernel that claims a wide dtype but returns values that all fit a narrow one
     // probably computes in the narrow one.
-    let finite: Vec<f64> = tensor
-        .view()
-        .iter()
-        .copied()
-        .filter(|x| x.is_finite() && *x != 0.0)
-        .collect();
-    if finite.len() >= 16 {
+    let finite = || {
+        values
+            .iter()
+            .copied()
+            .filter(|x| x.is_finite() && *x != 0.0)
+    };
+    if finite().nth(15).is_some() {
         for narrow in [Dtype::Bf16, Dtype::F16, Dtype::F32] {
             if narrow.unit_roundoff() > declared.unit_roundoff()
-                && finite.iter().all(|&x| narrow.represents(x))
+                && finite().all(|x| narrow.represents(x))
             {
-                warnings.push(format!(
-                    "output `{name}`: the kernel claimed {declared} but every value is representable in {narrow}; \
-                     it may compute in {narrow}"
-                ));
+                warnings.push(Warning::FitsNarrower {
+                    output,
+                    declared,
+                    narrow,
+                });
                 break;
             }
         }
     }
 }
 
-fn compare_output(
+/// The coordinates of flat element `n` of an array of `shape` (row-major).
+fn coordinates(mut n: usize, shape: &[usize]) -> Vec<usize> {
+    let mut index = vec![0; shape.len()];
+    for (axis, &size) in shape.iter().enumerate().rev() {
+        let size = size.max(1);
+        index[axis] = n % size;
+        n /= size;
+    }
+    index
+}
+
+/// The worst element seen so far: the largest error over its own tolerance; among
+/// infinite ratios a visible entry is shown before a masked one (a wrong value where
+/// one is expected says more than a leak).
+#[derive(Default)]
+struct Worst {
+    at: Option<usize>,
+    ratio: f64,
+    masked: bool,
+    got: f64,
+    expected: f64,
+    tolerance: f64,
+}
+
+impl Worst {
+    fn offer(
+        &mut self,
+        n: usize,
+        ratio: f64,
+        got: f64,
+        expected: f64,
+        tolerance: f64,
+        masked: bool,
+    ) {
+        let better = self.at.is_none()
+            || ratio > self.ratio
+            || (self.masked && !masked && ratio >= self.ratio);
+        if better {
+            *self = Worst {
+                at: Some(n),
+                ratio,
+                masked,
+                got,
+                expected,
+                tolerance,
+            };
+        }
+    }
+}
+
+/// Compares one output: every element against its tolerance (the larger of its
+/// analytic bound and the baseline allowance), masked entries by visibility.
+pub fn compare_output(
     case: &Case,
-    name: &str,
+    output: Output,
     want: &ArrayD<f64>,
-    got: ndarray::ArrayViewD<'_, f64>,
+    got: ArrayViewD<'_, f64>,
     declared: Dtype,
     budget: &Budget,
     visibility: &Visibility,
 ) -> OutputReport {
-    let is_scores = name == "scores";
-    let is_probs = name == "probs";
+    let key_indexed = output.is_key_indexed() && want.ndim() == 3;
+    let is_scores = key_indexed && output == Output::Scores;
+    let shape = want.shape().to_vec();
+    let want_std = want.as_standard_layout();
+    let got_std = got.as_standard_layout();
+    let (want_s, got_s) = (
+        want_std.as_slice().unwrap_or(&[]),
+        got_std.as_slice().unwrap_or(&[]),
+    );
     let mut stats = OutputReport {
-        name: name.to_string(),
-        shape: want.shape().to_vec(),
+        name: output,
+        shape: shape.clone(),
         dtype: declared,
         array_dtype: declared,
         budget_dtype: budget.dtype,
@@ -611,55 +749,48 @@ fn compare_output(
         patterns: Vec::new(),
         error_map: None,
     };
-    let mut error_map = ArrayD::zeros(want.raw_dim());
-    let mut failing: Vec<Vec<usize>> = Vec::new();
-    let mut leaks = 0;
-    let mut sentinel: Option<f64> = None;
-    let mut saw_mask = false;
-    let mut worst_ratio = -1.0;
-    let mut analytic_holds = budget.analytic.is_some();
-    let row_max = scores_row_max(want, &got, is_scores, visibility);
+    let allowance = budget.allowance();
+    let keys = if key_indexed { shape[2] } else { 1 };
+    // Largest kernel score over the visible entries of each row (for sentinels).
+    let row_max: Vec<f64> = if is_scores {
+        want_s
+            .chunks(keys)
+            .zip(got_s.chunks(keys))
+            .enumerate()
+            .map(|(row, (w, g))| {
+                w.iter()
+                    .zip(g)
+                    .enumerate()
+                    .filter(|&(j, (w, g))| {
+                        w.is_finite() && g.is_finite() && !visibility.hidden(row * keys + j)
+                    })
+                    .fold(f64::NEG_INFINITY, |m, (_, (_, &g))| m.max(g))
+            })
+            .collect()
+    } else {
+        Vec::new()
+    };
     // A probability rounds to zero in the dtype when it is below half the smallest
     // positive value; compared as 2p < smallest, since half of f64's smallest
     // subnormal is itself 0.
     let smallest = smallest_positive(budget.dtype);
-    // The worst element is the one furthest over its own tolerance; among infinite
-    // ratios a visible entry is shown before a masked one (a wrong value where one is
-    // expected says more than a leak).
-    let mut worst_masked = false;
-    let mut record_worst = |stats: &mut OutputReport,
-                            ratio: f64,
-                            idx: &[usize],
-                            g: f64,
-                            w: f64,
-                            tolerance: f64,
-                            masked: bool| {
-        if ratio > worst_ratio || (worst_masked && !masked && ratio >= worst_ratio) {
-            worst_masked = masked;
-            worst_ratio = ratio;
-            stats.worst = Some(idx.to_vec());
-            stats.worst_got = g;
-            stats.worst_expected = w;
-            stats.worst_tolerance = tolerance;
-            stats.worst_error = if g == w { 0.0 } else { (g - w).abs() };
-            stats.worst_ratio = ratio;
-        }
-    };
-    for (index, &w) in want.indexed_iter() {
-        let idx = index.slice();
-        let g = got[idx];
+    let mut error_map = vec![0.0; want_s.len()];
+    let mut failing: Vec<usize> = Vec::new();
+    let mut leaks = 0;
+    let mut sentinel: Option<f64> = None;
+    let mut saw_mask = false;
+    let mut worst = Worst::default();
+    let mut analytic_holds = budget.analytic.is_some();
+    for (n, (&w, &g)) in want_s.iter().zip(got_s).enumerate() {
         stats.elements += 1;
-        if (is_scores || is_probs) && (visibility.hidden(name, idx) || w == f64::NEG_INFINITY) {
+        if key_indexed && (visibility.hidden(n) || w == f64::NEG_INFINITY) {
             saw_mask = true;
             let ok = if is_scores {
                 if g == f64::NEG_INFINITY {
                     true
                 } else if g.is_finite() {
                     sentinel = Some(sentinel.map_or(g, |s: f64| s.max(g)));
-                    let max = row_max
-                        .get(&idx[..idx.len() - 1])
-                        .copied()
-                        .unwrap_or(f64::NEG_INFINITY);
+                    let max = row_max[n / keys];
                     max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
                 } else {
                     false
@@ -672,13 +803,13 @@ fn compare_output(
                     stats.non_finite += 1;
                 }
                 leaks += 1;
-                error_map[idx] = f64::INFINITY;
-                record_worst(&mut stats, f64::INFINITY, idx, g, w, 0.0, true);
-                failing.push(idx.to_vec());
+                error_map[n] = f64::INFINITY;
+                worst.offer(n, f64::INFINITY, g, w, 0.0, true);
+                failing.push(n);
             }
             continue;
         }
-        let (analytic, allowance) = budget.at(idx);
+        let analytic = budget.analytic_at(n);
         let tolerance = analytic.max(allowance);
         if !g.is_finite() {
             // A non-finite answer where a finite one is expected is an infinite error.
@@ -686,9 +817,9 @@ fn compare_output(
             stats.max_rel = f64::INFINITY;
             stats.max_ulp = f64::INFINITY;
             stats.non_finite += 1;
-            error_map[idx] = f64::INFINITY;
-            record_worst(&mut stats, f64::INFINITY, idx, g, w, tolerance, false);
-            failing.push(idx.to_vec());
+            error_map[n] = f64::INFINITY;
+            worst.offer(n, f64::INFINITY, g, w, tolerance, false);
+            failing.push(n);
             continue;
         }
         let err = (g - w).abs();
@@ -707,11 +838,23 @@ fn compare_output(
         } else {
             0.0
         };
-        error_map[idx] = ratio;
-        record_worst(&mut stats, ratio, idx, g, w, tolerance, false);
+        error_map[n] = ratio;
+        worst.offer(n, ratio, g, w, tolerance, false);
         if err > tolerance {
-            failing.push(idx.to_vec());
+            failing.push(n);
         }
+    }
+    if let Some(n) = worst.at {
+        stats.worst = Some(coordinates(n, &shape));
+        stats.worst_got = worst.got;
+        stats.worst_expected = worst.expected;
+        stats.worst_tolerance = worst.tolerance;
+        stats.worst_ratio = worst.ratio;
+        stats.worst_error = if worst.got == worst.expected {
+            0.0
+        } else {
+            (worst.got - worst.expected).abs()
+        };
     }
     stats.over_budget = failing.len();
     stats.passed = failing.is_empty();
@@ -721,8 +864,7 @@ fn compare_output(
         let analytic_governs = if stats.passed {
             analytic_holds
         } else {
-            let at_worst = stats.worst.as_deref().map(|idx| budget.at(idx));
-            at_worst.is_some_and(|(analytic, allowance)| analytic >= allowance)
+            worst.at.is_some_and(|n| budget.analytic_at(n) >= allowance)
         };
         stats.decided_by = if analytic_governs {
             Criterion::Analytic
@@ -730,60 +872,31 @@ fn compare_output(
             Criterion::Baseline
         };
     }
-    if is_scores || is_probs {
-        stats.masking = Some(if leaks > 0 {
+    if key_indexed {
+        stats.masking = saw_mask.then_some(if leaks > 0 {
             Masking::Leak { count: leaks }
         } else if let Some(value) = sentinel {
             Masking::Sentinel { value }
         } else {
             Masking::NegativeInfinity
         });
-        if !saw_mask {
-            // Nothing was masked in this case: there is no convention to report.
-            stats.masking = None;
-        }
     }
+    let error_map = ArrayD::from_shape_vec(ndarray::IxDyn(&shape), error_map)
+        .unwrap_or_else(|_| ArrayD::zeros(ndarray::IxDyn(&shape)));
     if !stats.passed {
         stats.patterns = patterns(
-            case, name, want, &got, &failing, &error_map, leaks, visibility,
+            case, output, &shape, got_s, &failing, &error_map, leaks, visibility,
         );
     }
-    if want.ndim() == 3 && (is_scores || is_probs) {
+    if key_indexed {
         stats.error_map = Some(error_map);
     }
     stats
 }
 
-/// Largest kernel score over the visible entries of each row (key `[h, i]`).
-fn scores_row_max(
-    want: &ArrayD<f64>,
-    got: &ndarray::ArrayViewD<'_, f64>,
-    is_scores: bool,
-    visibility: &Visibility,
-) -> BTreeMap<Vec<usize>, f64> {
-    let mut out = BTreeMap::new();
-    if !is_scores || want.ndim() == 0 {
-        return out;
-    }
-    for (index, &w) in want.indexed_iter() {
-        let idx = index.slice();
-        if w.is_finite() && !visibility.hidden("scores", idx) {
-            let g = got[idx];
-            let entry = out
-                .entry(idx[..idx.len() - 1].to_vec())
-                .or_insert(f64::NEG_INFINITY);
-            if g.is_finite() {
-                *entry = f64::max(*entry, g);
-            }
-        }
-    }
-    out
-}
-
-/// Whether the kernel's value at `idx` is a masked one (`-inf` score, zero probability).
-fn masked_in(got: &ndarray::ArrayViewD<'_, f64>, idx: &[usize], name: &str) -> bool {
-    let g = got[idx];
-    if name == "probs" {
+/// Whether the kernel's value is a masked one (`-inf` score, zero probability).
+fn masked_value(g: f64, output: Output) -> bool {
+    if output == Output::Probs {
         g == 0.0
     } else {
         g == f64::NEG_INFINITY || g < -1e30
@@ -793,65 +906,69 @@ fn masked_in(got: &ndarray::ArrayViewD<'_, f64>, idx: &[usize], name: &str) -> b
 #[allow(clippy::too_many_arguments)]
 fn patterns(
     case: &Case,
-    name: &str,
-    want: &ArrayD<f64>,
-    got: &ndarray::ArrayViewD<'_, f64>,
-    failing: &[Vec<usize>],
+    output: Output,
+    shape: &[usize],
+    got: &[f64],
+    failing: &[usize],
     error_map: &ArrayD<f64>,
     leaks: usize,
     visibility: &Visibility,
 ) -> Vec<Pattern> {
     let mut out = Vec::new();
-    let window_op = matches!(case.operation, Operation::Scores | Operation::Attention);
-    let key_indexed = window_op && (name == "scores" || name == "probs") && want.ndim() == 3;
+    let key_indexed =
+        case.operation.kind().is_window() && output.is_key_indexed() && shape.len() == 3;
     if key_indexed {
+        let (l, k) = (shape[1], shape[2]);
+        let query = |n: usize| (n / k) % l;
+        let key = |n: usize| n % k;
         if leaks == failing.len() {
             out.push(Pattern::MaskedEntriesOnly);
         }
         let m = case.memory_len;
-        if m > 0 && failing.iter().all(|idx| idx[2] < m) {
+        if m > 0 && failing.iter().all(|&n| key(n) < m) {
             out.push(Pattern::MemoryColumnsOnly);
         }
-        let masked_visible: Vec<&Vec<usize>> = failing
+        let masked_visible: Vec<usize> = failing
             .iter()
-            .filter(|idx| !visibility.hidden(name, idx) && masked_in(got, idx, name))
+            .copied()
+            .filter(|&n| !visibility.hidden(n) && masked_value(got[n], output))
             .collect();
         if !masked_visible.is_empty() {
             // Top-left alignment hides exactly i < j <= M + i in every row of every head.
-            let (heads, l) = (want.shape()[0], want.shape()[1]);
+            let heads = shape[0];
             let top_left = m > 0
                 && masked_visible.len() == heads * l * m
                 && masked_visible
                     .iter()
-                    .all(|idx| idx[2] > idx[1] && idx[2] <= m + idx[1]);
+                    .all(|&n| key(n) > query(n) && key(n) <= m + query(n));
             out.push(Pattern::VisibleKeysMasked {
                 count: masked_visible.len(),
                 top_left,
             });
         }
-        let distances: Vec<i64> = failing
+        let distances = failing
             .iter()
-            .map(|idx| (m + idx[1]) as i64 - idx[2] as i64)
-            .collect();
-        if let (Some(&from), Some(&to)) = (distances.iter().min(), distances.iter().max()) {
+            .map(|&n| (m + query(n)) as i64 - key(n) as i64);
+        if let (Some(from), Some(to)) = (distances.clone().min(), distances.max()) {
             if to - from < 3 && case.key_len() > 4 {
                 out.push(Pattern::DistanceBand { from, to });
             }
         }
     }
     // The position axis: rows of a table, or the query/token axis of [H, L, ...].
-    let axis = match want.ndim() {
+    let axis = match shape.len() {
         2 => Some(0),
         3 => Some(1),
         _ => None,
     };
     if let Some(axis) = axis {
-        let rows = want.shape()[axis];
+        let rows = shape[axis];
+        let inner: usize = shape[axis + 1..].iter().product();
         if matches!(
             case.operation,
             Operation::Stream { .. } | Operation::Decode { .. }
         ) {
-            if let Some(row) = failing.iter().map(|idx| idx[axis]).min() {
+            if let Some(row) = failing.iter().map(|&n| (n / inner.max(1)) % rows).min() {
                 if row > 0 {
                     out.push(Pattern::BeginsAtRow { row });
                 }

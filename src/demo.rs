@@ -14,12 +14,13 @@
 use ndarray::{s, Array3};
 
 use crate::attention::{attend, masked_softmax};
-use crate::case::{fixed, Arrays, Case, Operation, SchemeSpec};
+use crate::case::{Arrays, Case, Operation, OperationKind};
 use crate::error::{Error, Result};
 use crate::kernel::{Answer, Kernel, KernelInfo, Support};
 use crate::math::precision::Dtype;
+use crate::recurrence::segments;
 use crate::scheme::xl_relative::{scores, RelativeInputs, RelativeParams};
-use crate::scheme::Scheme;
+use crate::scheme::{Scheme, SchemeSpec};
 use crate::tensor::Tensor;
 
 /// The demo team's kernel (see the module docs for the story and the bug).
@@ -31,7 +32,11 @@ fn get<D: ndarray::Dimension>(inputs: &Arrays, name: &str) -> Result<ndarray::Ar
     let t = inputs
         .get(name)
         .ok_or_else(|| Error::format("run request", format!("missing input `{name}`")))?;
-    fixed(name, t.view().to_owned())
+    let rank = t.shape().len();
+    t.view()
+        .to_owned()
+        .into_dimensionality::<D>()
+        .map_err(|_| Error::format("run request", format!("input `{name}` has rank {rank}")))
 }
 
 fn get3(inputs: &Arrays, name: &str) -> Result<Array3<f64>> {
@@ -84,7 +89,11 @@ impl Kernel for TernKernel {
             version: "0.9.2".into(),
             supports: vec![Support::new(
                 Scheme::XlRelative,
-                &["scores", "attention", "stream"],
+                &[
+                    OperationKind::Scores,
+                    OperationKind::Attention,
+                    OperationKind::Stream,
+                ],
             )],
             dtypes: vec![Dtype::F32],
             conventions: vec![
@@ -95,14 +104,14 @@ impl Kernel for TernKernel {
     }
 
     fn run(&mut self, case: &Case, _dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
-        let SchemeSpec::XlRelative { scale, clamp_len } = &case.scheme else {
+        let SchemeSpec::XlRelative(spec) = &case.scheme else {
             return Ok(Answer::Unsupported(
                 "Tern implements xl_relative only".into(),
             ));
         };
         let params = RelativeParams {
-            scale: *scale,
-            clamp_len: *clamp_len,
+            scale: spec.scale,
+            clamp_len: spec.clamp_len,
         };
         let (q, k) = (get3(inputs, "q")?, get3(inputs, "k")?);
         let mut outputs = Arrays::new();
@@ -136,18 +145,16 @@ impl Kernel for TernKernel {
             Operation::Stream { tokens } => {
                 let v = get3(inputs, "v")?;
                 let mut out = Array3::zeros(q.raw_dim());
-                for start in (0..*tokens).step_by(case.query_len) {
-                    let end = (start + case.query_len).min(*tokens);
-                    let first = start.saturating_sub(case.memory_len);
+                for step in segments(*tokens, case.query_len, case.memory_len) {
                     let (_, _, o) = self.window(
                         &params,
                         inputs,
-                        q.slice(s![.., start..end, ..]),
-                        k.slice(s![.., first..end, ..]),
-                        v.slice(s![.., first..end, ..]),
+                        q.slice(s![.., step.start..step.end, ..]),
+                        k.slice(s![.., step.first_key..step.end, ..]),
+                        v.slice(s![.., step.first_key..step.end, ..]),
                         &[],
                     )?;
-                    out.slice_mut(s![.., start..end, ..]).assign(&o);
+                    out.slice_mut(s![.., step.start..step.end, ..]).assign(&o);
                 }
                 put("output", out);
             }

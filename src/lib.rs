@@ -33,6 +33,7 @@
 #![deny(missing_docs)]
 
 pub mod attention;
+pub mod budget;
 pub mod case;
 pub mod check;
 pub mod compare;
@@ -45,6 +46,7 @@ pub mod recurrence;
 pub mod reference;
 pub mod report;
 pub mod scheme;
+pub mod shape;
 pub mod suite;
 pub mod tensor;
 pub mod vector;

@@ -243,6 +243,57 @@ pub fn recurrence_visibility(
     }
 }
 
+/// One attention step of a stream or a cached decode: queries `start..end` over keys
+/// `first_key..end` (the memory, or the cache, then the step's own tokens).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Step {
+    /// The first key the step's queries see.
+    pub first_key: usize,
+    /// The step's first token.
+    pub start: usize,
+    /// One past its last token.
+    pub end: usize,
+}
+
+/// The segments of a stream of `tokens` cut into segments of `segment_len`, each
+/// seeing the newest `memory_len` earlier tokens as memory (docs/conventions.md,
+/// "stream"). The last segment may be shorter. Empty for `segment_len == 0`.
+pub fn segments(
+    tokens: usize,
+    segment_len: usize,
+    memory_len: usize,
+) -> impl Iterator<Item = Step> {
+    let starts = if segment_len == 0 { 0 } else { tokens };
+    (0..starts)
+        .step_by(segment_len.max(1))
+        .map(move |start| Step {
+            first_key: start.saturating_sub(memory_len),
+            start,
+            end: (start + segment_len).min(tokens),
+        })
+}
+
+/// The steps of a cached decode: the prefill `0..prefill`, then each chunk, every step
+/// seeing all earlier tokens (the cache) and itself causally (docs/conventions.md,
+/// "decode").
+pub fn decode_steps(prefill: usize, chunks: &[usize]) -> impl Iterator<Item = Step> + '_ {
+    let prefill_step = (prefill > 0).then_some(Step {
+        first_key: 0,
+        start: 0,
+        end: prefill,
+    });
+    let chunk_steps = chunks.iter().scan(prefill, |start, &size| {
+        let step = Step {
+            first_key: 0,
+            start: *start,
+            end: *start + size,
+        };
+        *start += size;
+        Some(step)
+    });
+    prefill_step.into_iter().chain(chunk_steps)
+}
+
 /// Streams `x[T, d_model]` through `layers` in segments of `segment_len` with
 /// `memory_len` rows of memory per layer: `[T, d_model]`.
 ///
@@ -260,17 +311,16 @@ pub fn stream(
     let t = x.nrows();
     let mut memories = vec![Array2::<f64>::zeros((0, d_model)); layers.len()];
     let mut out = Array2::zeros((t, d_model));
-    let mut start = 0;
-    while start < t {
-        let end = (start + segment_len).min(t);
-        let mut hidden = x.slice(s![start..end, ..]).to_owned();
+    // Each layer keeps its own memory (update_memory), so only the steps' token ranges
+    // are taken from the shared driver.
+    for step in segments(t, segment_len, memory_len) {
+        let mut hidden = x.slice(s![step.start..step.end, ..]).to_owned();
         for (layer, memory) in layers.iter().zip(memories.iter_mut()) {
             let next = layer.forward(memory.view(), hidden.view())?;
             *memory = update_memory(memory.view(), hidden.view(), memory_len)?;
             hidden = next;
         }
-        out.slice_mut(s![start..end, ..]).assign(&hidden);
-        start = end;
+        out.slice_mut(s![step.start..step.end, ..]).assign(&hidden);
     }
     Ok(out)
 }

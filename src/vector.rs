@@ -16,8 +16,9 @@ use std::path::{Path, PathBuf};
 
 use serde_json::{json, Map, Value};
 
+use crate::budget::{self, budgets, Budget};
+use crate::case::Output;
 use crate::case::{Arrays, Case};
-use crate::compare::budgets;
 use crate::error::{Error, Result};
 use crate::math::precision::Dtype;
 use crate::reference;
@@ -74,10 +75,10 @@ impl VectorFile {
         let expected = reference::expected(case, &inputs)?;
         let stored = budgets(case, &inputs, &expected, case.dtype, factor)?
             .into_iter()
-            .map(|(name, b)| {
+            .map(|(output, b)| {
                 let tolerance = Tensor::from_f64(Dtype::F64, b.tolerance());
                 (
-                    name,
+                    output.name().to_string(),
                     StoredBudget {
                         dtype: b.dtype,
                         factor: b.factor,
@@ -92,7 +93,7 @@ impl VectorFile {
         let provenance = json!({
             "generator": format!("posconform {}", env!("CARGO_PKG_VERSION")),
             "seed": case.seed,
-            "inputs": "ChaCha20 stream from the seed (src/generate.rs), rounded to the case dtype",
+            "inputs": "ChaCha20 stream from the seed (src/math/stream.rs), rounded to the case dtype",
             "expected": "f64 reference with portable arithmetic (fixed summation order)",
             "source": case.scheme.scheme().source(),
         });
@@ -218,7 +219,7 @@ impl VectorFile {
         let expected = arrays("expected", doc.expected)?;
         for spec in case.input_specs() {
             let field = at(&format!("inputs.{}", spec.name));
-            match inputs.get(&spec.name) {
+            match inputs.get(spec.name) {
                 None => return Err(Error::format(field, "missing")),
                 Some(got) if got.shape() != spec.shape.as_slice() => {
                     return Err(Error::format(
@@ -229,7 +230,8 @@ impl VectorFile {
                 _ => {}
             }
         }
-        for (name, shape) in case.output_shapes() {
+        for (output, shape) in case.output_shapes() {
+            let name = output.name();
             match expected.get(name) {
                 None => return Err(Error::format(at(&format!("expected.{name}")), "missing")),
                 Some(got) if got.shape() != shape.as_slice() => {
@@ -298,12 +300,13 @@ impl VectorFile {
     /// The stored budgets as comparison budgets. The stored per-element tolerance is
     /// `max(analytic, allowance)`; where it exceeds the allowance it *is* the analytic
     /// bound, elsewhere the allowance decided, which is what the criterion reports.
-    pub fn budgets(&self) -> BTreeMap<String, crate::compare::Budget> {
+    pub fn budgets(&self) -> budget::Budgets {
         self.budget
             .iter()
-            .map(|(name, b)| {
-                let exact = crate::case::is_integer_output(name);
-                let mut budget = crate::compare::Budget {
+            .filter_map(|(name, b)| Some((name.parse::<Output>().ok()?, b)))
+            .map(|(output, b)| {
+                let exact = output.is_integer();
+                let mut budget = Budget {
                     dtype: b.dtype,
                     factor: b.factor,
                     baseline_error: b.baseline_error,
@@ -320,7 +323,7 @@ impl VectorFile {
                                 .mapv(|t| if t > allowance { t } else { 0.0 }),
                         );
                 }
-                (name.clone(), budget)
+                (output, budget)
             })
             .collect()
     }
@@ -329,7 +332,7 @@ impl VectorFile {
     pub fn expected_outputs(&self) -> reference::Outputs {
         self.expected
             .iter()
-            .map(|(n, t)| (n.clone(), t.view().to_owned()))
+            .filter_map(|(n, t)| Some((n.parse::<Output>().ok()?, t.view().to_owned())))
             .collect()
     }
 }
@@ -594,7 +597,7 @@ pub fn read_results(dir: &Path, case_id: &str, outputs: &[&str]) -> Result<Optio
 /// can need.
 pub fn read_results_for(dir: &Path, case: &Case) -> Result<Option<Arrays>> {
     let shapes = case.output_shapes();
-    let names: Vec<&str> = shapes.iter().map(|(n, _)| *n).collect();
+    let names: Vec<&str> = shapes.iter().map(|(o, _)| o.name()).collect();
     let elements = shapes
         .iter()
         .map(|(_, s)| {

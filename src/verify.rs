@@ -9,7 +9,8 @@
 use std::collections::BTreeSet;
 use std::path::Path;
 
-use crate::compare::{budgets, compare_with_budgets, CaseReport, CompareOptions};
+use crate::budget::budgets;
+use crate::compare::{compare_with_budgets, CaseReport, CompareOptions, Warning};
 use crate::error::{Error, Result};
 use crate::report::Report;
 use crate::vector::{read_results_for, vector_files, VectorFile, INDEX_FILE};
@@ -77,7 +78,7 @@ pub fn verify(vectors: &Path, results: &Path, options: &CompareOptions) -> Resul
 /// Verifies one case; never fails (problems become an error verdict).
 pub fn verify_one(vector: &VectorFile, results: &Path, options: &CompareOptions) -> CaseReport {
     let case = &vector.case;
-    let outputs: Vec<&str> = case.output_shapes().iter().map(|(n, _)| *n).collect();
+    let outputs: Vec<&str> = case.output_shapes().iter().map(|(o, _)| o.name()).collect();
     let got = match read_results_for(results, case) {
         Ok(Some(got)) => got,
         Ok(None) => {
@@ -124,7 +125,7 @@ pub fn verify_one(vector: &VectorFile, results: &Path, options: &CompareOptions)
 /// For a vector written by another version of posconform: derives its expected values
 /// and budgets with this build and says how much they differ (the stored ones are used
 /// either way). `None` for files this version wrote, or when nothing differs.
-fn consistency(vector: &VectorFile, options: &CompareOptions) -> Option<String> {
+fn consistency(vector: &VectorFile, options: &CompareOptions) -> Option<Warning> {
     let this = format!("posconform {}", env!("CARGO_PKG_VERSION"));
     let writer = vector
         .provenance
@@ -143,9 +144,11 @@ fn consistency(vector: &VectorFile, options: &CompareOptions) -> Option<String> 
     let fresh = match VectorFile::build(&vector.case, factor) {
         Ok(v) => v,
         Err(e) => {
-            return Some(format!(
-                "written by {writer}; this build ({this}) cannot re-derive it ({e}); judged with the stored values"
-            ))
+            return Some(Warning::NotRederived {
+                writer: writer.to_string(),
+                this,
+                reason: e.to_string(),
+            })
         }
     };
     let largest = |a: &crate::case::Arrays, b: &crate::case::Arrays| -> f64 {
@@ -181,10 +184,10 @@ fn consistency(vector: &VectorFile, options: &CompareOptions) -> Option<String> 
             .map(|(n, b)| (n.clone(), b.tolerance.clone()))
             .collect(),
     );
-    (expected > 0.0 || tolerance > 0.0).then(|| {
-        format!(
-            "written by {writer}; this build ({this}) derives expected values differing by up to {expected:.1e} \
-             (relative) and tolerances by up to {tolerance:.1e}; judged with the stored ones"
-        )
+    (expected > 0.0 || tolerance > 0.0).then(|| Warning::OtherVersion {
+        writer: writer.to_string(),
+        this,
+        expected,
+        tolerance,
     })
 }

@@ -2,17 +2,20 @@
 //! suite and the fuzzer send, in which dtype, what the report lists as never exercised,
 //! clear errors for malformed declarations, and old handshakes keeping their meaning.
 
+use posconform::case::OperationKind;
+
+/// The operation names, as a handshake lists them.
+const OPERATION_NAMES: [&str; 5] = ["encode", "scores", "attention", "stream", "decode"];
 use posconform::case::Case;
 use posconform::check::{check, CheckOptions, CheckOutcome};
 use posconform::compare::Verdict;
 use posconform::kernel::capability::Gap;
 use posconform::kernel::protocol::parse_handshake;
-use posconform::kernel::{
-    full_support, Answer, Kernel, KernelInfo, ReferenceKernel, Support, OPERATIONS,
-};
+use posconform::kernel::{full_support, Answer, Kernel, KernelInfo, ReferenceKernel, Support};
 use posconform::math::Dtype;
 use posconform::report::EXIT_CONFORMING;
 use posconform::rotary::Pairing;
+use posconform::scheme::rotary::RotarySpec;
 use posconform::suite::suite;
 use posconform::{Result, Scheme};
 use proptest::prelude::*;
@@ -68,7 +71,7 @@ impl Kernel for Recording {
 
 fn pairing(case: &Case) -> Option<Pairing> {
     match &case.scheme {
-        posconform::case::SchemeSpec::Rotary { pairing, .. } => Some(*pairing),
+        posconform::scheme::SchemeSpec::Rotary(RotarySpec { pairing, .. }) => Some(*pairing),
         _ => None,
     }
 }
@@ -175,9 +178,16 @@ fn a_half_split_only_kernel_is_never_sent_adjacent_cases_in_suite_or_fuzz() {
 #[test]
 fn per_operation_dtypes_decide_the_dtype_each_case_is_sent_in() {
     let supports = vec![
-        Support::new(Scheme::Rotary, &["encode"]).with_dtypes(&[Dtype::F64]),
-        Support::new(Scheme::Rotary, &["scores", "attention"])
-            .with_dtypes(&[Dtype::F32, Dtype::Bf16]),
+        Support::new(Scheme::Rotary, &[posconform::case::OperationKind::Encode])
+            .with_dtypes(&[Dtype::F64]),
+        Support::new(
+            Scheme::Rotary,
+            &[
+                posconform::case::OperationKind::Scores,
+                posconform::case::OperationKind::Attention,
+            ],
+        )
+        .with_dtypes(&[Dtype::F32, Dtype::Bf16]),
     ];
     let cases = suite("core").unwrap();
     let mut kernel = Recording::new(supports, &[Dtype::F16]);
@@ -231,9 +241,12 @@ fn per_operation_dtypes_decide_the_dtype_each_case_is_sent_in() {
 #[test]
 fn entries_can_narrow_a_parameter_for_one_operation_only() {
     let supports = vec![
-        Support::new(Scheme::Rotary, &["encode"]),
-        Support::new(Scheme::Rotary, &["attention"])
-            .with_parameter("pairing", vec![json!("half_split")]),
+        Support::new(Scheme::Rotary, &[posconform::case::OperationKind::Encode]),
+        Support::new(
+            Scheme::Rotary,
+            &[posconform::case::OperationKind::Attention],
+        )
+        .with_parameter("pairing", vec![json!("half_split")]),
     ];
     let cases = suite("core").unwrap();
     let mut kernel = Recording::new(supports, &[Dtype::F64, Dtype::F32]);
@@ -262,8 +275,15 @@ fn entries_can_narrow_a_parameter_for_one_operation_only() {
 /// `encode` cases from being sent.
 #[test]
 fn undeclared_and_unrun_combinations_are_listed_as_never_exercised() {
-    let supports = vec![Support::new(Scheme::Alibi, &["encode", "stream", "decode"])
-        .with_parameter("scale", vec![json!("fixed")])];
+    let supports = vec![Support::new(
+        Scheme::Alibi,
+        &[
+            posconform::case::OperationKind::Encode,
+            posconform::case::OperationKind::Stream,
+            posconform::case::OperationKind::Decode,
+        ],
+    )
+    .with_parameter("scale", vec![json!("fixed")])];
     let cases = suite("core").unwrap();
     let mut kernel = Recording::new(supports.clone(), &[Dtype::F64]);
     let outcome = run(&mut kernel, &cases, 0);
@@ -426,7 +446,7 @@ fn malformed_capabilities_are_handshake_errors_naming_the_field() {
     }
     // The forms the protocol page lists are accepted.
     let fine = json!({"protocol": 1, "name": "k", "dtypes": ["f32"], "supports": [
-        {"scheme": "rotary", "operations": OPERATIONS, "dtypes": ["bf16"], "parameters": {
+        {"scheme": "rotary", "operations": OPERATION_NAMES, "dtypes": ["bf16"], "parameters": {
             "pairing": ["half_split"], "scaling": ["none", {"linear_interpolation": {"factor": 4.0}}],
             "rotary_dim": ["full", {"max": 64}], "base": [10000], "scale": ["fixed", "inverse_sqrt_dim"]}},
         {"scheme": "xl_relative", "operations": ["scores"], "parameters": {"clamp_len": [null, {"min": 0}]}},
@@ -496,7 +516,7 @@ proptest! {
         dtypes in capability_json(),
     ) {
         let result = json!({"protocol": 1, "name": "k", "dtypes": ["f64"], "supports": [
-            {"scheme": scheme, "operations": OPERATIONS, "parameters": parameters, "dtypes": dtypes}]});
+            {"scheme": scheme, "operations": OPERATION_NAMES, "parameters": parameters, "dtypes": dtypes}]});
         let outcome = std::panic::catch_unwind(|| {
             if let Ok(info) = parse_handshake(&result, "k") {
                 let cases = suite("core").unwrap();
@@ -519,11 +539,11 @@ proptest! {
 fn the_core_suite_exercises_every_declarable_combination() {
     let cases = suite("core").unwrap();
     for scheme in Scheme::ALL {
-        for operation in OPERATIONS {
+        for operation in OperationKind::ALL {
             assert!(
                 cases
                     .iter()
-                    .any(|c| c.scheme.scheme() == *scheme && c.operation.name() == operation),
+                    .any(|c| c.scheme.scheme() == *scheme && c.operation.kind() == operation),
                 "no core case for {} {operation}",
                 scheme.name()
             );

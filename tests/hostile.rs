@@ -20,6 +20,7 @@ use posconform::kernel::stdio::StdioKernel;
 use posconform::kernel::Kernel;
 use posconform::math::Dtype;
 use posconform::report::{self, EXIT_COULD_NOT_RUN};
+use posconform::scheme::bucketed::BucketedSpec;
 use posconform::suite::suite;
 use posconform::tensor::Tensor;
 use posconform::KernelErrorKind;
@@ -525,7 +526,9 @@ fn a_case_implying_an_absurd_array_is_refused_before_allocation() {
         "{e}"
     );
     let mut case = core("bucketed.encode.causal");
-    if let posconform::case::SchemeSpec::Bucketed { max_distance, .. } = &mut case.scheme {
+    if let posconform::scheme::SchemeSpec::Bucketed(BucketedSpec { max_distance, .. }) =
+        &mut case.scheme
+    {
         *max_distance = usize::MAX;
     }
     assert!(case.validate().is_err());

@@ -11,6 +11,7 @@
 //! Needs python3 with numpy. Under CI (`CI` set) a missing numpy is a failure; elsewhere
 //! the tests say they skipped.
 
+use posconform::scheme::rotary::RotarySpec;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
@@ -241,11 +242,11 @@ fn python_readme_example_kernel_conforms_on_what_it_declares() {
             c.operation.name() == "encode"
                 && matches!(
                     &c.scheme,
-                    posconform::case::SchemeSpec::Rotary {
+                    posconform::scheme::SchemeSpec::Rotary(RotarySpec {
                         pairing: posconform::rotary::Pairing::HalfSplit,
                         scaling: posconform::rotary::RotaryScaling::None,
                         ..
-                    }
+                    })
                 )
         })
         .map(|c| c.id)

@@ -3,12 +3,15 @@
 //! shapes the suite does not have).
 
 use ndarray::Array3;
-use posconform::case::{Arrays, Case};
-use posconform::compare::{compare, CaseReport, CompareOptions, Criterion, OutputReport, Verdict};
+use posconform::case::{Arrays, Case, OperationKind, Output};
+use posconform::compare::{
+    compare, CaseReport, CompareOptions, Criterion, OutputReport, Verdict, Warning,
+};
 use posconform::math::Dtype;
 use posconform::reference::{self, Outputs};
 use posconform::report::{self, json, junit, svg, Report};
 use posconform::tensor::Tensor;
+use posconform::Scheme;
 use serde_json::Value;
 
 // ---------------------------------------------------------------------------------
@@ -30,7 +33,12 @@ fn compare_corrupted(case: &Case, corrupt: impl FnOnce(&mut Outputs)) -> CaseRep
     corrupt(&mut wrong);
     let got: Arrays = wrong
         .into_iter()
-        .map(|(name, values)| (name, Tensor::from_f64(case.dtype, values)))
+        .map(|(output, values)| {
+            (
+                output.name().to_string(),
+                Tensor::from_f64(case.dtype, values),
+            )
+        })
         .collect();
     compare(case, &inputs, &expected, &got, &CompareOptions::default()).expect("comparison")
 }
@@ -40,7 +48,7 @@ fn compare_corrupted(case: &Case, corrupt: impl FnOnce(&mut Outputs)) -> CaseRep
 fn nan_and_leak() -> CaseReport {
     let case = core_case("xl_relative.scores.short_memory");
     compare_corrupted(&case, |outputs| {
-        let scores = outputs.get_mut("scores").unwrap();
+        let scores = outputs.get_mut(&Output::Scores).unwrap();
         // Query 2 sees keys up to M + 2 = 6; key 12 is in its future.
         assert!(scores[[1, 2, 6]].is_finite());
         assert_eq!(scores[[1, 0, 12]], f64::NEG_INFINITY);
@@ -55,7 +63,7 @@ fn memory_offset() -> CaseReport {
     let case = core_case("xl_relative.scores.scaled_clamped_d96");
     let memory = case.memory_len;
     compare_corrupted(&case, |outputs| {
-        let scores = outputs.get_mut("scores").unwrap();
+        let scores = outputs.get_mut(&Output::Scores).unwrap();
         for ((h, _, j), x) in scores
             .view_mut()
             .into_dimensionality::<ndarray::Ix3>()
@@ -81,11 +89,16 @@ fn mixed_report() -> Report {
     warned.case = "alibi.scores.warned".into();
     warned
         .warnings
-        .push("tolerance derived for f32 <not f64> & more".into());
+        // A name the kernel chose: markup characters must survive every renderer.
+        .push(Warning::IgnoredOutput {
+            name: "<not f64> & more".into(),
+        });
     let mut failing = memory_offset();
-    failing
-        .warnings
-        .push("kernel claimed f64 but answers fit f32".into());
+    failing.warnings.push(Warning::FitsNarrower {
+        output: Output::Scores,
+        declared: Dtype::F64,
+        narrow: Dtype::F32,
+    });
     let skipped_case = core_case("rotary.scores.scaled");
     let mut errored = CaseReport::error(
         &core_case("clipped.scores.k4"),
@@ -639,7 +652,9 @@ fn junit_failure_says_where_and_how_much() {
         "{body}"
     );
     assert!(
-        body.contains("warning: kernel claimed f64 but answers fit f32"),
+        body.contains(
+            "warning: output `scores`: the kernel claimed f64 but every value is representable in f32"
+        ),
         "warnings of a failing case go into the failure body: {body}"
     );
     let leak = cases[3].named("failure").next().unwrap().text();
@@ -670,7 +685,7 @@ fn junit_escapes_markup_and_drops_forbidden_characters() {
     let warned = cases[1].named("system-out").next().unwrap();
     assert_eq!(
         warned.text(),
-        "warning: tolerance derived for f32 <not f64> & more\n",
+        "warning: output `<not f64> & more` is not part of this case and was ignored\n",
         "warnings end in a line feed each"
     );
 }
@@ -679,8 +694,8 @@ fn junit_escapes_markup_and_drops_forbidden_characters() {
 fn junit_failure_names_every_failing_output_worst_first() {
     let case = compare_corrupted(&core_case("alibi.attention.h6"), |outputs| {
         // A NaN makes `output` the worst; `probs` is merely off.
-        outputs.get_mut("output").unwrap()[[0, 0, 0]] = f64::NAN;
-        outputs.get_mut("probs").unwrap()[[0, 3, 0]] += 1e-3;
+        outputs.get_mut(&Output::Output).unwrap()[[0, 0, 0]] = f64::NAN;
+        outputs.get_mut(&Output::Probs).unwrap()[[0, 3, 0]] += 1e-3;
     });
     assert_eq!(case.verdict, Verdict::Fail);
     let report = Report {
@@ -814,7 +829,7 @@ fn svg_is_none_without_an_error_map() {
     let values = attention
         .outputs
         .iter()
-        .find(|o| o.name == "output")
+        .find(|o| o.name == posconform::case::Output::Output)
         .unwrap();
     assert!(
         svg::heatmap(&attention, values).is_none(),
@@ -823,7 +838,7 @@ fn svg_is_none_without_an_error_map() {
     let probs = attention
         .outputs
         .iter()
-        .find(|o| o.name == "probs")
+        .find(|o| o.name == posconform::case::Output::Probs)
         .unwrap();
     assert!(svg::heatmap(&attention, probs).is_some());
 }
@@ -838,8 +853,8 @@ fn synthetic(
     let keys = map.shape()[2];
     let case = CaseReport {
         case: "synthetic.scores.large".into(),
-        scheme: "synthetic".into(),
-        operation: "scores".into(),
+        scheme: Some(Scheme::XlRelative),
+        operation: Some(OperationKind::Scores),
         faults: Vec::new(),
         memory_len: memory,
         query_len: queries,
@@ -848,7 +863,7 @@ fn synthetic(
         warnings: Vec::new(),
     };
     let output = OutputReport {
-        name: "scores".into(),
+        name: Output::Scores,
         shape: vec![heads, queries, keys],
         dtype: Dtype::F32,
         array_dtype: Dtype::F32,
@@ -962,7 +977,7 @@ fn svg_caps_panels_and_keeps_the_worst_heads() {
 #[test]
 fn svg_without_memory_draws_no_boundary() {
     let case = compare_corrupted(&core_case("xl_relative.scores.no_memory"), |outputs| {
-        outputs.get_mut("scores").unwrap()[[0, 3, 1]] += 1.0;
+        outputs.get_mut(&Output::Scores).unwrap()[[0, 3, 1]] += 1.0;
     });
     assert_eq!(case.memory_len, 0);
     let image = svg::heatmap(&case, &case.outputs[0]).unwrap();

@@ -11,6 +11,7 @@ use posconform::compare::{compare, CompareOptions, Verdict};
 use posconform::math::Dtype;
 use posconform::reference;
 use posconform::report::text;
+use posconform::scheme::{rotary::RotarySpec, SchemeSpec};
 use posconform::suite::suite;
 use posconform::tensor::Tensor;
 use posconform::vector::{emit_suite, write_results, VectorFile};
@@ -117,7 +118,7 @@ fn planted_logic_bugs_fail() {
     // Rotary evaluated with the other pairing (fault 17).
     let case = core_case("rotary.encode.adjacent");
     let mut other = case.clone();
-    if let posconform::case::SchemeSpec::Rotary { pairing, .. } = &mut other.scheme {
+    if let posconform::scheme::SchemeSpec::Rotary(RotarySpec { pairing, .. }) = &mut other.scheme {
         *pairing = posconform::rotary::Pairing::HalfSplit;
     }
     let got = as_results(
@@ -137,7 +138,10 @@ fn stream_bug_reported_as_beginning_after_first_segment() {
     no_memory.memory_len = 0;
     // Same q, k, v; the relative table only needs the rows a segment alone reaches.
     let mut inputs = case.inputs().unwrap();
-    let rows = no_memory.relative_rows();
+    let rows = match &no_memory.scheme {
+        SchemeSpec::XlRelative(spec) => spec.relative_rows(&no_memory.shape()),
+        _ => unreachable!("an xl_relative case"),
+    };
     replace(&mut inputs, "r", |r| {
         r.slice_move(ndarray::s![.., ..rows, ..]).into_dyn()
     });
@@ -177,17 +181,15 @@ fn bf16_deviation_passes_bf16_fails_f32_and_is_flagged() {
     let report = check(&case, &claimed_f32, &loose);
     assert_eq!(report.verdict, Verdict::Pass);
     assert!(
-        report
-            .warnings
-            .iter()
-            .any(|w| w.contains("tolerance derived for bf16; your kernel claimed f32")),
+        report.warnings.iter().any(|w| w
+            .to_string()
+            .contains("tolerance derived for bf16; your kernel claimed f32")),
         "{:?}",
         report.warnings
     );
-    assert!(report
-        .warnings
-        .iter()
-        .any(|w| w.contains("every value is representable in bf16")));
+    assert!(report.warnings.iter().any(|w| w
+        .to_string()
+        .contains("every value is representable in bf16")));
 }
 
 /// Budgets follow the dtype the kernel declares for the case, not the dtype of the
@@ -210,7 +212,7 @@ fn arrays_wider_than_declared_are_judged_at_the_declared_dtype() {
         && o.budget_dtype == Dtype::F32
         && o.array_dtype == Dtype::F64));
     assert!(
-        report.warnings.iter().any(|w| w.contains(
+        report.warnings.iter().any(|w| w.to_string().contains(
             "came back as f64 although the kernel computes this case in f32; judged at the f32 budget"
         )),
         "{:?}",
@@ -232,7 +234,7 @@ fn underflowed_visible_probabilities_are_not_masked_entries() {
     (case.heads, case.query_len, case.memory_len, case.head_dim) = (8, 2, 1600, 8);
     let inputs = case.inputs().unwrap();
     let expected = reference::expected(&case, &inputs).unwrap();
-    let probs = &expected["probs"];
+    let probs = &expected[&posconform::case::Output::Probs];
     assert_eq!(probs[[0, 0, 0]], 0.0, "the oldest key must underflow");
     assert_eq!(probs[[0, 0, 1601]], 0.0, "key M + 1 is in query 0's future");
     let with = |index: [usize; 3]| {
@@ -246,7 +248,11 @@ fn underflowed_visible_probabilities_are_not_masked_entries() {
     assert_eq!(visible.verdict, Verdict::Pass, "{visible:?}");
     let future = with([0, 0, 1601]);
     assert_eq!(future.verdict, Verdict::Fail);
-    let probs = future.outputs.iter().find(|o| o.name == "probs").unwrap();
+    let probs = future
+        .outputs
+        .iter()
+        .find(|o| o.name == posconform::case::Output::Probs)
+        .unwrap();
     assert_eq!(
         probs.masking,
         Some(posconform::compare::Masking::Leak { count: 1 })
@@ -261,7 +267,13 @@ fn finite_sentinels_pass_only_when_they_carry_no_probability() {
     let inputs = case.inputs().unwrap();
     let oracle = reference::expected(&case, &inputs).unwrap();
     let with_sentinel = |s: f64| {
-        let scores = oracle["scores"].mapv(|x| if x == f64::NEG_INFINITY { s } else { x });
+        let scores = oracle[&posconform::case::Output::Scores].mapv(|x| {
+            if x == f64::NEG_INFINITY {
+                s
+            } else {
+                x
+            }
+        });
         let mut got = Arrays::new();
         got.insert("scores".into(), Tensor::from_f64(Dtype::F64, scores));
         check(&case, &got, &CompareOptions::default())
@@ -408,7 +420,11 @@ fn bad_results_are_named_and_the_rest_still_runs() {
     assert_eq!(report.exit_code(), posconform::report::EXIT_COULD_NOT_RUN);
     let alibi_case = report.cases.iter().find(|c| c.case == alibi).unwrap();
     assert!(
-        alibi_case.warnings.is_empty() || alibi_case.warnings.iter().any(|w| w.contains("bonus"))
+        alibi_case.warnings.is_empty()
+            || alibi_case
+                .warnings
+                .iter()
+                .any(|w| w.to_string().contains("bonus"))
     );
 }
 
@@ -450,7 +466,7 @@ fn wrong_shapes_dtypes_and_non_finite_values_are_reported() {
     let output = alibi_report
         .outputs
         .iter()
-        .find(|o| o.name == "output")
+        .find(|o| o.name == posconform::case::Output::Output)
         .unwrap();
     assert_eq!(output.non_finite, 1);
     assert_eq!(output.worst.as_deref(), Some(&[0, 1, 2][..]));

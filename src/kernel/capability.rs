@@ -12,70 +12,33 @@ use std::collections::BTreeMap;
 
 use serde_json::{Map, Value};
 
-use crate::case::Case;
-use crate::kernel::{KernelInfo, Support, OPERATIONS};
+use crate::case::{Case, Operation, OperationKind};
+use crate::kernel::{KernelInfo, Support};
 use crate::math::precision::Dtype;
 use crate::scheme::Scheme;
 
-/// What values a scheme parameter takes, which decides the forms a kernel may list.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Kind {
-    /// One of a few names (`layout`, `pairing`).
-    Names(&'static [&'static str]),
-    /// `true` or `false` (`bidirectional`).
-    Bool,
-    /// A number (`base`, `num_buckets`, …): literals and ranges.
-    Number,
-    /// `null` or a non-negative integer (`clamp_len`): literals and ranges.
-    OptionalInteger,
-    /// `"inverse_sqrt_dim"` or `{"fixed": x}`.
-    Scale,
-    /// `"none"`, `{"linear_interpolation": {"factor": s}}` or `{"ntk_aware": {"factor": s}}`.
-    Scaling,
-    /// `rotary_dim`: integers, ranges, `"full"` and `"partial"`.
-    RotaryDim,
-}
-
-const SCALE: (&str, Kind) = ("scale", Kind::Scale);
+/// What values a scheme parameter takes (defined with the scheme's parameters).
+pub use crate::scheme::ParameterKind as Kind;
 
 /// The parameters of `scheme`, named as in the case's `scheme` object.
-pub fn parameters(scheme: Scheme) -> &'static [(&'static str, Kind)] {
-    match scheme {
-        Scheme::Sinusoidal => &[
-            ("base", Kind::Number),
-            ("layout", Kind::Names(&["interleaved", "concatenated"])),
-        ],
-        Scheme::Learned => &[("max_positions", Kind::Number)],
-        Scheme::XlRelative => &[SCALE, ("clamp_len", Kind::OptionalInteger)],
-        Scheme::Rotary => &[
-            ("rotary_dim", Kind::RotaryDim),
-            ("base", Kind::Number),
-            ("pairing", Kind::Names(&["adjacent", "half_split"])),
-            ("scaling", Kind::Scaling),
-            SCALE,
-        ],
-        Scheme::Alibi => &[SCALE],
-        Scheme::Bucketed => &[
-            ("num_buckets", Kind::Number),
-            ("max_distance", Kind::Number),
-            ("bidirectional", Kind::Bool),
-            SCALE,
-        ],
-        Scheme::Clipped => &[("clip_distance", Kind::Number), SCALE],
-    }
+pub fn parameters(scheme: Scheme) -> impl Iterator<Item = (&'static str, Kind)> {
+    scheme.parameters().iter().map(|p| (p.name, p.kind))
 }
 
-/// `scale` and `clamp_len` change scores only: they neither restrict nor are exercised
-/// by an `encode` case.
-fn scores_only(parameter: &str) -> bool {
-    matches!(parameter, "scale" | "clamp_len")
+/// Whether `encode` depends on `parameter` (`scale` and `clamp_len` change scores only:
+/// they neither restrict nor are exercised by an `encode` case).
+fn affects_encode(scheme: Scheme, parameter: &str) -> bool {
+    scheme
+        .parameters()
+        .iter()
+        .find(|p| p.name == parameter)
+        .map_or(true, |p| p.encode)
 }
 
 fn kind_of(scheme: Scheme, parameter: &str) -> Option<Kind> {
     parameters(scheme)
-        .iter()
         .find(|(name, _)| *name == parameter)
-        .map(|(_, kind)| *kind)
+        .map(|(_, kind)| kind)
 }
 
 fn quoted(names: &[&str]) -> String {
@@ -222,17 +185,17 @@ fn parameter_values(case: &Case) -> Map<String, Value> {
     }
 }
 
-fn operation_is(support: &Support, operation: &str) -> bool {
-    support.operations.iter().any(|o| o == operation)
+fn operation_is(support: &Support, operation: OperationKind) -> bool {
+    support.operations.contains(&operation)
 }
 
 impl Support {
     /// An entry for `scheme` and `operations` that accepts every parameter value and
     /// computes in the kernel's top-level dtypes.
-    pub fn new(scheme: Scheme, operations: &[&str]) -> Self {
+    pub fn new(scheme: Scheme, operations: &[OperationKind]) -> Self {
         Support {
             scheme,
-            operations: operations.iter().map(|o| o.to_string()).collect(),
+            operations: operations.to_vec(),
             parameters: BTreeMap::new(),
             dtypes: Vec::new(),
         }
@@ -257,7 +220,7 @@ impl Support {
         if self.scheme != scheme {
             return Err(format!("the kernel does not implement {}", scheme.name()));
         }
-        if !operation_is(self, case.operation.name()) {
+        if !operation_is(self, case.operation.kind()) {
             return Err(format!(
                 "the kernel does not list {} {}",
                 scheme.name(),
@@ -266,7 +229,7 @@ impl Support {
         }
         let values = parameter_values(case);
         for (name, forms) in &self.parameters {
-            if case.operation.name() == "encode" && scores_only(name) {
+            if case.operation == Operation::Encode && !affects_encode(scheme, name) {
                 continue;
             }
             let value = values.get(name).unwrap_or(&Value::Null);
@@ -302,7 +265,7 @@ impl KernelInfo {
     /// the reason of the entry that came closest.
     pub fn declares(&self, case: &Case) -> Result<(), String> {
         let scheme = case.scheme.scheme();
-        let operation = case.operation.name();
+        let operation = case.operation.kind();
         let mut reason = format!("the kernel does not implement {}", scheme.name());
         // 0: no entry for the scheme; 1: the scheme but not the operation; 2: both, a
         // parameter value not declared (the most specific reason wins).
@@ -342,7 +305,7 @@ impl KernelInfo {
     }
 
     /// The dtypes of the entries that list `scheme` with `operation`, preferred first.
-    pub fn operation_dtypes(&self, scheme: Scheme, operation: &str) -> Vec<Dtype> {
+    pub fn operation_dtypes(&self, scheme: Scheme, operation: OperationKind) -> Vec<Dtype> {
         let mut out: Vec<Dtype> = Vec::new();
         for support in self
             .supports
@@ -394,15 +357,22 @@ fn parse_entry(entry: &Value, at: &str) -> Result<Support, String> {
     };
     let operations = match object.get("operations").and_then(Value::as_array) {
         None => return Err(format!("{at}.operations must be a list of operation names")),
-        Some(list) => list
-            .iter()
-            .enumerate()
-            .map(|(i, o)| {
-                o.as_str()
-                    .map(str::to_string)
-                    .ok_or_else(|| format!("{at}.operations[{i}]: {o} is not a string"))
-            })
-            .collect::<Result<Vec<_>, _>>()?,
+        Some(list) => {
+            let mut operations = Vec::new();
+            for (i, o) in list.iter().enumerate() {
+                let name = o
+                    .as_str()
+                    .ok_or_else(|| format!("{at}.operations[{i}]: {o} is not a string"))?;
+                // Names of operations this build does not know are ignored (a newer
+                // kernel may list more).
+                if let Ok(kind) = name.parse::<OperationKind>() {
+                    if !operations.contains(&kind) {
+                        operations.push(kind);
+                    }
+                }
+            }
+            operations
+        }
     };
     let mut support = Support {
         scheme,
@@ -474,10 +444,7 @@ fn parse_entry(entry: &Value, at: &str) -> Result<Support, String> {
 }
 
 fn parameters_of(scheme: Scheme) -> Vec<String> {
-    parameters(scheme)
-        .iter()
-        .map(|(n, _)| n.to_string())
-        .collect()
+    parameters(scheme).map(|(n, _)| n.to_string()).collect()
 }
 
 /// The coverage categories of a parameter: the values whose difference matters to a
@@ -568,7 +535,7 @@ pub fn never_exercised(info: &KernelInfo, exercised: &[(Case, Dtype)]) -> Vec<Ga
             gap(scheme.name().to_string(), true);
             continue;
         }
-        for operation in OPERATIONS {
+        for operation in OperationKind::ALL {
             let what = format!("{} {operation}", scheme.name());
             if !entries.iter().any(|s| operation_is(s, operation)) {
                 gap(what, false);
@@ -576,7 +543,7 @@ pub fn never_exercised(info: &KernelInfo, exercised: &[(Case, Dtype)]) -> Vec<Ga
             }
             let ran_here: Vec<&&(Case, Dtype)> = ran
                 .iter()
-                .filter(|(c, _)| c.operation.name() == operation)
+                .filter(|(c, _)| c.operation.kind() == operation)
                 .collect();
             if ran_here.is_empty() {
                 gap(what, true);
@@ -590,9 +557,9 @@ pub fn never_exercised(info: &KernelInfo, exercised: &[(Case, Dtype)]) -> Vec<Ga
         }
         let attends = entries
             .iter()
-            .any(|s| s.operations.iter().any(|o| o != "encode"));
-        for &(name, kind) in parameters(scheme) {
-            let scores_only = scores_only(name);
+            .any(|s| s.operations.iter().any(|&o| o != OperationKind::Encode));
+        for (name, kind) in parameters(scheme) {
+            let scores_only = !affects_encode(scheme, name);
             if scores_only && !attends {
                 continue;
             }
@@ -603,7 +570,7 @@ pub fn never_exercised(info: &KernelInfo, exercised: &[(Case, Dtype)]) -> Vec<Ga
                     })
                 });
                 let covered = ran.iter().any(|(c, _)| {
-                    if scores_only && c.operation.name() == "encode" {
+                    if scores_only && c.operation == Operation::Encode {
                         return false;
                     }
                     let values = parameter_values(c);

@@ -15,9 +15,6 @@ pub mod capability;
 pub mod protocol;
 pub mod stdio;
 
-/// The operation names, in the order reports list them.
-pub const OPERATIONS: [&str; 5] = ["encode", "scores", "attention", "stream", "decode"];
-
 /// One `supports` entry of the handshake: a scheme, the operations a kernel implements
 /// for it, and optionally the parameter values and dtypes it accepts there
 /// (docs/protocol.md, "Capabilities"; [`Support::new`] and its `with_` methods build
@@ -26,8 +23,8 @@ pub const OPERATIONS: [&str; 5] = ["encode", "scores", "attention", "stream", "d
 pub struct Support {
     /// The scheme.
     pub scheme: Scheme,
-    /// Operation names (`encode`, `scores`, `attention`, `stream`, `decode`).
-    pub operations: Vec<String>,
+    /// The operations it implements for the scheme.
+    pub operations: Vec<crate::case::OperationKind>,
     /// Accepted forms per parameter of the scheme; a parameter not named accepts every
     /// value.
     #[serde(skip_serializing_if = "std::collections::BTreeMap::is_empty")]
@@ -133,7 +130,7 @@ impl Default for ReferenceKernel {
 pub fn full_support() -> Vec<Support> {
     Scheme::ALL
         .iter()
-        .map(|&scheme| Support::new(scheme, &OPERATIONS))
+        .map(|&scheme| Support::new(scheme, &crate::case::OperationKind::ALL))
         .collect()
 }
 
@@ -141,13 +138,13 @@ pub fn full_support() -> Vec<Support> {
 pub fn outputs_in(outputs: reference::Outputs, dtype: Dtype) -> Arrays {
     outputs
         .into_iter()
-        .map(|(name, values)| {
-            let dtype = if crate::case::is_integer_output(&name) {
+        .map(|(output, values)| {
+            let dtype = if output.is_integer() {
                 Dtype::I64
             } else {
                 dtype
             };
-            (name, Tensor::from_f64(dtype, values))
+            (output.name().to_string(), Tensor::from_f64(dtype, values))
         })
         .collect()
 }

@@ -121,7 +121,7 @@ impl Contract {
 
     /// Error of one sinusoid or cos/sin table value besides its angle error: sine or
     /// cosine evaluated at the angle precision (2u_a), stored in the dtype (u_s), and
-    /// the reference's own value (within 2 ulps of the truth: src/angle.rs).
+    /// the reference's own value (within 2 ulps of the truth: src/math/angle.rs).
     pub fn table_value_error(&self) -> f64 {
         2.0 * self.angle + self.storage + 3.0 * R64
     }

@@ -144,7 +144,7 @@ struct CaseDocument<'a> {
     query_len: usize,
     random: bool,
     verdict: &'a Verdict,
-    warnings: &'a [String],
+    warnings: &'a [crate::compare::Warning],
     outputs: Vec<OutputDocument<'a>>,
 }
 
@@ -152,8 +152,8 @@ impl<'a> CaseDocument<'a> {
     fn new(case: &'a CaseReport, random: bool) -> Self {
         CaseDocument {
             id: &case.case,
-            scheme: &case.scheme,
-            operation: &case.operation,
+            scheme: case.scheme_name(),
+            operation: case.operation_name(),
             faults: &case.faults,
             memory_len: case.memory_len,
             query_len: case.query_len,
@@ -189,7 +189,7 @@ struct OutputDocument<'a> {
 impl<'a> From<&'a OutputReport> for OutputDocument<'a> {
     fn from(output: &'a OutputReport) -> Self {
         OutputDocument {
-            name: &output.name,
+            name: output.name.name(),
             shape: &output.shape,
             dtype: output.dtype,
             array_dtype: output.array_dtype,

@@ -76,7 +76,7 @@ fn write_case(xml: &mut String, case: &CaseReport) {
     let _ = write!(
         xml,
         "    <testcase classname=\"{}\" name=\"{}\"",
-        escape(&format!("{}.{}", case.scheme, case.operation)),
+        escape(&format!("{}.{}", case.scheme_name(), case.operation_name())),
         escape(&case.case)
     );
     let mut warnings_written = false;
@@ -254,7 +254,7 @@ fn failure_body(case: &CaseReport) -> String {
     body
 }
 
-fn warning_lines(warnings: &[String]) -> String {
+fn warning_lines(warnings: &[crate::compare::Warning]) -> String {
     warnings.iter().map(|w| format!("warning: {w}\n")).collect()
 }
 

@@ -3,6 +3,7 @@
 
 use std::fmt::Write as _;
 
+use crate::case::{OperationKind, Output};
 use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
 use crate::report::{printable, Report};
 
@@ -12,23 +13,28 @@ fn printable_lines(text: &str) -> impl Iterator<Item = String> + '_ {
 }
 
 /// Names of the axes of an output, for "head 0, query 3, key 7" style coordinates.
-pub fn axis_names(case: &CaseReport, output: &str) -> &'static [&'static str] {
+pub fn axis_names(case: &CaseReport, output: Output) -> &'static [&'static str] {
     match output {
-        "scores" | "probs" => &["head", "query", "key"],
-        "output" if case.operation == "stream" || case.operation == "decode" => {
+        Output::Scores | Output::Probs => &["head", "query", "key"],
+        Output::Output
+            if matches!(
+                case.operation,
+                Some(OperationKind::Stream | OperationKind::Decode)
+            ) =>
+        {
             &["head", "token", "dim"]
         }
-        "output" => &["head", "query", "dim"],
-        "rotated" => &["head", "position", "dim"],
-        "r" => &["head", "distance", "dim"],
-        "table" | "rows" => &["position", "dim"],
-        "slopes" => &["head"],
-        _ => &["index"],
+        Output::Output => &["head", "query", "dim"],
+        Output::Rotated => &["head", "position", "dim"],
+        Output::R => &["head", "distance", "dim"],
+        Output::Table | Output::Rows => &["position", "dim"],
+        Output::Slopes => &["head"],
+        Output::Buckets | Output::Indices => &["index"],
     }
 }
 
 /// `head 0, query 3, key 7` for an index of `output`.
-pub fn describe_index(case: &CaseReport, output: &str, index: &[usize]) -> String {
+pub fn describe_index(case: &CaseReport, output: Output, index: &[usize]) -> String {
     let names = axis_names(case, output);
     index
         .iter()
@@ -101,7 +107,8 @@ pub fn describe_pattern(case: &CaseReport, p: &Pattern) -> String {
             format!("{count} {} the query must see masked", if *count == 1 { "key is" } else { "keys are" })
         }
         Pattern::BeginsAtRow { row } => {
-            let segment = if case.operation == "stream" && case.query_len > 0 {
+            let segment = if case.operation == Some(OperationKind::Stream) && case.query_len > 0
+            {
                 format!(" (segment {})", row / case.query_len)
             } else {
                 String::new()
@@ -167,7 +174,7 @@ pub fn render(report: &Report) -> String {
                     continue;
                 }
                 Verdict::Fail => {
-                    let key = (case.scheme.as_str(), case.operation.as_str());
+                    let key = (case.scheme_name(), case.operation_name());
                     match random_failed.iter_mut().find(|(k, _)| *k == key) {
                         Some((_, ids)) => ids.push(&case.case),
                         None => random_failed.push((key, vec![&case.case])),
@@ -184,7 +191,7 @@ pub fn render(report: &Report) -> String {
                     "  {:<7} {:<width$}  {:<8} {:>10.2e} {:>10.2e} {:>9}  {}",
                     verdict_word(&case.verdict),
                     printable(&case.case),
-                    printable(&o.name),
+                    o.name.name(),
                     o.worst_error,
                     o.worst_tolerance,
                     format_ratio(o.worst_ratio),
@@ -264,12 +271,13 @@ pub fn render(report: &Report) -> String {
         }
     }
     // The same warning on many cases is printed once, with the cases it concerns.
-    let mut warnings: Vec<(&str, Vec<&str>)> = Vec::new();
+    let mut warnings: Vec<(String, Vec<&str>)> = Vec::new();
     for case in &report.cases {
         for w in &case.warnings {
-            match warnings.iter_mut().find(|(text, _)| text == w) {
+            let text = w.to_string();
+            match warnings.iter_mut().find(|(t, _)| *t == text) {
                 Some((_, ids)) => ids.push(&case.case),
-                None => warnings.push((w, vec![&case.case])),
+                None => warnings.push((text, vec![&case.case])),
             }
         }
     }
@@ -435,8 +443,8 @@ fn findings_of(s: &mut String, case: &CaseReport) {
         "  {} {} [{} {}]{targets}",
         verdict_word(&case.verdict),
         printable(&case.case),
-        printable(&case.scheme),
-        printable(&case.operation)
+        case.scheme_name(),
+        case.operation_name()
     );
     if let Verdict::Error(reason) = &case.verdict {
         for line in printable_lines(reason) {
@@ -459,7 +467,7 @@ fn findings_of(s: &mut String, case: &CaseReport) {
             let _ = writeln!(
                 s,
                 "      worst at {}: got {got}, expected {expected}, error {:.2e}, tolerance {:.2e} ({}x)",
-                describe_index(case, &o.name, idx),
+                describe_index(case, o.name, idx),
                 o.worst_error,
                 o.worst_tolerance,
                 format_ratio(o.worst_ratio)
@@ -535,7 +543,7 @@ pub fn render_minimal(minimal: &[crate::check::MinimalFailure]) -> String {
                     s,
                     "    {}: worst at {}: got {got}, expected {expected}, error {:.2e}, tolerance {:.2e}",
                     o.name,
-                    describe_index(&m.report, &o.name, idx),
+                    describe_index(&m.report, o.name, idx),
                     o.worst_error,
                     o.worst_tolerance
                 );

@@ -35,10 +35,16 @@
 //! # Ok::<(), posconform::Error>(())
 //! ```
 
-use ndarray::{s, Array3, ArrayView3, ArrayViewMut2, Axis, Zip};
+use ndarray::{s, Array1, Array3, ArrayD, ArrayView3, ArrayViewMut2, Axis, Zip};
 
 use crate::attention::{attend, masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
+use crate::math::contract::{gamma_of, R64};
+use crate::math::{Contract, Stream};
+use crate::scheme::model::{
+    finite_or_zero, head_products, Inputs, Parameter, SchemeKind, SchemeModel,
+};
+use crate::shape::{InputSpec, Output, Shape};
 
 /// The largest head count [`slopes`] accepts; far above any published model, and it
 /// keeps the doubled block count of the non-power-of-two rule from overflowing.
@@ -302,5 +308,104 @@ mod tests {
         };
         let err = scores(q.view(), k.view(), &[0.5], &params).unwrap_err();
         assert!(err.to_string().contains("`query_start`"), "{err}");
+    }
+}
+
+// ---------------------------------------------------------------------------------
+// The scheme in cases: parameters, arrays, reference, bounds, random parameters.
+
+/// An ALiBi case's parameters (`{"name": "alibi", "scale": …}`): the distance form of
+/// the bias with the published slopes for the case's head count.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct AlibiSpec {
+    /// Scale of `q·k` (never of the bias).
+    pub scale: Scale,
+}
+
+impl SchemeModel for AlibiSpec {
+    fn scale(&self) -> Scale {
+        self.scale
+    }
+
+    fn validate(&self, shape: &Shape<'_>) -> Result<()> {
+        self.scale.validate()?;
+        slopes(shape.heads).map(drop)
+    }
+
+    fn encode_inputs(&self, _shape: &Shape<'_>) -> Vec<InputSpec> {
+        Vec::new()
+    }
+
+    fn encode_output(&self, shape: &Shape<'_>) -> (Output, Vec<usize>) {
+        (Output::Slopes, vec![shape.heads])
+    }
+
+    fn encode(&self, shape: &Shape<'_>, _inputs: &Inputs<'_, '_>) -> Result<ArrayD<f64>> {
+        Ok(Array1::from(slopes(shape.heads)?).into_dyn())
+    }
+
+    fn window_scores(
+        &self,
+        shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        p0: i64,
+    ) -> Result<Array3<f64>> {
+        let params = AlibiParams {
+            scale: self.scale,
+            form: BiasForm::Distance,
+            query_start: p0,
+        };
+        scores(q, k, &slopes(shape.heads)?, &params)
+    }
+
+    fn score_terms(
+        &self,
+        shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        p0: i64,
+        contract: &Contract,
+    ) -> Result<Array3<f64>> {
+        let d = shape.head_dim;
+        let factor = self.scale.factor(d).abs();
+        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let window = window_for(q, k)?;
+        let bias = bias(&slopes(shape.heads)?, window, BiasForm::Distance, p0)?;
+        let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
+        // The slope formed at the angle precision, the product m·Δ and the bias stored
+        // in the dtype.
+        Ok(
+            head_products(&qa, &ka, factor) * (gamma + contract.storage + 2.0 * contract.input)
+                + bias.mapv(|b| finite_or_zero(b).abs())
+                    * (contract.angle + contract.storage + R64),
+        )
+    }
+
+    fn encode_bounds(
+        &self,
+        _shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        values: &ArrayD<f64>,
+        contract: &Contract,
+    ) -> Result<ArrayD<f64>> {
+        // Slopes formed at the angle precision and stored in the dtype.
+        Ok(values.mapv(|m| (contract.angle + contract.storage + R64) * m.abs() + contract.floor))
+    }
+}
+
+impl SchemeKind for AlibiSpec {
+    const SOURCE: &'static str = "Press, Smith, Lewis 2022, Train Short, Test Long (ALiBi), §3";
+
+    const PARAMETERS: &'static [Parameter] = &[Parameter::SCALE];
+
+    const MAX_RANDOM_HEADS: usize = 12;
+
+    fn random(_stream: &mut Stream, _shape: &Shape<'_>) -> Self {
+        AlibiSpec {
+            scale: Scale::InverseSqrtDim,
+        }
     }
 }

@@ -36,11 +36,18 @@
 //! # Ok::<(), posconform::Error>(())
 //! ```
 
-use ndarray::{s, Array3, ArrayView2, ArrayView3, Axis, Zip};
+use ndarray::{s, Array1, Array3, ArrayD, ArrayView2, ArrayView3, Axis, Zip};
 
 use crate::attention::{attend, masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
+use crate::math::contract::{gamma_of, R64};
+use crate::math::{Contract, Stream};
 use crate::scheme::alibi::expect_values;
+use crate::scheme::model::{
+    finite_or_zero, head_products, pick, range, Inputs, Parameter, ParameterKind, SchemeKind,
+    SchemeModel,
+};
+use crate::shape::{InputSpec, Output, Shape};
 
 /// A validated bucketing rule: bucket count, max distance, direction.
 ///
@@ -368,5 +375,139 @@ mod tests {
             serde_json::from_str::<Buckets>(good).unwrap(),
             Buckets::t5(false)
         );
+    }
+}
+
+// ---------------------------------------------------------------------------------
+// The scheme in cases: parameters, arrays, reference, bounds, random parameters.
+
+/// A bucketed case's parameters (`{"name": "bucketed", "num_buckets": …,
+/// "max_distance": …, "bidirectional": …, "scale": …}`); the per-head bias table
+/// `bias_table[H, num_buckets]` is an input.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct BucketedSpec {
+    /// Number of buckets.
+    pub num_buckets: usize,
+    /// Distance where the logarithmic buckets end.
+    pub max_distance: usize,
+    /// Whether keys after the query get their own buckets.
+    pub bidirectional: bool,
+    /// Scale of `q·k` (T5 uses 1).
+    pub scale: Scale,
+}
+
+impl BucketedSpec {
+    fn rule(&self) -> Result<Buckets> {
+        Buckets::new(self.num_buckets, self.max_distance, self.bidirectional)
+    }
+
+    /// How far the relative positions of `encode` reach on each side of 0: twice the
+    /// last logarithmic distance, or the key length if longer (saturating).
+    fn reach(&self, shape: &Shape<'_>) -> u64 {
+        let sat = |x: usize| u64::try_from(x).unwrap_or(u64::MAX);
+        sat(self.max_distance)
+            .saturating_mul(2)
+            .max(sat(shape.key_len()))
+    }
+}
+
+impl SchemeModel for BucketedSpec {
+    fn scale(&self) -> Scale {
+        self.scale
+    }
+
+    fn validate(&self, _shape: &Shape<'_>) -> Result<()> {
+        self.scale.validate()?;
+        self.rule().map(drop)
+    }
+
+    fn encode_inputs(&self, shape: &Shape<'_>) -> Vec<InputSpec> {
+        vec![InputSpec::relative_positions(self.reach(shape))]
+    }
+
+    fn window_inputs(&self, shape: &Shape<'_>) -> Vec<InputSpec> {
+        vec![InputSpec::uniform(
+            "bias_table",
+            vec![shape.heads, self.num_buckets],
+            2.0,
+        )]
+    }
+
+    fn encode_output(&self, shape: &Shape<'_>) -> (Output, Vec<usize>) {
+        let len = InputSpec::relative_positions(self.reach(shape)).shape;
+        (Output::Buckets, len)
+    }
+
+    fn encode(&self, _shape: &Shape<'_>, inputs: &Inputs<'_, '_>) -> Result<ArrayD<f64>> {
+        let rule = self.rule()?;
+        let relative = inputs.positions("relative_positions")?;
+        Ok(Array1::from_iter(relative.iter().map(|&r| bucket(r, &rule) as f64)).into_dyn())
+    }
+
+    fn window_scores(
+        &self,
+        _shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        _p0: i64,
+    ) -> Result<Array3<f64>> {
+        let params = BucketedParams {
+            buckets: self.rule()?,
+            scale: self.scale,
+        };
+        scores(q, k, inputs.get2("bias_table")?, &params)
+    }
+
+    fn score_terms(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        _p0: i64,
+        contract: &Contract,
+    ) -> Result<Array3<f64>> {
+        let d = shape.head_dim;
+        let factor = self.scale.factor(d).abs();
+        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let window = window_for(q, k)?;
+        let bias = bias(inputs.get2("bias_table")?, window, &self.rule()?)?;
+        let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
+        Ok(
+            head_products(&qa, &ka, factor) * (gamma + contract.storage + 2.0 * contract.input)
+                + bias.mapv(|b| finite_or_zero(b).abs()) * (contract.storage + contract.input),
+        )
+    }
+
+    fn encode_bounds(
+        &self,
+        _shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        values: &ArrayD<f64>,
+        _contract: &Contract,
+    ) -> Result<ArrayD<f64>> {
+        Ok(ArrayD::zeros(values.raw_dim()))
+    }
+}
+
+impl SchemeKind for BucketedSpec {
+    const SOURCE: &'static str = "Raffel et al. 2020, T5, §2.1";
+
+    const PARAMETERS: &'static [Parameter] = &[
+        Parameter::new("num_buckets", ParameterKind::Number),
+        Parameter::new("max_distance", ParameterKind::Number),
+        Parameter::new("bidirectional", ParameterKind::Bool),
+        Parameter::SCALE,
+    ];
+
+    fn random(stream: &mut Stream, _shape: &Shape<'_>) -> Self {
+        let num_buckets = pick(stream, &[8usize, 16, 32]);
+        BucketedSpec {
+            num_buckets,
+            max_distance: num_buckets * range(stream, 1, 4),
+            bidirectional: stream.below(2) == 0,
+            scale: Scale::Fixed(1.0),
+        }
     }
 }

@@ -40,11 +40,17 @@
 //! # Ok::<(), Box<dyn std::error::Error>>(())
 //! ```
 
-use ndarray::{s, Array2, Array3, ArrayView2, ArrayView3, Axis};
+use ndarray::{s, Array1, Array2, Array3, ArrayD, ArrayView2, ArrayView3, Axis};
 
 use crate::attention::{masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
+use crate::math::contract::{gamma_of, R64};
+use crate::math::{Contract, Stream};
 use crate::scheme::alibi::expect_values;
+use crate::scheme::model::{
+    finite_or_zero, range, Inputs, Parameter, ParameterKind, SchemeKind, SchemeModel,
+};
+use crate::shape::{InputSpec, Output, Shape};
 
 /// Parameters of clipped relative scoring.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -266,5 +272,171 @@ mod tests {
         )
         .unwrap_err();
         assert!(err.to_string().contains("`w_value`"), "{err}");
+    }
+}
+
+// ---------------------------------------------------------------------------------
+// The scheme in cases: parameters, arrays, reference, bounds, random parameters.
+
+/// A clipped case's parameters (`{"name": "clipped", "clip_distance": …, "scale": …}`);
+/// the embedding tables `w_key`, `w_value[H, 2k+1, d]` are inputs.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ClippedSpec {
+    /// `k`, the clip distance.
+    pub clip_distance: usize,
+    /// Score scale.
+    pub scale: Scale,
+}
+
+/// The largest clip distance a case may ask for (keeps `2k+1` rows sane).
+const MAX_CLIP: usize = 1 << 20;
+
+impl ClippedSpec {
+    fn params(&self) -> ClippedParams {
+        ClippedParams {
+            clip_distance: self.clip_distance,
+            scale: self.scale,
+        }
+    }
+
+    /// How far the relative positions of `encode` reach on each side of 0: past the
+    /// clip on both sides, or the key length if longer (saturating).
+    fn reach(&self, shape: &Shape<'_>) -> u64 {
+        let sat = |x: usize| u64::try_from(x).unwrap_or(u64::MAX);
+        sat(self.clip_distance)
+            .saturating_mul(2)
+            .saturating_add(2)
+            .max(sat(shape.key_len()))
+    }
+}
+
+impl SchemeModel for ClippedSpec {
+    fn scale(&self) -> Scale {
+        self.scale
+    }
+
+    fn validate(&self, _shape: &Shape<'_>) -> Result<()> {
+        self.scale.validate()?;
+        if self.clip_distance > MAX_CLIP {
+            return Err(Error::param(
+                "scheme.clip_distance",
+                "<= 2^20",
+                self.clip_distance,
+            ));
+        }
+        Ok(())
+    }
+
+    fn encode_inputs(&self, shape: &Shape<'_>) -> Vec<InputSpec> {
+        vec![InputSpec::relative_positions(self.reach(shape))]
+    }
+
+    fn window_inputs(&self, shape: &Shape<'_>) -> Vec<InputSpec> {
+        let rows = 2 * self.clip_distance + 1;
+        vec![
+            InputSpec::uniform("w_key", vec![shape.heads, rows, shape.head_dim], 0.5),
+            InputSpec::uniform("w_value", vec![shape.heads, rows, shape.head_dim], 0.5),
+        ]
+    }
+
+    fn encode_output(&self, shape: &Shape<'_>) -> (Output, Vec<usize>) {
+        let len = InputSpec::relative_positions(self.reach(shape)).shape;
+        (Output::Indices, len)
+    }
+
+    fn encode(&self, _shape: &Shape<'_>, inputs: &Inputs<'_, '_>) -> Result<ArrayD<f64>> {
+        let relative = inputs.positions("relative_positions")?;
+        Ok(Array1::from_iter(
+            relative
+                .iter()
+                .map(|&r| embedding_index(r, self.clip_distance) as f64),
+        )
+        .into_dyn())
+    }
+
+    fn window_scores(
+        &self,
+        _shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        _p0: i64,
+    ) -> Result<Array3<f64>> {
+        scores(q, k, inputs.get3("w_key")?, &self.params())
+    }
+
+    fn add_value_terms(
+        &self,
+        inputs: &Inputs<'_, '_>,
+        probs: &Array3<f64>,
+        out: &mut Array3<f64>,
+        window: Window,
+        absolute: bool,
+    ) -> Result<()> {
+        let w_value = inputs.get3("w_value")?;
+        let w_value = if absolute {
+            w_value.mapv(f64::abs)
+        } else {
+            w_value.to_owned()
+        };
+        for ((h, i, j), &p) in probs.indexed_iter() {
+            if p != 0.0 {
+                let relative = j as i64 - (window.memory_len() + i) as i64;
+                let row = embedding_index(relative, self.clip_distance);
+                let mut o = out.slice_mut(s![h, i, ..]);
+                o.scaled_add(p, &w_value.slice(s![h, row, ..]));
+            }
+        }
+        Ok(())
+    }
+
+    fn score_terms(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        _p0: i64,
+        contract: &Contract,
+    ) -> Result<Array3<f64>> {
+        let d = shape.head_dim;
+        let factor = self.scale.factor(d).abs();
+        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let w = inputs.get3("w_key")?.mapv(f64::abs);
+        let params = ClippedParams {
+            clip_distance: self.clip_distance,
+            scale: Scale::Fixed(factor),
+        };
+        let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
+        Ok(
+            scores(qa.view(), ka.view(), w.view(), &params)?.mapv(finite_or_zero)
+                * (gamma + contract.storage + 2.0 * contract.input),
+        )
+    }
+
+    fn encode_bounds(
+        &self,
+        _shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        values: &ArrayD<f64>,
+        _contract: &Contract,
+    ) -> Result<ArrayD<f64>> {
+        Ok(ArrayD::zeros(values.raw_dim()))
+    }
+}
+
+impl SchemeKind for ClippedSpec {
+    const SOURCE: &'static str = "Shaw, Uszkoreit, Vaswani 2018, eqs. 3-5";
+
+    const PARAMETERS: &'static [Parameter] = &[
+        Parameter::new("clip_distance", ParameterKind::Number),
+        Parameter::SCALE,
+    ];
+
+    fn random(stream: &mut Stream, _shape: &Shape<'_>) -> Self {
+        ClippedSpec {
+            clip_distance: range(stream, 1, 8),
+            scale: Scale::InverseSqrtDim,
+        }
     }
 }

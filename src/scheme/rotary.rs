@@ -27,12 +27,21 @@
 //! raises the base to `b' = b·s^(d_rot/(d_rot-2))` (from a community post, as credited
 //! in Peng et al. 2023, "YaRN", Definition 1).
 
-use ndarray::{Array2, Array3, ArrayView3, Axis};
+use ndarray::{s, Array2, Array3, ArrayD, ArrayView3, Axis};
 
 use crate::attention::{attend, dot_scores, masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
 use crate::math::angle::{self, DoubleDouble};
+use crate::math::contract::{gamma_of, R64};
+use crate::math::product::gemm;
+use crate::math::{AngleScaling, Contract, Stream};
+use crate::scheme::model::{
+    pick, range, Inputs, Parameter, ParameterKind, SchemeKind, SchemeModel,
+};
 use crate::scheme::sinusoidal::precise_frequencies;
+use crate::scheme::xl_relative::standard_positions;
+use crate::scheme::SchemeSpec;
+use crate::shape::{InputSpec, Output, Shape};
 
 /// The base of the paper's `θ_i = 10000^(-2(i-1)/d)` (Su et al. 2021, under eq. 15,
 /// from memory; the same base as Vaswani et al. 2017, §3.5).
@@ -679,5 +688,254 @@ mod tests {
         assert_eq!((cache.len(), cache.next_position()), (2, 102));
         assert!(RotaryCache::new(rope(4), 0, 3, 0, Scale::default()).is_err());
         assert!(RotaryCache::new(rope(4), 1, 3, i64::MAX, Scale::default()).is_err());
+    }
+}
+
+// ---------------------------------------------------------------------------------
+// The scheme in cases: parameters, arrays, reference, bounds, random parameters.
+
+/// A rotary case's parameters (`{"name": "rotary", "rotary_dim": …, "base": …,
+/// "pairing": …, "scaling": …, "scale": …}`): queries and keys rotated at their
+/// absolute positions, then scaled dot products.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct RotarySpec {
+    /// `d_rot`, the rotated leading part of each head.
+    pub rotary_dim: usize,
+    /// Frequency base.
+    pub base: f64,
+    /// Pair layout.
+    pub pairing: Pairing,
+    /// Context-extension scaling.
+    pub scaling: RotaryScaling,
+    /// Score scale.
+    pub scale: Scale,
+}
+
+impl RotarySpec {
+    /// The rotary encoding of these parameters for heads of width `head_dim`.
+    pub fn rotary(&self, head_dim: usize) -> Result<Rotary> {
+        Rotary::new(RotaryParams {
+            head_dim,
+            rotary_dim: self.rotary_dim,
+            base: self.base,
+            pairing: self.pairing,
+            scaling: self.scaling,
+        })
+    }
+
+    fn angle_scaling(&self) -> AngleScaling {
+        match self.scaling {
+            RotaryScaling::None => AngleScaling::None,
+            RotaryScaling::LinearInterpolation { .. } => AngleScaling::Linear,
+            RotaryScaling::NtkAware { .. } => AngleScaling::Ntk,
+        }
+    }
+}
+
+impl SchemeModel for RotarySpec {
+    fn scale(&self) -> Scale {
+        self.scale
+    }
+
+    fn validate(&self, shape: &Shape<'_>) -> Result<()> {
+        self.scale.validate()?;
+        self.rotary(shape.head_dim).map(drop)
+    }
+
+    fn encode_inputs(&self, shape: &Shape<'_>) -> Vec<InputSpec> {
+        vec![
+            InputSpec::uniform("x", vec![shape.heads, shape.query_len, shape.head_dim], 1.0),
+            InputSpec::positions(shape.query_len),
+        ]
+    }
+
+    fn encode_output(&self, shape: &Shape<'_>) -> (Output, Vec<usize>) {
+        (
+            Output::Rotated,
+            vec![shape.heads, shape.query_len, shape.head_dim],
+        )
+    }
+
+    fn encode(&self, shape: &Shape<'_>, inputs: &Inputs<'_, '_>) -> Result<ArrayD<f64>> {
+        let rotary = self.rotary(shape.head_dim)?;
+        Ok(rotary
+            .apply(inputs.get3("x")?, &inputs.positions("positions")?)?
+            .into_dyn())
+    }
+
+    fn window_scores(
+        &self,
+        shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        p0: i64,
+    ) -> Result<Array3<f64>> {
+        Ok(scores(&self.rotary(shape.head_dim)?, q, k, p0, self.scale)?.0)
+    }
+
+    /// Per rotated pair `j`, `ρ_q ρ_k (δθ_q + δθ_k + 4e + 4e² + γ')` (a rotation by a
+    /// wrong angle moves a pair of norm `ρ` by `ρ·|δθ|`; `e` is the relative error of one
+    /// rotated component from cos/sin evaluation, storage, the rotation's products and
+    /// the inputs' rounding), plus `(2·input + γ')·Σ|q_c k_c|` over the pass-through
+    /// tail; all times the scale.
+    fn score_terms(
+        &self,
+        shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        p0: i64,
+        contract: &Contract,
+    ) -> Result<Array3<f64>> {
+        let window = window_for(q, k)?;
+        let (qp, kp) = standard_positions(window, p0);
+        let rot = self.rotary(shape.head_dim)?;
+        let params = *rot.params();
+        let pairs = params.rotary_dim / 2;
+        let d = shape.head_dim;
+        let factor = self.scale.factor(d).abs();
+        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let e = contract.rotated_component_error();
+        let per_pair = 4.0 * e + 4.0 * e * e + gamma;
+        let scaling = self.angle_scaling();
+        let angle_errors = |positions: &[i64]| -> Result<Array2<f64>> {
+            let mut out = Array2::zeros((positions.len(), pairs));
+            for (n, &p) in positions.iter().enumerate() {
+                for (j, theta) in rot.angles(p)?.into_iter().enumerate() {
+                    out[[n, j]] =
+                        contract.angle_error(p as f64, theta, rot.frequencies()[j], scaling);
+                }
+            }
+            Ok(out)
+        };
+        let (dq, dk) = (angle_errors(&qp)?, angle_errors(&kp)?);
+        let norms = |x: ArrayView3<'_, f64>| {
+            Array3::from_shape_fn((x.dim().0, x.dim().1, pairs), |(h, n, j)| {
+                let (a, b) = params.pairing.pair_indices(j, params.rotary_dim);
+                x[[h, n, a]].hypot(x[[h, n, b]])
+            })
+        };
+        let (rq, rk) = (norms(q), norms(k));
+        let weighted = |rho: &Array3<f64>, delta: &Array2<f64>| {
+            Array3::from_shape_fn(rho.raw_dim(), |(h, n, j)| rho[[h, n, j]] * delta[[n, j]])
+        };
+        let (rq_dq, rk_dk) = (weighted(&rq, &dq), weighted(&rk, &dk));
+        let tail = |x: ArrayView3<'_, f64>| x.slice(s![.., .., params.rotary_dim..]).mapv(f64::abs);
+        let (tq, tk) = (tail(q), tail(k));
+        let (heads, l, kk) = (shape.heads, q.dim().1, k.dim().1);
+        let mut out = Array3::zeros((heads, l, kk));
+        for h in 0..heads {
+            let mut o = out.index_axis_mut(Axis(0), h);
+            let (rq, rk) = (rq.index_axis(Axis(0), h), rk.index_axis(Axis(0), h));
+            gemm(factor, &rq_dq.index_axis(Axis(0), h), &rk.t(), 0.0, &mut o);
+            gemm(factor, &rq, &rk_dk.index_axis(Axis(0), h).t(), 1.0, &mut o);
+            gemm(factor * per_pair, &rq, &rk.t(), 1.0, &mut o);
+            if params.rotary_dim < d {
+                let tail_coefficient = 2.0 * contract.input + gamma;
+                gemm(
+                    factor * tail_coefficient,
+                    &tq.index_axis(Axis(0), h),
+                    &tk.index_axis(Axis(0), h).t(),
+                    1.0,
+                    &mut o,
+                );
+            }
+        }
+        Ok(out)
+    }
+
+    fn encode_bounds(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        values: &ArrayD<f64>,
+        contract: &Contract,
+    ) -> Result<ArrayD<f64>> {
+        let rot = self.rotary(shape.head_dim)?;
+        let params = *rot.params();
+        let x = inputs.get3("x")?;
+        let positions = inputs.positions("positions")?;
+        let e = contract.rotated_component_error();
+        let scaling = self.angle_scaling();
+        let floor = contract.floor;
+        // The pass-through tail: only the inputs' rounding.
+        let mut bound = values.mapv(|v| contract.input * v.abs() + floor);
+        for (n, &p) in positions.iter().enumerate() {
+            let angles = rot.angles(p)?;
+            for (j, (&theta, &omega)) in angles.iter().zip(rot.frequencies()).enumerate() {
+                let delta = contract.angle_error(p as f64, theta, omega, scaling);
+                let (a, b) = params.pairing.pair_indices(j, params.rotary_dim);
+                for h in 0..shape.heads {
+                    let (xa, xb) = (x[[h, n, a]], x[[h, n, b]]);
+                    let pair = xa.hypot(xb) * delta + (xa.abs() + xb.abs()) * e;
+                    bound[[h, n, a].as_slice()] = pair + floor;
+                    bound[[h, n, b].as_slice()] = pair + floor;
+                }
+            }
+        }
+        Ok(bound)
+    }
+
+    fn simpler(&self, shape: &Shape<'_>) -> Vec<SchemeSpec> {
+        vec![
+            SchemeSpec::Rotary(RotarySpec {
+                rotary_dim: shape.head_dim,
+                ..*self
+            }),
+            SchemeSpec::Rotary(RotarySpec {
+                scaling: RotaryScaling::None,
+                ..*self
+            }),
+        ]
+    }
+
+    fn fit_head_dim(&self, head_dim: usize) -> Option<SchemeSpec> {
+        Some(SchemeSpec::Rotary(RotarySpec {
+            rotary_dim: self.rotary_dim.min(head_dim),
+            ..*self
+        }))
+    }
+
+    fn extras(&self, shape: &Shape<'_>) -> usize {
+        (self.rotary_dim != shape.head_dim) as usize
+            + (self.scaling != RotaryScaling::None) as usize
+    }
+}
+
+impl SchemeKind for RotarySpec {
+    const SOURCE: &'static str = "Su et al. 2021, RoFormer, eqs. 14-16 and 34";
+
+    const PARAMETERS: &'static [Parameter] = &[
+        Parameter::new("rotary_dim", ParameterKind::RotaryDim),
+        Parameter::new("base", ParameterKind::Number),
+        Parameter::new("pairing", ParameterKind::Names(&["adjacent", "half_split"])),
+        Parameter::new("scaling", ParameterKind::Scaling),
+        Parameter::SCALE,
+    ];
+
+    fn random(stream: &mut Stream, shape: &Shape<'_>) -> Self {
+        let head_dim = shape.head_dim;
+        let rotary_dim = if stream.below(3) == 0 {
+            2 * range(stream, 1, head_dim / 2)
+        } else {
+            head_dim
+        };
+        let scaling = match stream.below(4) {
+            0 => RotaryScaling::LinearInterpolation {
+                factor: range(stream, 2, 8) as f64,
+            },
+            1 if rotary_dim > 2 => RotaryScaling::NtkAware {
+                factor: range(stream, 2, 8) as f64,
+            },
+            _ => RotaryScaling::None,
+        };
+        RotarySpec {
+            rotary_dim,
+            base: DEFAULT_BASE,
+            pairing: pick(stream, &[Pairing::Adjacent, Pairing::HalfSplit]),
+            scaling,
+            scale: Scale::InverseSqrtDim,
+        }
     }
 }

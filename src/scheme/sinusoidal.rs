@@ -133,3 +133,162 @@ pub(crate) fn precise_frequencies(width: usize, ln_base: DoubleDouble) -> Vec<Do
         .map(|i| angle::frequency(ln_base, (2 * i) as f64, width as f64))
         .collect()
 }
+
+// ---------------------------------------------------------------------------------
+// The scheme in cases: parameters, arrays, reference, bounds, random parameters.
+
+/// A sinusoidal case's parameters (`{"name": "sinusoidal", "base": …, "layout": …}`):
+/// the sinusoid of width `d` added to queries and keys at their absolute positions,
+/// scores scaled by `1/sqrt(d)`.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct SinusoidalSpec {
+    /// Frequency base.
+    pub base: f64,
+    /// Pair layout.
+    pub layout: SinusoidLayout,
+}
+
+impl SinusoidalSpec {
+    fn sinusoid(&self, width: usize) -> Result<Sinusoid> {
+        Sinusoid::new(width, self.base, self.layout)
+    }
+}
+
+/// The frequency index of component `c` in a vector of `width`.
+fn pair_of(layout: SinusoidLayout, c: usize, width: usize) -> usize {
+    match layout {
+        SinusoidLayout::Interleaved => c / 2,
+        SinusoidLayout::Concatenated => c % (width / 2),
+    }
+}
+
+/// Per-element error of a sinusoid table of `pe` at `positions` (the angle error of
+/// each entry, its evaluation and storage: docs/budgets.md, "Tables and rotations").
+pub(crate) fn table_errors(
+    pe: &Sinusoid,
+    rows: usize,
+    positions: &[i64],
+    contract: &crate::math::Contract,
+) -> Array2<f64> {
+    let width = pe.width();
+    Array2::from_shape_fn((rows, width), |(n, c)| {
+        let omega = pe.frequencies()[pair_of(pe.layout(), c, width)];
+        let p = positions[n] as f64;
+        contract.angle_error(p, p * omega, omega, crate::math::AngleScaling::None)
+            + contract.table_value_error()
+    })
+}
+
+impl crate::scheme::absolute::AbsoluteTable for SinusoidalSpec {
+    fn rows(
+        &self,
+        shape: &crate::shape::Shape<'_>,
+        _inputs: &crate::scheme::model::Inputs<'_, '_>,
+        positions: &[i64],
+    ) -> Result<Array2<f64>> {
+        Ok(self.sinusoid(shape.head_dim)?.table(positions))
+    }
+
+    fn row_errors(
+        &self,
+        shape: &crate::shape::Shape<'_>,
+        rows: &Array2<f64>,
+        positions: &[i64],
+        contract: &crate::math::Contract,
+    ) -> Array2<f64> {
+        match self.sinusoid(shape.head_dim) {
+            Ok(pe) => table_errors(&pe, rows.nrows(), positions, contract),
+            Err(_) => Array2::zeros(rows.raw_dim()),
+        }
+    }
+}
+
+impl crate::scheme::model::SchemeModel for SinusoidalSpec {
+    fn scale(&self) -> crate::attention::Scale {
+        crate::attention::Scale::InverseSqrtDim
+    }
+
+    fn validate(&self, shape: &crate::shape::Shape<'_>) -> Result<()> {
+        Sinusoid::new(shape.head_dim, self.base, SinusoidLayout::Interleaved).map(drop)
+    }
+
+    fn encode_inputs(&self, shape: &crate::shape::Shape<'_>) -> Vec<crate::shape::InputSpec> {
+        vec![crate::shape::InputSpec::positions(shape.query_len)]
+    }
+
+    fn encode_output(&self, shape: &crate::shape::Shape<'_>) -> (crate::shape::Output, Vec<usize>) {
+        (
+            crate::shape::Output::Table,
+            vec![shape.query_len, shape.head_dim],
+        )
+    }
+
+    fn encode(
+        &self,
+        shape: &crate::shape::Shape<'_>,
+        inputs: &crate::scheme::model::Inputs<'_, '_>,
+    ) -> Result<ndarray::ArrayD<f64>> {
+        let positions = inputs.positions("positions")?;
+        Ok(self.sinusoid(shape.head_dim)?.table(&positions).into_dyn())
+    }
+
+    fn window_scores(
+        &self,
+        shape: &crate::shape::Shape<'_>,
+        inputs: &crate::scheme::model::Inputs<'_, '_>,
+        q: ndarray::ArrayView3<'_, f64>,
+        k: ndarray::ArrayView3<'_, f64>,
+        p0: i64,
+    ) -> Result<ndarray::Array3<f64>> {
+        crate::scheme::absolute::window_scores(self, shape, inputs, q, k, p0)
+    }
+
+    fn score_terms(
+        &self,
+        shape: &crate::shape::Shape<'_>,
+        inputs: &crate::scheme::model::Inputs<'_, '_>,
+        q: ndarray::ArrayView3<'_, f64>,
+        k: ndarray::ArrayView3<'_, f64>,
+        p0: i64,
+        contract: &crate::math::Contract,
+    ) -> Result<ndarray::Array3<f64>> {
+        crate::scheme::absolute::score_terms(self, shape, inputs, q, k, p0, contract)
+    }
+
+    fn encode_bounds(
+        &self,
+        shape: &crate::shape::Shape<'_>,
+        inputs: &crate::scheme::model::Inputs<'_, '_>,
+        values: &ndarray::ArrayD<f64>,
+        contract: &crate::math::Contract,
+    ) -> Result<ndarray::ArrayD<f64>> {
+        let positions = inputs.positions("positions")?;
+        let pe = self.sinusoid(shape.head_dim)?;
+        let rows = values.shape().first().copied().unwrap_or(0);
+        Ok(table_errors(&pe, rows, &positions, contract)
+            .mapv(|e| e + contract.floor)
+            .into_dyn())
+    }
+}
+
+impl crate::scheme::model::SchemeKind for SinusoidalSpec {
+    const SOURCE: &'static str = "Vaswani et al. 2017, Attention Is All You Need, §3.5";
+
+    const PARAMETERS: &'static [crate::scheme::model::Parameter] = &[
+        crate::scheme::model::Parameter::new("base", crate::scheme::model::ParameterKind::Number),
+        crate::scheme::model::Parameter::new(
+            "layout",
+            crate::scheme::model::ParameterKind::Names(&["interleaved", "concatenated"]),
+        ),
+    ];
+
+    fn random(stream: &mut crate::math::Stream, _shape: &crate::shape::Shape<'_>) -> Self {
+        SinusoidalSpec {
+            base: DEFAULT_BASE,
+            layout: crate::scheme::model::pick(
+                stream,
+                &[SinusoidLayout::Interleaved, SinusoidLayout::Concatenated],
+            ),
+        }
+    }
+}

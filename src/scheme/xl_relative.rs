@@ -20,12 +20,19 @@
 //!   sequence, then the relative shift ([`rel_shift`]) applied as an index remap,
 //!   fused with the mask so no shifted copy of `BD` is ever built.
 
-use ndarray::{s, Array2, Array3, ArrayView1, ArrayView2, ArrayView3, Axis, Zip};
+use ndarray::{s, Array2, Array3, ArrayD, ArrayView1, ArrayView2, ArrayView3, Axis, Zip};
 
 use crate::attention::{expect_per_head, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
+use crate::math::contract::{gamma_of, R64};
 use crate::math::product::{gemm, matmul};
-use crate::scheme::sinusoidal::Sinusoid;
+use crate::math::{Contract, Stream};
+use crate::scheme::model::{
+    finite_or_zero, range, Inputs, Parameter, ParameterKind, SchemeKind, SchemeModel,
+};
+use crate::scheme::sinusoidal::{self, Sinusoid, SinusoidLayout};
+use crate::scheme::SchemeSpec;
+use crate::shape::{InputSpec, Operation, Output, Shape};
 
 /// The inputs of one relative-attention scoring step for all heads.
 ///
@@ -410,4 +417,216 @@ pub fn relative_embeddings(
         gemm(1.0, &table.view(), &w, 0.0, &mut o);
     }
     Ok(out)
+}
+
+// ---------------------------------------------------------------------------------
+// The scheme in cases: parameters, arrays, reference, bounds, random parameters.
+
+/// An xl_relative case's parameters (`{"name": "xl_relative", "scale": …, "clamp_len":
+/// …}`). The scheme's arrays are inputs: `r[H, R, d]` (rows by distance),
+/// `content_bias[H, d]` (u) and `position_bias[H, d]` (v); `encode` builds `r` from
+/// `w_kr[H, d, d]` and the concatenated sinusoid.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct XlRelativeSpec {
+    /// Score scale.
+    pub scale: Scale,
+    /// Optional clamp length of the distance.
+    pub clamp_len: Option<usize>,
+}
+
+impl XlRelativeSpec {
+    fn params(&self) -> RelativeParams {
+        RelativeParams {
+            scale: self.scale,
+            clamp_len: self.clamp_len,
+        }
+    }
+
+    /// Rows of `r` a case needs: `K` for one window, `min(T, M + L)` for `stream`, `T`
+    /// for `decode`, and with a clamp `c`, `min(that, c + 1)`.
+    pub fn relative_rows(&self, shape: &Shape<'_>) -> usize {
+        let rows = match shape.operation {
+            Operation::Stream { tokens } => (*tokens).min(shape.key_len()),
+            Operation::Decode { tokens, .. } => *tokens,
+            _ => shape.key_len(),
+        };
+        match self.clamp_len {
+            Some(c) => rows.min(c.saturating_add(1)),
+            None => rows,
+        }
+    }
+
+    fn sinusoid(shape: &Shape<'_>) -> Result<Sinusoid> {
+        Sinusoid::new(
+            shape.head_dim,
+            sinusoidal::DEFAULT_BASE,
+            SinusoidLayout::Concatenated,
+        )
+    }
+}
+
+impl SchemeModel for XlRelativeSpec {
+    fn scale(&self) -> Scale {
+        self.scale
+    }
+
+    fn validate(&self, _shape: &Shape<'_>) -> Result<()> {
+        self.scale.validate()
+    }
+
+    fn encode_inputs(&self, shape: &Shape<'_>) -> Vec<InputSpec> {
+        let (h, d) = (shape.heads, shape.head_dim);
+        vec![InputSpec::uniform(
+            "w_kr",
+            vec![h, d, d],
+            1.0 / (d as f64).sqrt(),
+        )]
+    }
+
+    fn window_inputs(&self, shape: &Shape<'_>) -> Vec<InputSpec> {
+        let (h, d) = (shape.heads, shape.head_dim);
+        vec![
+            InputSpec::uniform("r", vec![h, self.relative_rows(shape), d], 1.0),
+            InputSpec::uniform("content_bias", vec![h, d], 0.5),
+            InputSpec::uniform("position_bias", vec![h, d], 0.5),
+        ]
+    }
+
+    fn encode_output(&self, shape: &Shape<'_>) -> (Output, Vec<usize>) {
+        (
+            Output::R,
+            vec![shape.heads, shape.key_len(), shape.head_dim],
+        )
+    }
+
+    fn encode(&self, shape: &Shape<'_>, inputs: &Inputs<'_, '_>) -> Result<ArrayD<f64>> {
+        let pe = Self::sinusoid(shape)?;
+        Ok(relative_embeddings(&pe, inputs.get3("w_kr")?, shape.key_len())?.into_dyn())
+    }
+
+    fn window_scores(
+        &self,
+        _shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        _p0: i64,
+    ) -> Result<Array3<f64>> {
+        let (r, u, v) = (
+            inputs.get3("r")?,
+            inputs.get2("content_bias")?,
+            inputs.get2("position_bias")?,
+        );
+        let relative = RelativeInputs {
+            q: q.view(),
+            k: k.view(),
+            r: r.view(),
+            u: u.view(),
+            v: v.view(),
+        };
+        scores(&relative, &self.params())
+    }
+
+    fn score_terms(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        _p0: i64,
+        contract: &Contract,
+    ) -> Result<Array3<f64>> {
+        let d = shape.head_dim;
+        let factor = self.scale.factor(d).abs();
+        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let (r, u, v) = (
+            inputs.get3("r")?.mapv(f64::abs),
+            inputs.get2("content_bias")?.mapv(f64::abs),
+            inputs.get2("position_bias")?.mapv(f64::abs),
+        );
+        let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
+        let magnitude_inputs = RelativeInputs {
+            q: qa.view(),
+            k: ka.view(),
+            r: r.view(),
+            u: u.view(),
+            v: v.view(),
+        };
+        let params = RelativeParams {
+            scale: Scale::Fixed(factor),
+            clamp_len: self.clamp_len,
+        };
+        // Σ(|q|+|u|)|k| + Σ(|q|+|v|)|r_Δ|: the four dot products (or q+u and q+v formed
+        // first) and their sum add 3u_s; the inputs' rounding 2·input.
+        let magnitude = scores(&magnitude_inputs, &params)?.mapv(finite_or_zero);
+        Ok(magnitude * (gamma + 3.0 * contract.storage + 2.0 * contract.input + 4.0 * R64))
+    }
+
+    fn encode_bounds(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        values: &ArrayD<f64>,
+        contract: &Contract,
+    ) -> Result<ArrayD<f64>> {
+        // r[h, δ] = R_δ · W[h]: the table's error (angle, evaluation, storage) carried
+        // through W linearly, plus the product's rounding.
+        let pe = Self::sinusoid(shape)?;
+        let w = inputs.get3("w_kr")?.mapv(f64::abs);
+        let distances: Vec<i64> = (0..shape.key_len() as i64).collect();
+        let table = pe.table(&distances);
+        let errors = sinusoidal::table_errors(&pe, table.nrows(), &distances, contract);
+        let table = table.mapv(f64::abs);
+        let gamma = contract.gamma(shape.head_dim) + gamma_of(R64, shape.head_dim) + contract.input;
+        let mut bound = Array3::zeros((shape.heads, shape.key_len(), shape.head_dim));
+        for (mut b, wh) in bound.outer_iter_mut().zip(w.outer_iter()) {
+            gemm(1.0, &errors, &wh, 0.0, &mut b);
+            gemm(gamma, &table, &wh, 1.0, &mut b);
+        }
+        Ok(bound.into_dyn() + values.mapv(|v| contract.storage * v.abs() + contract.floor))
+    }
+
+    fn simpler(&self, _shape: &Shape<'_>) -> Vec<SchemeSpec> {
+        vec![
+            SchemeSpec::XlRelative(XlRelativeSpec {
+                clamp_len: None,
+                ..*self
+            }),
+            SchemeSpec::XlRelative(XlRelativeSpec {
+                scale: Scale::InverseSqrtDim,
+                ..*self
+            }),
+        ]
+    }
+
+    fn extras(&self, _shape: &Shape<'_>) -> usize {
+        (self.scale != Scale::InverseSqrtDim) as usize + self.clamp_len.is_some() as usize
+    }
+}
+
+impl SchemeKind for XlRelativeSpec {
+    const SOURCE: &'static str = "Dai et al. 2019, Transformer-XL, §3.2-3.3";
+
+    const PARAMETERS: &'static [Parameter] = &[
+        Parameter::SCALE,
+        Parameter::scores_only("clamp_len", ParameterKind::OptionalInteger),
+    ];
+
+    fn random(stream: &mut Stream, shape: &Shape<'_>) -> Self {
+        XlRelativeSpec {
+            scale: if stream.below(3) == 0 {
+                Scale::Fixed(0.25)
+            } else {
+                Scale::InverseSqrtDim
+            },
+            clamp_len: match (stream.below(3) == 0, shape.operation) {
+                // `encode` returns r for every distance whatever the clamp (the clamp
+                // acts where r is indexed), so a clamp there would only invite the
+                // authors'-code reading that clamps the table itself.
+                (true, Operation::Encode) => None,
+                (true, _) => Some(range(stream, 0, shape.key_len())),
+                (false, _) => None,
+            },
+        }
+    }
 }

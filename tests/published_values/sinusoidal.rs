@@ -85,7 +85,7 @@ struct TableCase {
 }
 
 /// Per-element bound against the exact value: the reference forms `p·ω` in double-double
-/// and reduces it modulo `2π` (src/angle.rs), so what is left is the sine or cosine's own
+/// and reduces it modulo `2π` (src/math/angle.rs), so what is left is the sine or cosine's own
 /// last-bit error (the `libm` crate documents < 1 ulp) and the final rounding: two units
 /// in the last place of values in [0.5, 1).
 const EXTENDED_PRECISION_BOUND: f64 = 2.3e-16;

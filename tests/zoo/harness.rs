@@ -1,11 +1,12 @@
 //! Running zoo kernels through the checker and describing what it found.
 
-use posconform::case::{Case, Operation, SchemeSpec};
+use posconform::case::{Case, Operation};
 use posconform::check::{check, CheckOptions, CheckOutcome};
 use posconform::compare::{CaseReport, Verdict};
 use posconform::kernel::Kernel;
 use posconform::math::Dtype;
 use posconform::math::Stream;
+use posconform::scheme::SchemeSpec;
 use posconform::Scheme;
 
 use crate::kernel::{Variant, ZooKernel};
@@ -148,8 +149,8 @@ pub fn describe(variant: &str, r: &CaseReport, origin: &str) -> String {
     let mut s = format!(
         "{variant}: {} [{} {}] ({origin}) {:?}",
         r.case,
-        r.scheme,
-        r.operation,
+        r.scheme_name(),
+        r.operation_name(),
         short(&r.verdict)
     );
     for o in r.outputs.iter().filter(|o| !o.passed) {

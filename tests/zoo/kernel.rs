@@ -32,10 +32,14 @@
 use std::collections::BTreeSet;
 
 use ndarray::{ArrayD, IxDyn};
-use posconform::case::{Arrays, Case, Operation, SchemeSpec};
+use posconform::case::{Arrays, Case, Operation};
 use posconform::kernel::{full_support, Answer, Kernel, KernelInfo};
 use posconform::math::Dtype;
 use posconform::rotary::{Pairing, RotaryScaling};
+use posconform::scheme::{
+    bucketed::BucketedSpec, clipped::ClippedSpec, rotary::RotarySpec, sinusoidal::SinusoidalSpec,
+    xl_relative::XlRelativeSpec, SchemeSpec,
+};
 use posconform::{Error, Result, Scale, SinusoidLayout};
 
 use crate::real::{round_to, Real};
@@ -300,7 +304,7 @@ impl Kernel for ZooKernel {
 
     fn run(&mut self, case: &Case, dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
         if self.variant.alibi == AlibiForm::KeyPosition
-            && matches!(case.scheme, SchemeSpec::Alibi { .. })
+            && matches!(case.scheme, SchemeSpec::Alibi(_))
             && case.operation == Operation::Scores
         {
             return Ok(Answer::Unsupported(
@@ -554,13 +558,13 @@ impl<'a, T: Real> Engine<'a, T> {
 
     /// Rotary `(rotary_dim, pairing, ω, position transform)` of the case.
     fn rotary_setup(&self) -> Fallible<RotarySetup> {
-        let SchemeSpec::Rotary {
+        let SchemeSpec::Rotary(RotarySpec {
             rotary_dim,
             base,
             pairing,
             scaling,
             ..
-        } = &self.case.scheme
+        }) = &self.case.scheme
         else {
             return Err("not a rotary case".into());
         };
@@ -656,12 +660,12 @@ impl<'a, T: Real> Engine<'a, T> {
 
     /// T5 bucket of `relative = key position - query position`, in the compute type.
     fn bucket(&self, relative: i64) -> Fallible<i64> {
-        let SchemeSpec::Bucketed {
+        let SchemeSpec::Bucketed(BucketedSpec {
             num_buckets,
             max_distance,
             bidirectional,
             ..
-        } = &self.case.scheme
+        }) = &self.case.scheme
         else {
             return Err("not a bucketed case".into());
         };
@@ -691,7 +695,7 @@ impl<'a, T: Real> Engine<'a, T> {
     }
 
     fn clip_index(&self, relative: i64) -> Fallible<usize> {
-        let SchemeSpec::Clipped { clip_distance, .. } = &self.case.scheme else {
+        let SchemeSpec::Clipped(ClippedSpec { clip_distance, .. }) = &self.case.scheme else {
             return Err("not a clipped case".into());
         };
         let k = *clip_distance as i64;
@@ -700,7 +704,7 @@ impl<'a, T: Real> Engine<'a, T> {
 
     fn xl_clamp(&self) -> Option<usize> {
         match &self.case.scheme {
-            SchemeSpec::XlRelative { clamp_len, .. } => *clamp_len,
+            SchemeSpec::XlRelative(XlRelativeSpec { clamp_len, .. }) => *clamp_len,
             _ => None,
         }
     }
@@ -789,7 +793,7 @@ impl<'a, T: Real> Engine<'a, T> {
                 .collect())
         };
         match &case.scheme {
-            SchemeSpec::Sinusoidal { base, layout } => {
+            SchemeSpec::Sinusoidal(SinusoidalSpec { base, layout }) => {
                 let layout = self.sinusoid_layout(*layout);
                 let table: Vec<T> = positions()?
                     .into_iter()
@@ -797,7 +801,7 @@ impl<'a, T: Real> Engine<'a, T> {
                     .collect();
                 out.insert("table".into(), self.emit(&[l, d], table));
             }
-            SchemeSpec::Learned { .. } => {
+            SchemeSpec::Learned(_) => {
                 let table: Rows<T> = rows(&input(inputs, "table")?)?;
                 let mut values = Vec::new();
                 for p in positions()? {
@@ -809,7 +813,7 @@ impl<'a, T: Real> Engine<'a, T> {
                 }
                 out.insert("rows".into(), self.emit(&[l, d], values));
             }
-            SchemeSpec::Rotary { .. } => {
+            SchemeSpec::Rotary(_) => {
                 let setup = self.rotary_setup()?;
                 let x: Heads<T> = heads(&input(inputs, "x")?)?;
                 let positions = positions()?;
@@ -821,7 +825,7 @@ impl<'a, T: Real> Engine<'a, T> {
                 }
                 out.insert("rotated".into(), self.emit(&[h, l, d], values));
             }
-            SchemeSpec::XlRelative { .. } => {
+            SchemeSpec::XlRelative(_) => {
                 let w: Heads<T> = heads(&input(inputs, "w_kr")?)?;
                 // Every distance 0..K-1, unclamped: the protocol's encode lists r for each
                 // δ, and a clamp acts where r is read (row min(δ, c)). (Transformer-XL's
@@ -844,10 +848,10 @@ impl<'a, T: Real> Engine<'a, T> {
                 }
                 out.insert("r".into(), self.emit(&[h, kk, d], values));
             }
-            SchemeSpec::Alibi { .. } => {
+            SchemeSpec::Alibi(_) => {
                 out.insert("slopes".into(), self.emit(&[h], self.slopes()));
             }
-            SchemeSpec::Bucketed { .. } => {
+            SchemeSpec::Bucketed(_) => {
                 let rel = input(inputs, "relative_positions")?;
                 let b = rel
                     .iter()
@@ -855,7 +859,7 @@ impl<'a, T: Real> Engine<'a, T> {
                     .collect::<Fallible<Vec<_>>>()?;
                 out.insert("buckets".into(), self.emit_int(b));
             }
-            SchemeSpec::Clipped { .. } => {
+            SchemeSpec::Clipped(_) => {
                 let rel = input(inputs, "relative_positions")?;
                 let b = rel
                     .iter()
@@ -878,14 +882,14 @@ impl<'a, T: Real> Engine<'a, T> {
             w_value: Vec::new(),
         };
         match &self.case.scheme {
-            SchemeSpec::Learned { .. } => a.table = rows(&input(inputs, "table")?)?,
-            SchemeSpec::XlRelative { .. } => {
+            SchemeSpec::Learned(_) => a.table = rows(&input(inputs, "table")?)?,
+            SchemeSpec::XlRelative(_) => {
                 a.r = heads(&input(inputs, "r")?)?;
                 a.u = rows(&input(inputs, "content_bias")?)?;
                 a.pv = rows(&input(inputs, "position_bias")?)?;
             }
-            SchemeSpec::Bucketed { .. } => a.bias_table = rows(&input(inputs, "bias_table")?)?,
-            SchemeSpec::Clipped { .. } => {
+            SchemeSpec::Bucketed(_) => a.bias_table = rows(&input(inputs, "bias_table")?)?,
+            SchemeSpec::Clipped(_) => {
                 a.w_key = heads(&input(inputs, "w_key")?)?;
                 a.w_value = heads(&input(inputs, "w_value")?)?;
             }
@@ -897,7 +901,7 @@ impl<'a, T: Real> Engine<'a, T> {
     /// Queries or keys with the absolute encoding applied, row `n` at `first + n`.
     fn encode_rows(&self, a: &SchemeArrays<T>, x: &[Vec<T>], first: i64) -> Fallible<Rows<T>> {
         match &self.case.scheme {
-            SchemeSpec::Sinusoidal { base, layout } => {
+            SchemeSpec::Sinusoidal(SinusoidalSpec { base, layout }) => {
                 let layout = self.sinusoid_layout(*layout);
                 Ok(x.iter()
                     .enumerate()
@@ -908,7 +912,7 @@ impl<'a, T: Real> Engine<'a, T> {
                     })
                     .collect())
             }
-            SchemeSpec::Learned { .. } => x
+            SchemeSpec::Learned(_) => x
                 .iter()
                 .enumerate()
                 .map(|(n, row)| {
@@ -920,7 +924,7 @@ impl<'a, T: Real> Engine<'a, T> {
                     Ok(row.iter().zip(pe).map(|(&x, &e)| self.st(x + e)).collect())
                 })
                 .collect(),
-            SchemeSpec::Rotary { .. } => {
+            SchemeSpec::Rotary(_) => {
                 let setup = self.rotary_setup()?;
                 Ok(x.iter()
                     .enumerate()
@@ -940,7 +944,7 @@ impl<'a, T: Real> Engine<'a, T> {
         let scale = self.scale();
         let mut s = vec![vec![T::NEG_INF; kk]; l];
         match &self.case.scheme {
-            SchemeSpec::XlRelative { .. } => {
+            SchemeSpec::XlRelative(_) => {
                 let h = w.head;
                 let qu: Rows<T> = w.q.iter().map(|q| self.add(q, &a.u[h])).collect();
                 let qv: Rows<T> = w.q.iter().map(|q| self.add(q, &a.pv[h])).collect();
@@ -1005,7 +1009,7 @@ impl<'a, T: Real> Engine<'a, T> {
                 }
             }
             scheme => {
-                let slopes = if matches!(scheme, SchemeSpec::Alibi { .. }) {
+                let slopes = if matches!(scheme, SchemeSpec::Alibi(_)) {
                     self.slopes()
                 } else {
                     Vec::new()
@@ -1017,7 +1021,7 @@ impl<'a, T: Real> Engine<'a, T> {
                         }
                         let delta = m + i - j;
                         s[i][j] = match scheme {
-                            SchemeSpec::Alibi { .. } => {
+                            SchemeSpec::Alibi(_) => {
                                 let slope = slopes[w.head];
                                 let bias = match self.variant.alibi {
                                     AlibiForm::Distance => self.st(-(slope * T::of(delta as f64))),
@@ -1025,12 +1029,12 @@ impl<'a, T: Real> Engine<'a, T> {
                                 };
                                 self.st(self.st(self.dot(&w.q[i], &w.k[j]) * scale) + bias)
                             }
-                            SchemeSpec::Bucketed { .. } => {
+                            SchemeSpec::Bucketed(_) => {
                                 let b = self.bucket(-(delta as i64))? as usize;
                                 let bias = a.bias_table[w.head][b];
                                 self.st(self.st(self.dot(&w.q[i], &w.k[j]) * scale) + bias)
                             }
-                            SchemeSpec::Clipped { .. } => {
+                            SchemeSpec::Clipped(_) => {
                                 let c = self.clip_index(-(delta as i64))?;
                                 let key = self.add(&w.k[j], &a.w_key[w.head][c]);
                                 self.st(self.dot(&w.q[i], &key) * scale)
@@ -1052,7 +1056,7 @@ impl<'a, T: Real> Engine<'a, T> {
     fn attend(&self, a: &SchemeArrays<T>, w: &Window<'_, T>, s: &[Vec<T>]) -> (Rows<T>, Rows<T>) {
         let d = self.case.head_dim;
         let m = w.memory;
-        let clipped = matches!(self.case.scheme, SchemeSpec::Clipped { .. });
+        let clipped = matches!(self.case.scheme, SchemeSpec::Clipped(_));
         let mut probs = Vec::with_capacity(s.len());
         let mut outs = Vec::with_capacity(s.len());
         for (i, row) in s.iter().enumerate() {
@@ -1239,9 +1243,7 @@ impl<'a, T: Real> Engine<'a, T> {
         let cache_encoded = self.variant.decode == DecodeForm::EncodedCache
             && matches!(
                 self.case.scheme,
-                SchemeSpec::Rotary { .. }
-                    | SchemeSpec::Sinusoidal { .. }
-                    | SchemeSpec::Learned { .. }
+                SchemeSpec::Rotary(_) | SchemeSpec::Sinusoidal(_) | SchemeSpec::Learned(_)
             );
         let p0 = self.case.query_start;
         let mut out = Vec::new();

@@ -5,6 +5,7 @@
 //! drawn variant and shows the same property then fails.
 
 use posconform::case::Operation;
+use posconform::case::OperationKind;
 use posconform::check::{random_case, run_case};
 use posconform::compare::{CompareOptions, Verdict};
 use posconform::kernel::{Kernel, KernelInfo};
@@ -24,13 +25,13 @@ fn config() -> Config {
     }
 }
 
-fn operation(name: &str) -> Operation {
-    match name {
-        "encode" => Operation::Encode,
-        "scores" => Operation::Scores,
-        "attention" => Operation::Attention,
-        "stream" => Operation::Stream { tokens: 1 },
-        _ => Operation::Decode {
+fn operation(kind: &OperationKind) -> Operation {
+    match kind {
+        OperationKind::Encode => Operation::Encode,
+        OperationKind::Scores => Operation::Scores,
+        OperationKind::Attention => Operation::Attention,
+        OperationKind::Stream => Operation::Stream { tokens: 1 },
+        OperationKind::Decode => Operation::Decode {
             tokens: 2,
             prefill: 1,
             chunks: vec![1],
@@ -46,9 +47,9 @@ fn no_false_alarm(variant: &Variant, seed: u64) -> Result<(), TestCaseError> {
     let pairs: Vec<_> = info
         .supports
         .iter()
-        .flat_map(|s| s.operations.iter().map(move |o| (s.scheme, o.clone())))
+        .flat_map(|s| s.operations.iter().map(move |o| (s.scheme, *o)))
         .collect();
-    let (scheme, op) = pairs[stream.below(pairs.len() as u64) as usize].clone();
+    let (scheme, op) = pairs[stream.below(pairs.len() as u64) as usize];
     let Some(case) = random_case(&mut stream, scheme, operation(&op), &info.dtypes, 0) else {
         return Ok(());
     };

@@ -6,7 +6,7 @@
 //! near 1e-10 of a unit value), so a disagreement here is a convention disagreement.
 
 use ndarray::Dimension;
-use posconform::case::{is_integer_output, Case};
+use posconform::case::Case;
 use posconform::kernel::Answer;
 use posconform::math::Dtype;
 use posconform::reference;
@@ -29,7 +29,7 @@ fn disagreements(variant: &Variant, cases: &[Case]) -> Vec<String> {
             Answer::Unsupported(_) => continue,
         };
         for (name, want) in &expected {
-            let Some(got) = outputs.get(name) else {
+            let Some(got) = outputs.get(name.name()) else {
                 out.push(format!("{}: missing output {name}", case.id));
                 continue;
             };
@@ -46,7 +46,7 @@ fn disagreements(variant: &Variant, cases: &[Case]) -> Vec<String> {
                 .iter()
                 .filter(|x| x.is_finite())
                 .fold(0.0f64, |m, x| m.max(x.abs()));
-            let tolerance = if is_integer_output(name) {
+            let tolerance = if name.is_integer() {
                 0.0
             } else {
                 RELATIVE * largest

@@ -21,12 +21,16 @@
 //!
 //! The test asserts that every bug is caught somewhere in f64.
 
-use posconform::case::{Case, Operation, SchemeSpec};
+use posconform::case::{Case, Operation};
 use posconform::check::run_case;
 use posconform::compare::{CompareOptions, Verdict};
 use posconform::kernel::Kernel;
 use posconform::math::Dtype;
 use posconform::rotary::{Pairing, RotaryScaling};
+use posconform::scheme::{
+    alibi::AlibiSpec, bucketed::BucketedSpec, clipped::ClippedSpec, learned::LearnedSpec,
+    rotary::RotarySpec, sinusoidal::SinusoidalSpec, xl_relative::XlRelativeSpec, SchemeSpec,
+};
 use posconform::{Scale, SinusoidLayout};
 
 use crate::kernel::{Bug, Variant, ZooKernel};
@@ -37,20 +41,20 @@ pub const LADDER: [i64; 8] = [0, 1, 10, 100, 1_000, 10_000, 100_000, 1_000_000];
 const DTYPES: [Dtype; 4] = [Dtype::F64, Dtype::F32, Dtype::F16, Dtype::Bf16];
 
 fn rotary() -> SchemeSpec {
-    SchemeSpec::Rotary {
+    SchemeSpec::Rotary(RotarySpec {
         rotary_dim: 64,
         base: 10_000.0,
         pairing: Pairing::HalfSplit,
         scaling: RotaryScaling::None,
         scale: Scale::InverseSqrtDim,
-    }
+    })
 }
 
 fn sinusoid() -> SchemeSpec {
-    SchemeSpec::Sinusoidal {
+    SchemeSpec::Sinusoidal(SinusoidalSpec {
         base: 10_000.0,
         layout: SinusoidLayout::Interleaved,
-    }
+    })
 }
 
 /// `(label, scheme, operation)` of the cases a bug is measured on: rotary and sinusoid
@@ -76,38 +80,38 @@ fn kinds(bug: Bug) -> Vec<(String, SchemeSpec, Operation)> {
     }
     let mut schemes = positional.to_vec();
     schemes.extend([
-        ("lrn", SchemeSpec::Learned { max_positions: 0 }),
+        ("lrn", SchemeSpec::Learned(LearnedSpec { max_positions: 0 })),
         (
             "xl",
-            SchemeSpec::XlRelative {
+            SchemeSpec::XlRelative(XlRelativeSpec {
                 scale: Scale::InverseSqrtDim,
                 clamp_len: None,
-            },
+            }),
         ),
         (
             "alb",
-            SchemeSpec::Alibi {
+            SchemeSpec::Alibi(AlibiSpec {
                 scale: Scale::InverseSqrtDim,
-            },
+            }),
         ),
         (
             "clp",
-            SchemeSpec::Clipped {
+            SchemeSpec::Clipped(ClippedSpec {
                 clip_distance: 4,
                 scale: Scale::InverseSqrtDim,
-            },
+            }),
         ),
     ]);
     if bug == Bug::AccumulateF16 {
         // T5 uses no scale, so only the accumulation bug applies to it.
         schemes.push((
             "bkt",
-            SchemeSpec::Bucketed {
+            SchemeSpec::Bucketed(BucketedSpec {
                 num_buckets: 32,
                 max_distance: 128,
                 bidirectional: false,
                 scale: Scale::Fixed(1.0),
-            },
+            }),
         ));
     }
     for (s, spec) in &schemes {
@@ -130,7 +134,7 @@ fn kinds(bug: Bug) -> Vec<(String, SchemeSpec, Operation)> {
 fn case(label: &str, scheme: &SchemeSpec, op: &Operation, p0: i64, dtype: Dtype) -> Option<Case> {
     let (l, m) = (8usize, 8usize);
     let mut scheme = scheme.clone();
-    if let SchemeSpec::Learned { max_positions } = &mut scheme {
+    if let SchemeSpec::Learned(LearnedSpec { max_positions }) = &mut scheme {
         if p0 < m as i64 || p0 > 10_000 {
             return None;
         }

@@ -1,7 +1,7 @@
 """Independent 50-digit sines and cosines of rotation angles p * w, for random cases.
 
 The reference forms its angles in double-double arithmetic and reduces them modulo
-2*pi before taking sine and cosine (src/angle.rs). This table checks that claim on
+2*pi before taking sine and cosine (src/math/angle.rs). This table checks that claim on
 thousands of random angles, computed here with mpmath at 50 significant digits,
 independently of the Rust code:
 

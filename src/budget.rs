@@ -1,0 +1,127 @@
+//! Error budgets (docs/budgets.md): per output array, for the dtype a kernel declares,
+//!
+//! - *analytic*: the per-element bound of [`crate::reference::analytic_bounds`], derived
+//!   from the numerical contract;
+//! - *baseline*: `c × max(baseline error, floor)`, where the baseline error is the
+//!   largest deviation of the same-precision reference ([`crate::reference::baseline`])
+//!   from the f64 oracle (common practice: c = 2), and the floor `sqrt(n)·u·max|expected|`
+//!   keeps an f64 budget from being zero;
+//! - *exact*: integer outputs (buckets, indices) must match exactly.
+//!
+//! An element is within budget when its error is at most the larger of its analytic
+//! bound and the baseline allowance.
+
+use std::collections::BTreeMap;
+
+use ndarray::ArrayD;
+
+use crate::case::{Arrays, Case, Output};
+use crate::error::Result;
+use crate::math::precision::{accumulation_gamma, Dtype};
+use crate::reference::{self, Outputs};
+
+/// The error budget of one output array.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Budget {
+    /// The dtype the budget was derived for.
+    pub dtype: Dtype,
+    /// `c`.
+    pub factor: f64,
+    /// Largest deviation of the same-precision baseline from the oracle.
+    pub baseline_error: f64,
+    /// `sqrt(n)·u·max|expected|` (u of the accumulation precision).
+    pub floor: f64,
+    /// Per-element analytic bound, where one exists.
+    pub analytic: Option<ArrayD<f64>>,
+    /// Integer output: exact match required.
+    pub exact: bool,
+}
+
+/// Budgets of a case's outputs, by output.
+pub type Budgets = BTreeMap<Output, Budget>;
+
+impl Budget {
+    /// The baseline allowance `c · max(baseline error, floor)`.
+    pub fn allowance(&self) -> f64 {
+        if self.exact {
+            0.0
+        } else {
+            self.factor * self.baseline_error.max(self.floor)
+        }
+    }
+
+    /// The per-element tolerance: the larger of the analytic bound and the allowance.
+    pub fn tolerance(&self) -> ArrayD<f64> {
+        let allowance = self.allowance();
+        match &self.analytic {
+            Some(bound) => bound.mapv(|b| b.max(allowance)),
+            None => ArrayD::from_elem(ndarray::IxDyn(&[]), allowance),
+        }
+    }
+
+    /// The analytic bound at flat (row-major) index `n`, 0 where there is none (bounds
+    /// are kept in row-major order, so the slice always exists).
+    pub fn analytic_at(&self, n: usize) -> f64 {
+        self.analytic
+            .as_ref()
+            .and_then(|a| a.as_slice().and_then(|s| s.get(n)).copied())
+            .unwrap_or(0.0)
+    }
+}
+
+/// Budgets of every output of `case` for a kernel computing in `dtype`.
+pub fn budgets(
+    case: &Case,
+    inputs: &Arrays,
+    expected: &Outputs,
+    dtype: Dtype,
+    factor: f64,
+) -> Result<Budgets> {
+    // The f64 baseline is the oracle itself: its error is 0 by construction.
+    let baseline = if dtype == Dtype::F64 {
+        Outputs::new()
+    } else {
+        reference::baseline(case, inputs, dtype)?
+    };
+    let mut analytic = reference::analytic_bounds(case, inputs, dtype)?;
+    let mut out = BTreeMap::new();
+    for (&output, want) in expected {
+        let exact = output.is_integer();
+        let dtype = if exact { Dtype::I64 } else { dtype };
+        let baseline_error = baseline
+            .get(&output)
+            .map(|b| {
+                want.iter()
+                    .zip(b.iter())
+                    .filter(|(w, _)| w.is_finite())
+                    .map(|(w, b)| (w - b).abs())
+                    .fold(0.0, f64::max)
+            })
+            .unwrap_or(0.0);
+        let largest = want
+            .iter()
+            .filter(|x| x.is_finite())
+            .fold(0.0f64, |m, x| m.max(x.abs()));
+        // The worst case is the analytic bound's job; the floor only keeps an f64
+        // baseline budget (where the baseline is the oracle itself) from being zero, so
+        // it uses the probabilistic size sqrt(n)·u of a sum's rounding error (Higham and
+        // Mary 2019, from memory), in the accumulation precision.
+        let n = reference::reduction_length(case, output) as f64;
+        let floor = n.sqrt() * accumulation_gamma(dtype, 1) * largest;
+        out.insert(
+            output,
+            Budget {
+                dtype,
+                factor,
+                baseline_error,
+                floor,
+                // Flat indexing (analytic_at) needs row-major storage.
+                analytic: analytic
+                    .remove(&output)
+                    .map(|a| a.as_standard_layout().into_owned()),
+                exact,
+            },
+        );
+    }
+    Ok(out)
+}
