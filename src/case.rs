@@ -73,10 +73,6 @@ pub struct Case {
     pub purpose: String,
 }
 
-/// Largest number of elements any one array of a case may have (guards memory when a
-/// vector file asks for absurd shapes).
-pub const MAX_ELEMENTS: usize = 1 << 27;
-
 impl Case {
     /// The sizes and positions of the case, as schemes see them.
     pub fn shape(&self) -> Shape<'_> {

@@ -35,7 +35,6 @@
 pub mod attention;
 pub mod budget;
 pub mod case;
-pub mod check;
 pub mod compare;
 pub mod demo;
 mod error;
@@ -45,14 +44,15 @@ pub mod math;
 pub mod recurrence;
 pub mod reference;
 pub mod report;
+pub mod run;
 pub mod scheme;
 pub mod shape;
 pub mod suite;
 pub mod tensor;
 pub mod vector;
-pub mod verify;
 
 pub use attention::{Scale, Window};
 pub use error::{Error, KernelErrorKind, Result};
+pub use run::{check, verify};
 pub use scheme::sinusoidal::{Sinusoid, SinusoidLayout};
 pub use scheme::{alibi, bucketed, clipped, learned, rotary, sinusoidal, xl_relative, Scheme};

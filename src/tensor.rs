@@ -283,8 +283,12 @@ impl NpyHeader {
 /// kernel's reply, a result or vector file). Every shape is checked against it before
 /// anything is allocated; this function is the one place the limit is decided.
 pub fn max_elements() -> usize {
-    crate::case::MAX_ELEMENTS
+    MAX_ELEMENTS
 }
+
+/// The element limit of [`max_elements`] (guards memory when a peer or a file asks for
+/// absurd shapes).
+pub const MAX_ELEMENTS: usize = 1 << 27;
 
 /// The number of elements of `shape`, checked: no overflow, and at most
 /// [`max_elements`] counting every zero-length axis as one (so `[0, 2^63]` is refused

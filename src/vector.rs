@@ -20,9 +20,9 @@ use crate::budget::{self, budgets, Budget};
 use crate::case::Output;
 use crate::case::{Arrays, Case};
 use crate::error::{Error, Result};
+use crate::files::write_atomic;
 use crate::math::precision::Dtype;
 use crate::reference;
-use crate::report::write_atomic;
 use crate::tensor::{Tensor, WireArray};
 
 /// The `format` tag of vector files.

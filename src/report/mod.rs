@@ -3,7 +3,9 @@
 //! Every renderer is a pure function from a [`Report`] to text; writing files is the
 //! caller's job (atomically, through [`write_atomic`]).
 
+use crate::case::Case;
 use crate::compare::{CaseReport, Verdict};
+use std::path::PathBuf;
 
 pub mod json;
 pub mod junit;
@@ -35,6 +37,42 @@ pub struct Report {
     /// steps the kernel could not answer). They count like every other case; the text
     /// report summarises the ones that passed or failed and lists each error.
     pub random: std::collections::BTreeSet<String>,
+}
+
+/// A failure found by fuzzing, shrunk.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct MinimalFailure {
+    /// The random case that failed first.
+    pub found: String,
+    /// The smallest case that still fails.
+    pub case: Case,
+    /// Its report.
+    pub report: CaseReport,
+    /// How many smaller cases the shrinker tried.
+    pub tried: usize,
+    /// Where it was saved, if it was.
+    pub saved: Option<PathBuf>,
+}
+
+/// What fuzzing did.
+#[derive(Debug, Clone, Copy, PartialEq, Default, serde::Serialize)]
+pub struct FuzzSummary {
+    /// Random cases run.
+    pub cases: usize,
+    /// Of which within budget.
+    pub passed: usize,
+    /// Of which over budget.
+    pub failed: usize,
+    /// Of which the kernel could not answer.
+    pub errors: usize,
+    /// Of which the kernel declined.
+    pub skipped: usize,
+    /// Smaller cases the shrinker ran.
+    pub shrink_runs: usize,
+    /// Of which the kernel could not answer (each is in the report as an error).
+    pub shrink_errors: usize,
+    /// Wall time of the fuzzing phase (shrinking included).
+    pub seconds: f64,
 }
 
 /// How many cases ended each way.

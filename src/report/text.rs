@@ -500,7 +500,7 @@ fn findings_of(s: &mut String, case: &CaseReport) {
 }
 
 /// The minimal failing cases found by fuzzing, with the parameters that matter.
-pub fn render_minimal(minimal: &[crate::check::MinimalFailure]) -> String {
+pub fn render_minimal(minimal: &[crate::report::MinimalFailure]) -> String {
     let mut s = String::new();
     if minimal.is_empty() {
         return s;

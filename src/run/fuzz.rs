@@ -1,0 +1,232 @@
+//! Property fuzzing: random cases of what a kernel declares, drawn from a seeded stream
+//! (the distributions are documented in docs/conventions.md), each failure shrunk to a
+//! minimal failing case and saved as a vector file.
+
+use std::time::Instant;
+
+use crate::case::{Case, Operation, OperationKind};
+use crate::compare::{CaseReport, Verdict};
+use crate::kernel::KernelInfo;
+use crate::math::precision::Dtype;
+use crate::math::stream::Stream;
+use crate::report::{FuzzSummary, MinimalFailure};
+use crate::scheme::model::{pick, range};
+use crate::scheme::Scheme;
+use crate::vector::VectorFile;
+
+use super::check::{CheckOptions, ProgressFn, Runner};
+use super::shrink::shrink;
+
+/// What fuzzing produced: the counts, every random case's report (and the shrinking
+/// steps that errored), the minimal failures.
+pub(super) struct Fuzzed {
+    pub(super) summary: FuzzSummary,
+    pub(super) cases: Vec<CaseReport>,
+    pub(super) minimal: Vec<MinimalFailure>,
+}
+
+pub(super) fn fuzz_and_shrink(
+    runner: &mut Runner<'_>,
+    options: &CheckOptions,
+    progress: &mut ProgressFn<'_>,
+) -> Fuzzed {
+    let started = Instant::now();
+    let mut stream = Stream::new(options.seed);
+    let mut summary = FuzzSummary::default();
+    let mut minimal: Vec<MinimalFailure> = Vec::new();
+    let mut cases: Vec<CaseReport> = Vec::new();
+    let supported: Vec<(Scheme, Operation)> = runner
+        .info
+        .supports
+        .iter()
+        .flat_map(|s| {
+            s.operations
+                .iter()
+                .map(move |&o| (s.scheme, operation_of(o)))
+        })
+        .collect();
+    if supported.is_empty() {
+        return Fuzzed {
+            summary,
+            cases,
+            minimal,
+        };
+    }
+    for n in 0..options.fuzz_cases {
+        if options
+            .fuzz_time
+            .is_some_and(|limit| started.elapsed() >= limit)
+            || runner.stopped.is_some()
+        {
+            break;
+        }
+        progress("fuzz", n, options.fuzz_cases);
+        let (scheme, op) = supported[stream.below(supported.len() as u64) as usize].clone();
+        let Some(case) = random_declared_case(&mut stream, &runner.info, scheme, op, n) else {
+            continue;
+        };
+        let report = runner.run(&case, &options.compare);
+        summary.cases += 1;
+        let verdict = report.verdict.clone();
+        cases.push(report.clone());
+        match verdict {
+            Verdict::Fail => {
+                summary.failed += 1;
+                let key = (case.scheme.scheme(), case.operation.name());
+                if !minimal
+                    .iter()
+                    .any(|m| (m.case.scheme.scheme(), m.case.operation.name()) == key)
+                {
+                    progress("shrink", 0, 0);
+                    let mut m = shrink(runner, &case, report, options, &mut summary, &mut cases);
+                    if let Some(dir) = &options.save_dir {
+                        match VectorFile::build(&m.case, options.compare.factor)
+                            .and_then(|v| v.write(dir))
+                        {
+                            Ok(files) => m.saved = files.last().cloned(),
+                            Err(e) => runner
+                                .notes
+                                .push(format!("could not save minimal case {}: {e}", m.case.id)),
+                        }
+                    }
+                    minimal.push(m);
+                }
+            }
+            Verdict::Error(_) => summary.errors += 1,
+            Verdict::Skipped(_) => summary.skipped += 1,
+            Verdict::Pass => summary.passed += 1,
+        }
+    }
+    progress("fuzz", options.fuzz_cases, options.fuzz_cases);
+    summary.seconds = started.elapsed().as_secs_f64();
+    Fuzzed {
+        summary,
+        cases,
+        minimal,
+    }
+}
+
+/// A placeholder operation of `kind`, whose sizes the fuzzer draws.
+fn operation_of(kind: OperationKind) -> Operation {
+    match kind {
+        OperationKind::Encode => Operation::Encode,
+        OperationKind::Scores => Operation::Scores,
+        OperationKind::Attention => Operation::Attention,
+        OperationKind::Stream => Operation::Stream { tokens: 1 },
+        OperationKind::Decode => Operation::Decode {
+            tokens: 2,
+            prefill: 1,
+            chunks: vec![1],
+        },
+    }
+}
+
+/// A random valid case of `scheme` and `operation` (None after a few invalid draws).
+pub fn random_case(
+    stream: &mut Stream,
+    scheme: Scheme,
+    operation: Operation,
+    dtypes: &[Dtype],
+    n: usize,
+) -> Option<Case> {
+    random_case_where(stream, scheme, operation, dtypes, n, 20, &|_| true)
+}
+
+/// A random valid case of `scheme` and `operation` that `info` declares, in one of the
+/// dtypes it declares for the operation (None when many draws found none: the
+/// declared values lie outside what the fuzzer draws).
+pub fn random_declared_case(
+    stream: &mut Stream,
+    info: &KernelInfo,
+    scheme: Scheme,
+    operation: Operation,
+    n: usize,
+) -> Option<Case> {
+    let dtypes = info.operation_dtypes(scheme, operation.kind());
+    random_case_where(stream, scheme, operation, &dtypes, n, 64, &|case| {
+        info.declares(case).is_ok()
+    })
+}
+
+/// The first of `attempts` random draws that is valid and `accept`ed.
+fn random_case_where(
+    stream: &mut Stream,
+    scheme: Scheme,
+    operation: Operation,
+    dtypes: &[Dtype],
+    n: usize,
+    attempts: usize,
+    accept: &dyn Fn(&Case) -> bool,
+) -> Option<Case> {
+    let floats: Vec<Dtype> = dtypes.iter().copied().filter(|d| d.is_float()).collect();
+    for _ in 0..attempts {
+        let heads = range(stream, 1, scheme.max_random_heads());
+        let query_len = range(stream, 1, 9);
+        let memory_len = if stream.below(4) == 0 {
+            0
+        } else {
+            range(stream, 1, 14)
+        };
+        let head_dim = 2 * range(stream, 1, 8);
+        let far = stream.below(2) == 0;
+        let query_start = if far {
+            range(stream, 100, 100_000) as i64
+        } else {
+            range(stream, 0, 40) as i64
+        };
+        let operation = match &operation {
+            Operation::Stream { .. } => Operation::Stream {
+                tokens: query_len * range(stream, 1, 3) + range(stream, 0, query_len - 1),
+            },
+            Operation::Decode { .. } => {
+                let tokens = range(stream, 2, 16);
+                let prefill = range(stream, 1, tokens - 1);
+                let mut left = tokens - prefill;
+                let mut chunks = Vec::new();
+                while left > 0 {
+                    let c = range(stream, 1, left.min(4));
+                    chunks.push(c);
+                    left -= c;
+                }
+                Operation::Decode {
+                    tokens,
+                    prefill,
+                    chunks,
+                }
+            }
+            other => other.clone(),
+        };
+        let shape = crate::shape::Shape {
+            heads,
+            query_len,
+            memory_len,
+            head_dim,
+            query_start,
+            operation: &operation,
+        };
+        let spec = scheme.random_spec(stream, &shape);
+        let case = Case {
+            id: format!("fuzz.{n:04}.{}.{}", scheme.name(), operation.name()),
+            scheme: spec,
+            operation,
+            heads,
+            query_len,
+            memory_len,
+            head_dim,
+            query_start,
+            hidden_keys: Vec::new(),
+            dtype: if floats.is_empty() {
+                Dtype::F64
+            } else {
+                pick(stream, &floats)
+            },
+            seed: stream.below(u64::MAX),
+            faults: Vec::new(),
+            purpose: "random case from the fuzzer".into(),
+        };
+        if case.validate().is_ok() && accept(&case) {
+            return Some(case);
+        }
+    }
+    None
+}
