@@ -5,6 +5,7 @@ mod common;
 mod aliasing;
 mod alibi;
 mod bucketed;
+mod checker_paths;
 mod clipped;
 mod masking;
 mod recurrence;
