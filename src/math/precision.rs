@@ -102,13 +102,15 @@ impl Dtype {
             Dtype::Bf16 => (7, -126),
             Dtype::I64 => unreachable!(),
         };
-        let x = x.abs();
-        let exponent = if x == 0.0 || !x.is_finite() {
+        // The binary exponent read off the f64 bits (exact, unlike a rounded log2);
+        // zero, subnormals and non-finite values take the dtype's smallest exponent.
+        let field = ((x.to_bits() >> 52) & 0x7ff) as i32;
+        let exponent = if field == 0 || field == 0x7ff {
             min_exponent
         } else {
-            (x.log2().floor() as i32).max(min_exponent)
+            (field - 1023).max(min_exponent)
         };
-        2f64.powi(exponent - mantissa_bits)
+        pow2(exponent - mantissa_bits)
     }
 
     /// `γ_n = n·u / (1 - n·u)` (Higham 2002, §3.1); infinite once `n·u >= 1`.
@@ -152,6 +154,15 @@ impl FromStr for Dtype {
     }
 }
 
+/// `2^k` for `-1074 <= k <= 1023`, built from its bits.
+fn pow2(k: i32) -> f64 {
+    if k >= -1022 {
+        f64::from_bits(((k + 1023) as u64) << 52)
+    } else {
+        f64::from_bits(1u64 << (k + 1074).max(0))
+    }
+}
+
 /// Distance between `a` and `b` in units in the last place of `dtype` at `b`.
 pub fn ulp_distance(a: f64, b: f64, dtype: Dtype) -> f64 {
     if a == b {
@@ -175,5 +186,40 @@ pub fn accumulation_gamma(dtype: Dtype, n: usize) -> f64 {
         nu / (1.0 - nu)
     } else {
         (n as f64).sqrt() * u
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The spacing of representable values, checked against the next value up, which
+    /// the standard library and the `half` crate compute independently.
+    #[test]
+    fn ulp_is_the_gap_to_the_next_value() {
+        for x in [
+            1.0, 0.75, 1.5, 3.0, 1e-300, 2.5e-310, 1e300, 1024.0, 1023.999,
+        ] {
+            assert_eq!(
+                Dtype::F64.ulp(x),
+                f64::from_bits(x.to_bits() + 1) - x,
+                "{x}"
+            );
+        }
+        for x in [1.0f32, 0.75, 3.0, 1e-30, 1e30, 65504.0] {
+            let next = f32::from_bits(x.to_bits() + 1);
+            assert_eq!(Dtype::F32.ulp(x as f64), (next - x) as f64, "{x}");
+        }
+        for x in [1.0, 0.5, 2048.0, 6.1e-5, 1e-7] {
+            let h = f16::from_f64(x);
+            let next = f16::from_bits(h.to_bits() + 1);
+            assert_eq!(
+                Dtype::F16.ulp(h.to_f64()),
+                next.to_f64() - h.to_f64(),
+                "{x}"
+            );
+        }
+        assert_eq!(Dtype::F64.ulp(0.0), 5e-324);
+        assert_eq!(Dtype::Bf16.ulp(1.0), 2f64.powi(-7));
     }
 }

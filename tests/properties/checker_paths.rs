@@ -151,13 +151,15 @@ fn a_stream_without_memory_fails_the_comparison() {
             }
             let streamed = reference::expected(&forgetful, &inputs).unwrap();
             let full = reference::expected(&whole, &inputs).unwrap();
-            if same_rows(&case, &streamed[&Output::Output], &full[&Output::Output], 0).is_err()
-            {
+            if same_rows(&case, &streamed[&Output::Output], &full[&Output::Output], 0).is_err() {
                 failures += 1;
             }
         }
     }
-    assert!(failures > 20, "only {failures} forgetful streams were caught");
+    assert!(
+        failures > 20,
+        "only {failures} forgetful streams were caught"
+    );
 }
 
 /// Planted-bug companion: decoding where each chunk sees only itself (the cache is
@@ -196,12 +198,20 @@ fn a_decode_without_its_cache_fails_the_comparison() {
                 continue;
             };
             let rows = streamed[&Output::Output].slice(ndarray::s![.., prefill.., ..]);
-            if same_rows(&case, &rows.to_owned().into_dyn(), &full[&Output::Output], prefill)
-                .is_err()
+            if same_rows(
+                &case,
+                &rows.to_owned().into_dyn(),
+                &full[&Output::Output],
+                prefill,
+            )
+            .is_err()
             {
                 failures += 1;
             }
         }
     }
-    assert!(failures > 20, "only {failures} cache-less decodes were caught");
+    assert!(
+        failures > 20,
+        "only {failures} cache-less decodes were caught"
+    );
 }
