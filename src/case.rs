@@ -231,7 +231,7 @@ impl Case {
             let elements = shape
                 .iter()
                 .try_fold(1usize, |acc, &d| acc.checked_mul(d.max(1)));
-            if elements.map_or(true, |n| n > max_elements) {
+            if elements.is_none_or(|n| n > max_elements) {
                 return Err(Error::param(
                     "shape",
                     format!("at most {max_elements} elements per array"),

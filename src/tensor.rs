@@ -488,7 +488,7 @@ impl WireArray {
 /// Bytes a padded standard base64 text decodes to, from its length and padding.
 fn decoded_len(text: &str) -> Option<usize> {
     let bytes = text.as_bytes();
-    if bytes.len() % 4 != 0 {
+    if !bytes.len().is_multiple_of(4) {
         return None;
     }
     let padding = bytes.iter().rev().take(2).filter(|&&b| b == b'=').count();

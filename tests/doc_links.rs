@@ -103,9 +103,7 @@ fn markdown_refs(text: &str) -> Vec<(String, Option<String>)> {
         let at_md = bytes[i] == '.'
             && bytes[i + 1] == 'm'
             && bytes[i + 2] == 'd'
-            && bytes
-                .get(i + 3)
-                .map_or(true, |c| !c.is_ascii_alphanumeric());
+            && bytes.get(i + 3).is_none_or(|c| !c.is_ascii_alphanumeric());
         if !at_md {
             i += 1;
             continue;

@@ -32,7 +32,7 @@ fn affects_encode(scheme: Scheme, parameter: &str) -> bool {
         .parameters()
         .iter()
         .find(|p| p.name == parameter)
-        .map_or(true, |p| p.encode)
+        .is_none_or(|p| p.encode)
 }
 
 fn kind_of(scheme: Scheme, parameter: &str) -> Option<Kind> {
@@ -159,7 +159,7 @@ fn accepts(kind: Kind, form: &Value, value: &Value, head_dim: usize) -> bool {
         let Ok((min, max)) = range else { return false };
         return value
             .as_f64()
-            .is_some_and(|x| min.map_or(true, |lo| x >= lo) && max.map_or(true, |hi| x <= hi));
+            .is_some_and(|x| min.is_none_or(|lo| x >= lo) && max.is_none_or(|hi| x <= hi));
     }
     if kind == Kind::RotaryDim {
         match form.as_str() {
@@ -565,9 +565,9 @@ pub fn never_exercised(info: &KernelInfo, exercised: &[(Case, Dtype)]) -> Vec<Ga
             }
             for &category in categories(kind) {
                 let declared = entries.iter().any(|s| {
-                    s.parameters.get(name).map_or(true, |forms| {
-                        forms.iter().any(|f| covers(kind, f, category))
-                    })
+                    s.parameters
+                        .get(name)
+                        .is_none_or(|forms| forms.iter().any(|f| covers(kind, f, category)))
                 });
                 let covered = ran.iter().any(|(c, _)| {
                     if scores_only && c.operation == Operation::Encode {

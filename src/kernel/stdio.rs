@@ -507,40 +507,12 @@ impl std::fmt::Debug for StdioKernel {
     }
 }
 
-/// Splits a command line on whitespace, keeping `'...'` and `"..."` together (no shell
-/// is involved: no variables, globs or pipes).
+/// Splits a command line into arguments the way a POSIX shell would (whitespace
+/// separates, `'...'`, `"..."` and backslashes quote), with the `shlex` crate. No shell
+/// runs: no variables, globs or pipes.
 pub fn split_command(command: &str) -> Result<Vec<String>> {
-    let mut argv = Vec::new();
-    let mut current = String::new();
-    let mut quote: Option<char> = None;
-    let mut started = false;
-    for c in command.chars() {
-        match (quote, c) {
-            (Some(q), c) if c == q => quote = None,
-            (Some(_), c) => current.push(c),
-            (None, '\'' | '"') => {
-                quote = Some(c);
-                started = true;
-            }
-            (None, c) if c.is_whitespace() => {
-                if started || !current.is_empty() {
-                    argv.push(std::mem::take(&mut current));
-                    started = false;
-                }
-            }
-            (None, c) => current.push(c),
-        }
-    }
-    if quote.is_some() {
-        return Err(Error::param(
-            "kernel",
-            "a command with balanced quotes",
-            command,
-        ));
-    }
-    if started || !current.is_empty() {
-        argv.push(current);
-    }
+    let argv = shlex::split(command)
+        .ok_or_else(|| Error::param("kernel", "a command with balanced quotes", command))?;
     if argv.is_empty() {
         return Err(Error::param("kernel", "a non-empty command", "\"\""));
     }

@@ -125,7 +125,7 @@ impl RotaryParams {
 /// slower while `θ_0 = 1` is unchanged. Errors: `rotary_dim` not even and `> 2`;
 /// `base` or `factor` not finite and positive.
 pub fn ntk_base(base: f64, factor: f64, rotary_dim: usize) -> Result<f64> {
-    if rotary_dim <= 2 || rotary_dim % 2 != 0 {
+    if rotary_dim <= 2 || !rotary_dim.is_multiple_of(2) {
         return Err(Error::param(
             "rotary_dim",
             "an even number > 2 for NTK-aware scaling (the exponent is d_rot/(d_rot-2))",

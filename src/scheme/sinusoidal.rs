@@ -55,7 +55,7 @@ impl Sinusoid {
     ///
     /// Errors: odd or zero `width`; `base` not finite and positive.
     pub fn new(width: usize, base: f64, layout: SinusoidLayout) -> Result<Self> {
-        if width == 0 || width % 2 != 0 {
+        if width == 0 || !width.is_multiple_of(2) {
             return Err(Error::param("width", "an even number > 0", width));
         }
         if !(base.is_finite() && base > 0.0) {

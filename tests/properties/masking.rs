@@ -159,7 +159,7 @@ fn fully_masked_row_gives_zeros_not_nan() {
     scores.slice_mut(s![0, 1, ..]).fill(f64::NEG_INFINITY);
     let probs = masked_softmax(scores.view()).unwrap();
     assert!(probs.slice(s![0, 1, ..]).iter().all(|p| *p == 0.0));
-    assert!((probs.slice(s![0, 0, ..]).sum() - 1.0).abs() < 1e-15);
+    approx::assert_abs_diff_eq!(probs.slice(s![0, 0, ..]).sum(), 1.0, epsilon = 1e-15);
     let values = Stream::new(2).array((1, 3, 2), 1.0);
     let (_, out) = attention(scores.view(), values.view()).unwrap();
     assert!(out.slice(s![0, 1, ..]).iter().all(|x| *x == 0.0));

@@ -92,7 +92,7 @@ fn positions_up_to_two_to_the_forty() {
         let e = pe.encode(p);
         for i in 0..8 {
             let norm = e[2 * i].powi(2) + e[2 * i + 1].powi(2);
-            assert!((norm - 1.0).abs() < 1e-15, "p={p} pair {i}: {norm}");
+            approx::assert_abs_diff_eq!(norm, 1.0, epsilon = 1e-15);
         }
     }
     assert_eq!(pe.encode(0)[..2], [0.0, 1.0]);

@@ -42,8 +42,8 @@ fn slopes_for_12_heads_interleave_the_16_head_sequence() {
     ];
     let got = slopes(12).unwrap();
     assert_eq!(got.len(), expected.len());
-    for (h, (g, e)) in got.iter().zip(expected).enumerate() {
-        assert!((g - e).abs() <= 1e-15, "head {h}: {g} vs {e}");
+    for (g, e) in got.iter().zip(expected) {
+        approx::assert_abs_diff_eq!(*g, e, epsilon = 1e-15);
     }
 }
 

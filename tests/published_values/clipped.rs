@@ -66,7 +66,7 @@ fn scores_follow_equation_5_on_a_hand_example() {
         scale: Scale::InverseSqrtDim,
     };
     let got = scores(q.view(), k.view(), w_key.view(), &scaled).unwrap();
-    assert!((got[[0, 1, 2]] - 3.5 / 2f64.sqrt()).abs() <= 1e-15);
+    approx::assert_abs_diff_eq!(got[[0, 1, 2]], 3.5 / 2f64.sqrt(), epsilon = 1e-15);
 }
 
 #[test]
@@ -92,10 +92,6 @@ fn outputs_follow_equation_3_on_a_hand_example() {
         &params,
     )
     .unwrap();
-    assert!((out[[0, 0, 0]] - 16.5).abs() <= 1e-14, "{}", out[[0, 0, 0]]);
-    assert!(
-        (out[[0, 1, 0]] - 47.0 / 3.0).abs() <= 1e-14,
-        "{}",
-        out[[0, 1, 0]]
-    );
+    approx::assert_abs_diff_eq!(out[[0, 0, 0]], 16.5, epsilon = 1e-14);
+    approx::assert_abs_diff_eq!(out[[0, 1, 0]], 47.0 / 3.0, epsilon = 1e-14);
 }
