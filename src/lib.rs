@@ -5,6 +5,12 @@
 //! visibility over `[memory ; current]`) are stated once, in docs/conventions.md and in
 //! [`attention`]; every scheme module links there and cites its paper.
 //!
+//! Data flows one way through the modules: [`math`] (dtypes, the numerical contract,
+//! the one matrix product, angles, the seeded stream) → [`scheme`] (one module per
+//! scheme behind [`scheme::SchemeModel`]) → [`case`] and [`suite`] → [`mod@reference`] and
+//! [`budget`] → [`kernel`] and [`compare`] → [`run`] (check, fuzz, shrink, verify) →
+//! [`report`].
+//!
 //! # Example
 //!
 //! Transformer-XL relative scores for one head, two queries and one memory key,
@@ -52,7 +58,12 @@ pub mod tensor;
 pub mod vector;
 
 pub use attention::{Scale, Window};
+pub use case::{Case, Operation, Output};
 pub use error::{Error, KernelErrorKind, Result};
+pub use kernel::Kernel;
+pub use math::Dtype;
+pub use report::Report;
 pub use run::{check, verify};
 pub use scheme::sinusoidal::{Sinusoid, SinusoidLayout};
+pub use scheme::SchemeSpec;
 pub use scheme::{alibi, bucketed, clipped, learned, rotary, sinusoidal, xl_relative, Scheme};

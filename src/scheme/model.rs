@@ -227,8 +227,8 @@ pub trait SchemeKind: SchemeModel + Sized {
     /// non-power-of-two slope rule).
     const MAX_RANDOM_HEADS: usize = 3;
 
-    /// Random parameters for a random case of `shape` (docs/conventions.md lists the
-    /// distributions).
+    /// Random parameters for a random case of `shape` (docs/conventions.md, "Random
+    /// cases", lists the distributions).
     fn random(stream: &mut Stream, shape: &Shape<'_>) -> Self;
 }
 

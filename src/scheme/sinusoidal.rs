@@ -9,7 +9,7 @@
 //!
 //! Positions are any `i64` with `|p| <= 2^53` (so `p` converts to `f64` exactly). The
 //! angles `p·ω_i` are formed in double-double arithmetic and reduced modulo `2π` before
-//! the sine and cosine ([`crate::angle`]), so every table entry is within about one unit
+//! the sine and cosine ([`crate::math::angle`]), so every table entry is within about one unit
 //! in the last place of the true value for `|p·ω| <= 2^40`, on every machine.
 
 use ndarray::Array2;
