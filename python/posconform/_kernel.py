@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import os
+import traceback
 from typing import Any, Callable, Iterable, Mapping
 
 import numpy as np
 
-from . import protocol
+from . import _native, protocol
 from .protocol import Unsupported
 
 
@@ -61,6 +63,10 @@ class Kernel:
         self._supported = {(e["scheme"], op) for e in self.entries for op in e["operations"]}
         self._all_dtypes = self.dtypes + [d for e in self.entries for d in e.get("dtypes", [])
                                           if d not in self.dtypes]
+        # Read now by the harness's own handshake parser, so a wrong declaration fails
+        # here, naming the field, rather than at the start of a run.
+        self.capabilities: dict = _native.read_handshake(self.describe())
+        """What the harness reads from the declaration (schemes, parameters, dtypes)."""
 
     def __repr__(self) -> str:
         schemes = sorted({e["scheme"] for e in self.entries})
@@ -100,9 +106,26 @@ class Kernel:
             return "unsupported", f"dtype {dtype!r} is not one this kernel declared"
         try:
             outputs = protocol.call_handler(self.handler, case, dtype, inputs)
+            return "outputs", _normalise(outputs)
         except Unsupported as e:
             return "unsupported", str(e) or "unsupported"
-        return "outputs", _normalise(outputs)
+        except Exception as e:  # the case's error; KeyboardInterrupt goes through
+            return "error", _described(e)
+
+
+_PACKAGE = os.path.dirname(os.path.abspath(__file__))
+
+
+def _described(error: BaseException) -> tuple:
+    """(one-line summary, traceback) of a kernel's exception, without the frames of this
+    package's own plumbing at the top of the stack."""
+    tb = error.__traceback__
+    while tb is not None and os.path.dirname(
+            os.path.abspath(tb.tb_frame.f_code.co_filename)) == _PACKAGE:
+        tb = tb.tb_next
+    summary = traceback.format_exception_only(type(error), error)[-1].strip()
+    text = "".join(traceback.format_exception(type(error), error, tb)).rstrip()
+    return summary.splitlines()[0] if summary else type(error).__name__, text
 
 
 def _normalise(outputs: Any) -> dict:

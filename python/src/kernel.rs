@@ -9,7 +9,8 @@
 //!   parser, so capabilities mean the same on both paths.
 //! - `_posconform_run(case, dtype, inputs)` gets the case object as a dict, the dtype
 //!   name and the inputs as numpy arrays, and returns `("outputs", {name: (array,
-//!   dtype name or None)})` or `("unsupported", reason)`.
+//!   dtype name or None)})`, `("unsupported", reason)` or, when the handler raised,
+//!   `("error", (summary line, traceback))`.
 //!
 //! Nothing the Python side does can stop the run but a `KeyboardInterrupt` or
 //! `SystemExit`: any other exception becomes that case's error with its traceback, and
@@ -96,8 +97,10 @@ impl PythonKernel {
                 return Err(self.failed(
                     KernelErrorKind::Failed,
                     format!(
-                        "the kernel raised an exception on case {}:\n{}",
+                        "case {} raised {}: {}\n{}",
                         case.id,
+                        exception_name(py, &e),
+                        e.value(py),
                         traceback(py, &e)
                     ),
                 ));
@@ -137,6 +140,19 @@ impl PythonKernel {
                     .map(|s| s.to_string())
                     .unwrap_or_else(|_| "unsupported".into()),
             )),
+            "error" => {
+                let (summary, traceback): (String, String) = payload
+                    .extract()
+                    .map_err(|e| malformed(format!("error payload: {e}")))?;
+                Err(self.failed(
+                    KernelErrorKind::Failed,
+                    format!(
+                        "case {} raised {summary}\n{}",
+                        case.id,
+                        shortened(&traceback)
+                    ),
+                ))
+            }
             "outputs" => {
                 let dict = payload
                     .cast::<PyDict>()
@@ -231,9 +247,13 @@ pub fn traceback(py: Python<'_>, e: &PyErr) -> String {
         Ok(text.concat())
     });
     let text = formatted.unwrap_or_else(|_| format!("{}: {}", exception_name(py, e), e.value(py)));
-    let text = text.trim_end().to_string();
+    shortened(text.trim_end())
+}
+
+/// `text` when short enough, else its end (where an exception was raised).
+fn shortened(text: &str) -> String {
     if text.len() <= MAX_TRACEBACK {
-        return text;
+        return text.to_string();
     }
     let mut start = text.len() - MAX_TRACEBACK;
     while !text.is_char_boundary(start) {

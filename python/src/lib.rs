@@ -323,6 +323,23 @@ fn suite_cases<'py>(py: Python<'py>, name: &str) -> PyResult<Bound<'py, PyList>>
     Ok(list)
 }
 
+/// The handshake `declaration` (a dict: the protocol's handshake result) as the harness
+/// reads it, or a `ValueError` naming the field that is wrong.
+#[pyfunction]
+fn read_handshake<'py>(
+    py: Python<'py>,
+    declaration: &Bound<'py, PyAny>,
+) -> PyResult<Bound<'py, PyAny>> {
+    let value = values::from_python(declaration, "handshake")?;
+    let name = value
+        .get("name")
+        .and_then(|n| n.as_str())
+        .unwrap_or("python")
+        .to_string();
+    let info = posconform::kernel::protocol::parse_handshake(&value, &name).map_err(value_error)?;
+    plain(py, &info)
+}
+
 /// The names of the built-in suites.
 #[pyfunction]
 fn suites() -> Vec<&'static str> {
@@ -345,6 +362,7 @@ fn _native(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(check, m)?)?;
     m.add_function(wrap_pyfunction!(suite_cases, m)?)?;
     m.add_function(wrap_pyfunction!(suites, m)?)?;
+    m.add_function(wrap_pyfunction!(read_handshake, m)?)?;
     m.add_function(wrap_pyfunction!(library_version, m)?)?;
     m.add_class::<Outcome>()?;
     Ok(())
