@@ -66,13 +66,17 @@ class _Planned:
     options: dict = field(default_factory=dict)
 
 
+def _refuse(message: str):
+    """A collection error that shows just ``message`` (no traceback)."""
+    pytest.fail(message, pytrace=False)
+
+
 def _marker_options(marker) -> tuple[Any, dict]:
     if not marker.args:
-        raise pytest.UsageError(
-            f"@pytest.mark.{MARKER} needs the kernel as its first argument")
+        _refuse(f"@pytest.mark.{MARKER} needs the kernel as its first argument")
     unknown = sorted(set(marker.kwargs) - set(_OPTIONS))
     if unknown:
-        raise pytest.UsageError(
+        _refuse(
             f"@pytest.mark.{MARKER}: unknown option(s) {', '.join(unknown)} "
             f"(known: {', '.join(_OPTIONS)})")
     options = {"suite": "core", "fuzz": 200}
@@ -85,7 +89,7 @@ def pytest_generate_tests(metafunc):
         return
     marker = metafunc.definition.get_closest_marker(MARKER)
     if marker is None:
-        raise pytest.UsageError(
+        _refuse(
             f"{metafunc.definition.nodeid} uses the {FIXTURE} fixture but has no "
             f"@pytest.mark.{MARKER}(kernel, ...) marker")
     from . import suite_cases
@@ -103,7 +107,7 @@ def pytest_generate_tests(metafunc):
             only = [only] if isinstance(only, str) else list(only)
             missing = sorted(set(only) - set(ids))
             if missing:
-                raise pytest.UsageError(
+                _refuse(
                     f"@pytest.mark.{MARKER}: suite {options['suite']} has no case "
                     f"{', '.join(missing)}")
             ids = [i for i in ids if i in only]
@@ -148,15 +152,17 @@ class PosconformCase:
         """Runs the case and fails the test with posconform's report unless it conforms;
         skips it when the kernel does not declare (or declines) the case."""
         report = self.run()
-        self._node.user_properties.append(("posconform_verdict", report.verdict))
+        properties = self._node.user_properties
         if self.is_fuzz:
-            self._node.user_properties.append(
+            properties.append(("posconform_verdict", report.verdict))
+            properties.append(
                 ("posconform_random_cases", str((report.fuzz or {}).get("cases", 0))))
             if report.exit_code != 0:
                 pytest.fail(report.text, pytrace=False)
             return report
         result = report.case(self.case_id)
-        self._node.user_properties.append(("posconform_case", result.id))
+        properties.append(("posconform_case", result.id))
+        properties.append(("posconform_verdict", result.verdict))
         if result.verdict == "skipped":
             pytest.skip(f"posconform: {result.reason}")
         if result.verdict in ("fail", "error"):
@@ -176,7 +182,7 @@ def posconform_case(request) -> PosconformCase:
     """One posconform case of the kernel named by the test's ``posconform`` marker."""
     planned = getattr(request, "param", None)
     if not isinstance(planned, _Planned):
-        raise pytest.UsageError(
+        _refuse(
             f"{FIXTURE} is parametrised by @pytest.mark.{MARKER}(kernel, ...) on the test")
     failures = request.config.getoption("posconform_failures") or os.path.join(
         str(request.config.rootpath), "posconform-failures")

@@ -17,7 +17,9 @@
 
 use half::{bf16, f16};
 use ndarray::{ArrayD, IxDyn};
-use numpy::{PyArrayDescrMethods, PyArrayDyn, PyArrayMethods, PyUntypedArray, PyUntypedArrayMethods};
+use numpy::{
+    PyArrayDescrMethods, PyArrayDyn, PyArrayMethods, PyUntypedArray, PyUntypedArrayMethods,
+};
 use posconform::precision::Dtype;
 use posconform::tensor::{element_count, Tensor};
 use pyo3::prelude::*;
@@ -30,9 +32,7 @@ pub fn to_numpy<'py>(py: Python<'py>, tensor: &Tensor) -> Bound<'py, PyAny> {
         Dtype::F32 | Dtype::Bf16 => {
             numpy::PyArray::from_owned_array(py, values.mapv(|x| x as f32)).into_any()
         }
-        Dtype::F16 => {
-            numpy::PyArray::from_owned_array(py, values.mapv(f16::from_f64)).into_any()
-        }
+        Dtype::F16 => numpy::PyArray::from_owned_array(py, values.mapv(f16::from_f64)).into_any(),
         Dtype::I64 => numpy::PyArray::from_owned_array(py, values.mapv(|x| x as i64)).into_any(),
     }
 }
@@ -58,7 +58,9 @@ pub fn from_numpy(array: &Bound<'_, PyAny>, declared: Option<Dtype>) -> Result<T
             match read(&converted)? {
                 Read::Tensor(t) => t,
                 Read::Convert(_) => {
-                    return Err(format!("numpy could not convert it to a contiguous {dtype}"))
+                    return Err(format!(
+                        "numpy could not convert it to a contiguous {dtype}"
+                    ))
                 }
             }
         }

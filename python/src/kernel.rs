@@ -64,7 +64,10 @@ impl PythonKernel {
         inputs: &Arrays,
     ) -> posconform::Result<Answer> {
         let case_value = serde_json::to_value(case).map_err(|e| {
-            self.failed(KernelErrorKind::Failed, format!("cannot pass case {}: {e}", case.id))
+            self.failed(
+                KernelErrorKind::Failed,
+                format!("cannot pass case {}: {e}", case.id),
+            )
         })?;
         let python_error =
             |e: PyErr| self.failed(KernelErrorKind::Failed, format!("case {}: {e}", case.id));
@@ -76,10 +79,10 @@ impl PythonKernel {
                 .map_err(python_error)?;
         }
         let started = Instant::now();
-        let reply = self.target.bind(py).call_method1(
-            "_posconform_run",
-            (case_object, dtype.name(), input_dict),
-        );
+        let reply = self
+            .target
+            .bind(py)
+            .call_method1("_posconform_run", (case_object, dtype.name(), input_dict));
         let elapsed_ms = started.elapsed().as_secs_f64() * 1e3;
         let reply = match reply {
             Ok(reply) => reply,
@@ -125,7 +128,9 @@ impl PythonKernel {
             .cast::<PyTuple>()
             .ok()
             .filter(|t| t.len() == 2)
-            .ok_or_else(|| malformed("_posconform_run must return a pair (kind, payload)".into()))?;
+            .ok_or_else(|| {
+                malformed("_posconform_run must return a pair (kind, payload)".into())
+            })?;
         let kind: String = pair
             .get_item(0)
             .and_then(|k| k.extract())
@@ -208,7 +213,12 @@ impl Kernel for PythonKernel {
                 .target
                 .bind(py)
                 .call_method0("_posconform_handshake")
-                .map_err(|e| handshake(format!("the kernel's handshake raised:\n{}", traceback(py, &e))))?;
+                .map_err(|e| {
+                    handshake(format!(
+                        "the kernel's handshake raised:\n{}",
+                        traceback(py, &e)
+                    ))
+                })?;
             let value = values::from_python(&reply, "handshake")
                 .map_err(|e| handshake(e.value(py).to_string()))?;
             if let Some(name) = value.get("name").and_then(|n| n.as_str()) {
@@ -220,10 +230,7 @@ impl Kernel for PythonKernel {
 
     fn run(&mut self, case: &Case, dtype: Dtype, inputs: &Arrays) -> posconform::Result<Answer> {
         if self.interruption.is_some() {
-            return Err(self.failed(
-                KernelErrorKind::Failed,
-                "not run: the run was interrupted",
-            ));
+            return Err(self.failed(KernelErrorKind::Failed, "not run: the run was interrupted"));
         }
         Python::attach(|py| self.run_attached(py, case, dtype, inputs))
     }

@@ -111,9 +111,10 @@ fn check(
             Some(Duration::from_secs_f64(t))
         }
         Some(t) => {
+            let range = format!("from 0 to {MAX_SECONDS} (one week)");
             return Err(value_error(format!(
-                "fuzz_time must be a number of seconds from 0 to {MAX_SECONDS} (one week), given {t}"
-            )))
+                "fuzz_time must be a number of seconds {range}, given {t}"
+            )));
         }
     };
     let budget_dtype = match budget_dtype {
@@ -247,10 +248,7 @@ impl Outcome {
             item.set_item("id", &m.case.id)?;
             item.set_item("found", &m.found)?;
             item.set_item("tried", m.tried)?;
-            item.set_item(
-                "saved",
-                m.saved.as_ref().map(|p| p.display().to_string()),
-            )?;
+            item.set_item("saved", m.saved.as_ref().map(|p| p.display().to_string()))?;
             item.set_item("case", plain(py, &m.case)?)?;
             item.set_item(
                 "text",

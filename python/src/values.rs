@@ -77,9 +77,9 @@ fn convert(object: &Bound<'_, PyAny>, at: &str, depth: usize) -> PyResult<Value>
     }
     if let Ok(f) = object.cast::<PyFloat>() {
         let x = f.value();
-        return Number::from_f64(x).map(Value::Number).ok_or_else(|| {
-            PyValueError::new_err(format!("{at}: {x} is not a finite number"))
-        });
+        return Number::from_f64(x)
+            .map(Value::Number)
+            .ok_or_else(|| PyValueError::new_err(format!("{at}: {x} is not a finite number")));
     }
     if let Ok(s) = object.cast::<PyString>() {
         return Ok(Value::String(s.to_str()?.to_string()));
@@ -112,9 +112,9 @@ fn convert(object: &Bound<'_, PyAny>, at: &str, depth: usize) -> PyResult<Value>
         return Ok(Value::Number(i.into()));
     }
     if let Ok(x) = object.extract::<f64>() {
-        return Number::from_f64(x).map(Value::Number).ok_or_else(|| {
-            PyValueError::new_err(format!("{at}: {x} is not a finite number"))
-        });
+        return Number::from_f64(x)
+            .map(Value::Number)
+            .ok_or_else(|| PyValueError::new_err(format!("{at}: {x} is not a finite number")));
     }
     Err(PyValueError::new_err(format!(
         "{at}: a {} cannot be declared (use dicts, lists, strings, numbers, bools and None)",
