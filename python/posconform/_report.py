@@ -149,6 +149,8 @@ def check(kernel: Any, suite: str | None = "core", *,
     case_files = [os.fspath(p) for p in (cases or [])]
     if isinstance(only, str):
         only = [only]
+    if only is not None and (suite is None or case_files):
+        raise ValueError("only selects cases of the suite: give a suite and no cases")
     if fuzz is None:
         fuzz = 0 if case_files else 200
     if fuzz < 0:

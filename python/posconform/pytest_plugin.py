@@ -101,7 +101,10 @@ def pytest_generate_tests(metafunc):
         options["seed"] = config.getoption("posconform_seed")
     ids = []
     if options.get("suite") is not None:
-        ids = [c["id"] for c in suite_cases(options["suite"])]
+        try:
+            ids = [c["id"] for c in suite_cases(options["suite"])]
+        except ValueError as e:
+            _refuse(f"@pytest.mark.{MARKER}: {e}")
         only = options.get("only")
         if only is not None:
             only = [only] if isinstance(only, str) else list(only)

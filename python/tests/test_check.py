@@ -243,6 +243,24 @@ def test_outputs_are_answered_in_their_own_dtype_or_the_tagged_one(returned, arr
                                                         else "fail")
 
 
+def test_ml_dtypes_bfloat16_outputs_are_read_through_their_bits():
+    ml_dtypes = pytest.importorskip(
+        "ml_dtypes", reason="ml_dtypes is not installed here (pip install ml_dtypes)")
+
+    def kernel(case, dtype, inputs):
+        slopes = alibi_slopes(case, "f64", inputs)["slopes"].astype(ml_dtypes.bfloat16)
+        # For 6 heads, a strided view (not contiguous) of the same values.
+        return {"slopes": np.stack([slopes, slopes], axis=1)[:, 0] if case["heads"] == 6
+                else slopes}
+
+    report = posconform.check(alibi_kernel(kernel, dtypes=["bf16"]), fuzz=0)
+    for case_id in ALIBI_ENCODE:
+        [output] = report.case(case_id).outputs
+        assert output["array_dtype"] == "bf16", case_id
+        # Rounded to bf16 by ml_dtypes, within a bf16 budget.
+        assert report.case(case_id).verdict == "pass", report.text
+
+
 def test_integer_outputs_of_any_width_are_read_as_i64():
     def buckets(case, dtype, inputs):
         # Clip indices (Shaw et al.): clip(rel, -k, k) + k, returned as int16.
@@ -293,6 +311,7 @@ def test_declared_parameter_values_narrow_what_is_sent():
     ({"only": ["alibi.encode.h7"]}, "suite core has no case alibi.encode.h7"),
     ({"budget_dtype": "f8"}, "budget_dtype must be one of"),
     ({"fuzz": -1}, "fuzz must be >= 0"),
+    ({"suite": None, "only": ["alibi.encode.h8"]}, "only selects cases of the suite"),
 ])
 def test_bad_options_are_value_errors(options, message):
     with pytest.raises(ValueError, match=message):

@@ -163,3 +163,13 @@ def test_typo(posconform_case):
     result = pytester.runpytest()
     assert result.ret != 0
     result.stdout.fnmatch_lines(["*unknown option(s) fuzzz*"])
+    pytester.makepyfile(test_misuse="""
+import pytest
+
+@pytest.mark.posconform(None, suite="nightly")
+def test_suite(posconform_case):
+    posconform_case.check()
+""")
+    result = pytester.runpytest()
+    assert result.ret != 0
+    result.stdout.fnmatch_lines(["*@pytest.mark.posconform: invalid parameter `suite`*"])
