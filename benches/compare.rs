@@ -33,6 +33,7 @@ fn case() -> Case {
         head_dim: 64,
         query_start: 1000,
         hidden_keys: Vec::new(),
+        input_scale: 1.0,
         dtype: Dtype::F64,
         seed: 7,
         faults: Vec::new(),

@@ -126,7 +126,8 @@ pub fn apply_causal_mask(scores: &mut Array3<f64>, window: Window) -> Result<()>
 /// Masked entries get probability exactly 0; a row with every entry masked gets all
 /// zeros (defined, never NaN). Errors on NaN or `+inf` scores, naming the coordinate.
 pub fn masked_softmax(scores: ArrayView3<'_, f64>) -> Result<Array3<f64>> {
-    let mut probs = scores.to_owned();
+    // Standard layout, so every row is contiguous whatever the view's strides.
+    let mut probs = scores.as_standard_layout().into_owned();
     for (h, mut head) in probs.outer_iter_mut().enumerate() {
         for (i, mut row) in head.outer_iter_mut().enumerate() {
             if let Some(j) = row.iter().position(|x| x.is_nan() || *x == f64::INFINITY) {

@@ -38,6 +38,14 @@ pub use crate::shape::{Fill, InputSpec, Operation, OperationKind, Output, Shape}
 /// Named arrays: a case's inputs, expected outputs, or a kernel's results.
 pub type Arrays = BTreeMap<String, Tensor>;
 
+fn unit() -> f64 {
+    1.0
+}
+
+fn is_unit(x: &f64) -> bool {
+    *x == 1.0
+}
+
 /// One conformance case.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -62,13 +70,19 @@ pub struct Case {
     /// visible keys are all hidden is fully masked. `scores` and `attention` only.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub hidden_keys: Vec<usize>,
+    /// Amplitude of the queries and keys (`q`, `k`) relative to the default uniform
+    /// `[-1, 1)`: large values give scores past the dtype's exponent range, where a
+    /// softmax without max-subtraction overflows. Absent means 1.
+    #[serde(default = "unit", skip_serializing_if = "is_unit")]
+    pub input_scale: f64,
     /// The dtype the case is written for; inputs are exactly representable in it.
     pub dtype: Dtype,
     /// Seed of the input stream.
     pub seed: u64,
-    /// Fault classes (docs/faults.md) this case is built to expose.
+    /// Ids of the catalogued faults this case is built to expose (docs/faults.md,
+    /// `posconform explain ID`).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
-    pub faults: Vec<u8>,
+    pub faults: Vec<String>,
     /// Why the case exists, in one sentence.
     pub purpose: String,
 }
@@ -159,6 +173,13 @@ impl Case {
                 }
             }
             _ => {}
+        }
+        if !(self.input_scale.is_finite() && self.input_scale > 0.0 && self.input_scale <= 1e4) {
+            return Err(Error::param(
+                "input_scale",
+                "a finite number in (0, 10000]",
+                self.input_scale,
+            ));
         }
         if !self.hidden_keys.is_empty() {
             if !self.operation.kind().is_window() {
@@ -275,6 +296,11 @@ impl Case {
         for spec in self.input_specs() {
             let tensor = match spec.fill {
                 Fill::Uniform(scale) => {
+                    let scale = if matches!(spec.name, "q" | "k") {
+                        scale * self.input_scale
+                    } else {
+                        scale
+                    };
                     Tensor::from_f64(self.dtype, stream.array(IxDyn(&spec.shape), scale))
                 }
                 Fill::Positions => {
@@ -332,6 +358,47 @@ impl Case {
             Operation::Decode {
                 tokens, prefill, ..
             } => vec![(Output::Output, vec![h, tokens.saturating_sub(*prefill), d])],
+        }
+    }
+}
+
+/// Which entries of the key-indexed outputs (`scores`, `probs` of `scores` and
+/// `attention` cases) the case hides: the causal mask over `[memory ; current]` and
+/// the hidden keys, as a flat `[L, K]` table.
+#[derive(Debug, Clone)]
+pub struct Visibility {
+    /// `(L, K, visible[i·K + j])` for window operations.
+    mask: Option<(usize, usize, Vec<bool>)>,
+}
+
+impl Visibility {
+    /// The visibility of `case`'s key-indexed entries.
+    pub fn of(case: &Case) -> Self {
+        let mask = case.operation.kind().is_window().then(|| {
+            let (l, k) = (case.query_len, case.key_len());
+            let mut visible = vec![false; l * k];
+            for i in 0..l {
+                for j in 0..k {
+                    visible[i * k + j] = j <= case.memory_len + i;
+                }
+            }
+            for &j in &case.hidden_keys {
+                for i in 0..l {
+                    if j < k {
+                        visible[i * k + j] = false;
+                    }
+                }
+            }
+            (l, k, visible)
+        });
+        Visibility { mask }
+    }
+
+    /// Whether flat element `n` of a key-indexed `[H, L, K]` output is hidden.
+    pub fn hidden(&self, n: usize) -> bool {
+        match &self.mask {
+            Some((l, k, visible)) => !visible[n % (l * k)],
+            None => false,
         }
     }
 }

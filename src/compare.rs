@@ -18,6 +18,7 @@ use std::fmt;
 use ndarray::{ArrayD, ArrayViewD};
 
 use crate::budget::{budgets, Budget, Budgets};
+pub use crate::case::Visibility;
 use crate::case::{Arrays, Case, Operation, OperationKind, Output};
 use crate::error::Result;
 use crate::math::precision::{ulp_distance, Dtype};
@@ -35,6 +36,9 @@ pub struct CompareOptions {
     /// declared in its handshake). Budgets follow it whatever dtype the returned arrays
     /// carry; `None` takes each array's own dtype as the declaration (result files).
     pub declared: Option<Dtype>,
+    /// Run the differential diagnosis on a failing case (crate::diagnose). Fuzzing and
+    /// shrinking turn it off and diagnose only the minimal failing case.
+    pub diagnose: bool,
 }
 
 impl Default for CompareOptions {
@@ -43,6 +47,7 @@ impl Default for CompareOptions {
             factor: 2.0,
             budget_dtype: None,
             declared: None,
+            diagnose: true,
         }
     }
 }
@@ -356,8 +361,8 @@ pub struct CaseReport {
     pub scheme: Option<Scheme>,
     /// The operation (`None` for a vector file that could not be read).
     pub operation: Option<OperationKind>,
-    /// Fault classes the case targets.
-    pub faults: Vec<u8>,
+    /// Ids of the catalogued faults the case is built to expose.
+    pub faults: Vec<String>,
     /// `M` and `L` of the case (for labelling heatmaps).
     pub memory_len: usize,
     /// `L`.
@@ -368,6 +373,9 @@ pub struct CaseReport {
     pub outputs: Vec<OutputReport>,
     /// Things the user must know before trusting the numbers.
     pub warnings: Vec<Warning>,
+    /// Which catalogued faults reproduce the outputs (failing cases that were
+    /// diagnosed).
+    pub diagnosis: Option<crate::diagnose::CaseDiagnosis>,
 }
 
 impl CaseReport {
@@ -389,6 +397,7 @@ impl CaseReport {
             verdict: Verdict::Error(reason.into()),
             outputs: Vec::new(),
             warnings: Vec::new(),
+            diagnosis: None,
         }
     }
 
@@ -408,6 +417,7 @@ impl CaseReport {
             verdict,
             outputs: Vec::new(),
             warnings: Vec::new(),
+            diagnosis: None,
         }
     }
 
@@ -446,7 +456,7 @@ pub fn compare(
     got: &Arrays,
     options: &CompareOptions,
 ) -> Result<CaseReport> {
-    compare_with_budgets(case, expected, got, options, &mut |dtype| {
+    compare_with_budgets(case, inputs, expected, got, options, &mut |dtype| {
         budgets(case, inputs, expected, dtype, options.factor)
     })
 }
@@ -458,6 +468,7 @@ pub type BudgetSource<'a> = dyn FnMut(Dtype) -> Result<Budgets> + 'a;
 /// ones stored in a vector file).
 pub fn compare_with_budgets(
     case: &Case,
+    inputs: &Arrays,
     expected: &Outputs,
     got: &Arrays,
     options: &CompareOptions,
@@ -559,49 +570,40 @@ pub fn compare_with_budgets(
         report.verdict = Verdict::Error(structural.join("; "));
     } else if report.outputs.iter().any(|o| !o.passed) {
         report.verdict = Verdict::Fail;
+        if options.diagnose {
+            let dtype = options.declared.unwrap_or(case.dtype);
+            let budget_dtype = options.budget_dtype.unwrap_or(dtype);
+            if let Some(budgets) = budget_cache.get(&budget_dtype) {
+                report.diagnosis = diagnosable(case).then(|| {
+                    crate::diagnose::diagnose_case(
+                        &crate::diagnose::CaseEvidence {
+                            case,
+                            inputs,
+                            expected,
+                            budgets,
+                            dtype,
+                        },
+                        got,
+                    )
+                });
+            }
+        }
     }
     Ok(report)
 }
 
-/// Which entries of the key-indexed outputs (`scores`, `probs` of `scores` and
-/// `attention` cases) the case hides: the causal mask over `[memory ; current]` and
-/// the hidden keys, as a flat `[L, K]` table.
-#[derive(Debug, Clone)]
-pub struct Visibility {
-    /// `(L, K, visible[i·K + j])` for window operations.
-    mask: Option<(usize, usize, Vec<bool>)>,
-}
+/// The most output elements a case may have for the diagnosis to run on it (every
+/// applicable fault's variant runs once): larger cases are left to their shrunk
+/// minimal failures.
+pub const DIAGNOSIS_ELEMENTS: usize = 1 << 21;
 
-impl Visibility {
-    /// The visibility of `case`'s key-indexed entries.
-    pub fn of(case: &Case) -> Self {
-        let mask = case.operation.kind().is_window().then(|| {
-            let (l, k) = (case.query_len, case.key_len());
-            let mut visible = vec![false; l * k];
-            for i in 0..l {
-                for j in 0..k {
-                    visible[i * k + j] = j <= case.memory_len + i;
-                }
-            }
-            for &j in &case.hidden_keys {
-                for i in 0..l {
-                    if j < k {
-                        visible[i * k + j] = false;
-                    }
-                }
-            }
-            (l, k, visible)
-        });
-        Visibility { mask }
-    }
-
-    /// Whether flat element `n` of a key-indexed `[H, L, K]` output is hidden.
-    fn hidden(&self, n: usize) -> bool {
-        match &self.mask {
-            Some((l, k, visible)) => !visible[n % (l * k)],
-            None => false,
-        }
-    }
+/// Whether a failing case is small enough to diagnose.
+pub fn diagnosable(case: &Case) -> bool {
+    case.output_shapes()
+        .iter()
+        .map(|(_, shape)| shape.iter().product::<usize>())
+        .sum::<usize>()
+        <= DIAGNOSIS_ELEMENTS
 }
 
 fn warn_about_dtypes(

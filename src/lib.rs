@@ -43,6 +43,7 @@ pub mod budget;
 pub mod case;
 pub mod compare;
 pub mod demo;
+pub mod diagnose;
 mod error;
 pub mod files;
 pub mod kernel;
@@ -55,6 +56,7 @@ pub mod scheme;
 pub mod shape;
 pub mod suite;
 pub mod tensor;
+pub mod variant;
 pub mod vector;
 
 pub use attention::{Scale, Window};

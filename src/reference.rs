@@ -17,19 +17,21 @@
 //! [`crate::recurrence`] ([`segments`], [`decode_steps`]): the same code whose
 //! equivalence to one-shot attention the property tests check.
 
+use std::borrow::Cow;
 use std::collections::BTreeMap;
 
 use ndarray::{s, Array3, ArrayD, ArrayView3, Axis, CowArray, Zip};
 
 use crate::attention::{attend, masked_softmax, window_for, Window};
 use crate::case::{Arrays, Case, Operation, Output};
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::math::contract::{gamma_of, R64};
 use crate::math::product::with_portable_arithmetic;
 use crate::math::{Contract, Dtype};
 use crate::recurrence::{decode_steps, segments};
-use crate::scheme::model::{finite_or_zero, InputArrays, Inputs};
+use crate::scheme::model::{finite_or_zero, InputArrays, Inputs, PairPositions};
 use crate::scheme::SchemeModel;
+use crate::variant::{Deviation, StepAt, StepKind, WindowCtx};
 
 /// Output arrays by name, in f64.
 pub type Outputs = BTreeMap<Output, ArrayD<f64>>;
@@ -38,6 +40,23 @@ pub type Outputs = BTreeMap<Output, ArrayD<f64>>;
 /// values are bit-identical on every machine.
 pub fn expected(case: &Case, inputs: &Arrays) -> Result<Outputs> {
     with_portable_arithmetic(|| Pipeline::new(case, inputs, None)?.run())
+}
+
+/// The outputs of a kernel with one mistake: the reference pipeline with `deviation`'s
+/// hooks ([`crate::variant`]), for a kernel computing in `dtype`, on the case's own
+/// inputs. Errors where the variant is not defined for the case (a distance outside
+/// the relative table, a position outside a learned table).
+pub fn variant_outputs(
+    case: &Case,
+    inputs: &Arrays,
+    dtype: Dtype,
+    deviation: &dyn Deviation,
+) -> Result<Outputs> {
+    let run = || Pipeline::with_deviation(case, inputs, dtype, deviation)?.run();
+    match deviation.angles(case, dtype) {
+        Some(angles) => crate::math::angle::with_angles_in(angles, run),
+        None => run(),
+    }
 }
 
 /// The same pipeline with inputs and stage tensors rounded to `dtype`, and angles
@@ -71,9 +90,11 @@ pub fn reduction_length(case: &Case, output: Output) -> usize {
 }
 
 struct Pipeline<'a> {
-    case: &'a Case,
+    case: Cow<'a, Case>,
     arrays: InputArrays<'a>,
     stage: Option<Dtype>,
+    /// A faulty variant's hooks, and the dtype its kernel computes in.
+    deviation: Option<(&'a dyn Deviation, Dtype)>,
 }
 
 impl<'a> Pipeline<'a> {
@@ -95,13 +116,46 @@ impl<'a> Pipeline<'a> {
             })
             .collect();
         Ok(Pipeline {
-            case,
+            case: Cow::Borrowed(case),
             arrays,
             stage,
+            deviation: None,
         })
     }
 
-    fn model(&self) -> &'a dyn SchemeModel {
+    fn with_deviation(
+        case: &'a Case,
+        inputs: &'a Arrays,
+        dtype: Dtype,
+        deviation: &'a dyn Deviation,
+    ) -> Result<Self> {
+        case.validate()?;
+        case.check_inputs(inputs)?;
+        let stage = deviation.stage(case, dtype);
+        let mut arrays: BTreeMap<String, ArrayD<f64>> = inputs
+            .iter()
+            .map(|(name, tensor)| {
+                let mut array = tensor.view().to_owned();
+                if let Some(dtype) = stage.filter(|_| tensor.dtype().is_float()) {
+                    array.mapv_inplace(|x| dtype.round(x));
+                }
+                (name.clone(), array)
+            })
+            .collect();
+        let read = deviation.case(case);
+        deviation.inputs(read.as_ref().unwrap_or(case), &mut arrays)?;
+        Ok(Pipeline {
+            case: read.map_or(Cow::Borrowed(case), Cow::Owned),
+            arrays: arrays
+                .into_iter()
+                .map(|(name, array)| (name, CowArray::from(array)))
+                .collect(),
+            stage,
+            deviation: Some((deviation, dtype)),
+        })
+    }
+
+    fn model(&self) -> &dyn SchemeModel {
         self.case.model()
     }
 
@@ -125,12 +179,65 @@ impl<'a> Pipeline<'a> {
         q: ArrayView3<'_, f64>,
         k: ArrayView3<'_, f64>,
         p0: i64,
+        at: &StepAt,
     ) -> Result<Array3<f64>> {
+        if let Some((deviation, dtype)) = self.deviation {
+            return self.variant_scores(deviation, dtype, q, k, p0, at);
+        }
         let mut scores =
             self.model()
                 .window_scores(&self.case.shape(), &self.inputs(), q, k, p0)?;
         for &j in &self.case.hidden_keys {
             scores.slice_mut(s![.., .., j]).fill(f64::NEG_INFINITY);
+        }
+        Ok(scores)
+    }
+
+    fn ctx<'s>(&'s self, dtype: Dtype, window: Window, at: &'s StepAt) -> WindowCtx<'s, 'a> {
+        WindowCtx {
+            case: &self.case,
+            dtype,
+            inputs: self.inputs(),
+            window,
+            at,
+        }
+    }
+
+    /// A faulty variant's scores of one window: every pair scored at the positions,
+    /// keys and scale the deviation chooses, then masked by its visibility rule.
+    fn variant_scores(
+        &self,
+        deviation: &dyn Deviation,
+        dtype: Dtype,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        p0: i64,
+        at: &StepAt,
+    ) -> Result<Array3<f64>> {
+        let window = window_for(q, k)?;
+        let ctx = self.ctx(dtype, window, at);
+        let mut positions = PairPositions::standard(window, p0);
+        deviation.positions(&ctx, &mut positions);
+        let mut keys = k.to_owned();
+        deviation.keys(&ctx, &positions, &mut keys)?;
+        let scale = deviation.scale(&ctx, self.model().scale());
+        let shape = self.case.shape();
+        let raw =
+            self.model()
+                .pair_scores(&shape, &ctx.inputs, q, keys.view(), &positions, scale)?;
+        let mut scores = deviation.scores(&ctx, q, keys.view(), &positions, raw)?;
+        let one_window = at.kind == StepKind::Window;
+        for ((h, i, j), x) in scores.indexed_iter_mut() {
+            let hidden = one_window && self.case.hidden_keys.contains(&j);
+            if !deviation.visible(&ctx, i, j, window.is_visible(i, j), hidden) {
+                *x = f64::NEG_INFINITY;
+            } else if x.is_nan() {
+                return Err(Error::param(
+                    "variant",
+                    "a score for every pair the variant's kernel sees",
+                    format!("none at [head {h}, query {i}, key {j}]"),
+                ));
+            }
         }
         Ok(scores)
     }
@@ -157,46 +264,95 @@ impl<'a> Pipeline<'a> {
         k: ArrayView3<'_, f64>,
         v: ArrayView3<'_, f64>,
         p0: i64,
+        at: &StepAt,
     ) -> Result<(Array3<f64>, Array3<f64>, Array3<f64>)> {
         let window = window_for(q, k)?;
-        let scores = self.round(self.window_scores(q, k, p0)?);
-        let probs = self.round(masked_softmax(scores.view())?);
-        let output = self.round(self.window_output(&probs, v, window, false)?);
+        let scores = self.round(self.window_scores(q, k, p0, at)?);
+        let Some((deviation, dtype)) = self.deviation else {
+            let probs = self.round(masked_softmax(scores.view())?);
+            let output = self.round(self.window_output(&probs, v, window, false)?);
+            return Ok((scores, probs, output));
+        };
+        let ctx = self.ctx(dtype, window, at);
+        let probs = self.round(deviation.softmax(&ctx, &scores)?);
+        let output = self.window_output(&probs, v, window, false)?;
+        let output = self.round(deviation.output(&ctx, output)?);
         Ok((scores, probs, output))
     }
 
     fn run(&self) -> Result<Outputs> {
-        let case = self.case;
+        let case: &Case = &self.case;
         let inputs = self.inputs();
         let mut out = Outputs::new();
+        let one_window = |keys: usize| StepAt {
+            kind: StepKind::Window,
+            index: 0,
+            start: 0,
+            key_tokens: (0..keys).collect(),
+            key_step_starts: Vec::new(),
+        };
         match &case.operation {
             Operation::Encode => {
                 let shape = case.shape();
                 let (output, _) = self.model().encode_output(&shape);
-                let table = self.model().encode(&shape, &inputs)?;
+                let mut table = self.model().encode(&shape, &inputs)?;
+                if let Some((deviation, _)) = self.deviation {
+                    table = deviation.encode(case, &inputs, table)?;
+                }
                 out.insert(output, self.round(table));
             }
             Operation::Scores => {
                 let (q, k) = (inputs.get3("q")?, inputs.get3("k")?);
-                let scores = self.round(self.window_scores(q, k, case.query_start)?);
+                let at = one_window(k.dim().1);
+                let scores = self.round(self.window_scores(q, k, case.query_start, &at)?);
                 out.insert(Output::Scores, scores.into_dyn());
             }
             Operation::Attention => {
                 let (q, k, v) = (inputs.get3("q")?, inputs.get3("k")?, inputs.get3("v")?);
-                let (_, probs, output) = self.attend_window(q, k, v, case.query_start)?;
+                let at = one_window(k.dim().1);
+                let (_, probs, output) = self.attend_window(q, k, v, case.query_start, &at)?;
                 out.insert(Output::Probs, probs.into_dyn());
                 out.insert(Output::Output, output.into_dyn());
             }
             Operation::Stream { tokens } => {
                 let (q, k, v) = (inputs.get3("q")?, inputs.get3("k")?, inputs.get3("v")?);
                 let mut output = Array3::zeros((case.heads, *tokens, case.head_dim));
-                for step in segments(*tokens, case.query_len, case.memory_len) {
-                    let (_, _, o) = self.attend_window(
-                        q.slice(s![.., step.start..step.end, ..]),
-                        k.slice(s![.., step.first_key..step.end, ..]),
-                        v.slice(s![.., step.first_key..step.end, ..]),
-                        case.query_start + step.start as i64,
-                    )?;
+                let segment_len = case.query_len.max(1);
+                for (index, step) in segments(*tokens, case.query_len, case.memory_len).enumerate()
+                {
+                    let p0 = case.query_start + step.start as i64;
+                    let queries = q.slice(s![.., step.start..step.end, ..]);
+                    let o = match self.deviation {
+                        None => {
+                            let at = one_window(0);
+                            self.attend_window(
+                                queries,
+                                k.slice(s![.., step.first_key..step.end, ..]),
+                                v.slice(s![.., step.first_key..step.end, ..]),
+                                p0,
+                                &at,
+                            )?
+                            .2
+                        }
+                        Some((deviation, _)) => {
+                            let tokens =
+                                deviation.segment_keys(case, step.first_key, step.start, step.end);
+                            let at = StepAt {
+                                kind: StepKind::Segment,
+                                index,
+                                start: step.start,
+                                key_step_starts: tokens
+                                    .iter()
+                                    .map(|t| t / segment_len * segment_len)
+                                    .collect(),
+                                key_tokens: tokens,
+                            };
+                            let keys = k.select(Axis(1), &at.key_tokens);
+                            let values = v.select(Axis(1), &at.key_tokens);
+                            self.attend_window(queries, keys.view(), values.view(), p0, &at)?
+                                .2
+                        }
+                    };
                     output
                         .slice_mut(s![.., step.start..step.end, ..])
                         .assign(&o);
@@ -210,13 +366,31 @@ impl<'a> Pipeline<'a> {
             } => {
                 let (q, k, v) = (inputs.get3("q")?, inputs.get3("k")?, inputs.get3("v")?);
                 let mut output = Array3::zeros((case.heads, tokens - prefill, case.head_dim));
+                let steps: Vec<_> = decode_steps(*prefill, chunks).collect();
+                let step_of = |t: usize| {
+                    steps
+                        .iter()
+                        .find(|s| s.start <= t && t < s.end)
+                        .map_or(0, |s| s.start)
+                };
                 // The prefill's own rows are not an output; its keys stay in the cache.
-                for step in decode_steps(*prefill, chunks).skip(1) {
+                for (index, step) in steps.iter().enumerate().skip(1) {
+                    let at = match self.deviation {
+                        None => one_window(0),
+                        Some(_) => StepAt {
+                            kind: StepKind::Decode,
+                            index,
+                            start: step.start,
+                            key_tokens: (0..step.end).collect(),
+                            key_step_starts: (0..step.end).map(step_of).collect(),
+                        },
+                    };
                     let (_, _, o) = self.attend_window(
                         q.slice(s![.., step.start..step.end, ..]),
                         k.slice(s![.., ..step.end, ..]),
                         v.slice(s![.., ..step.end, ..]),
                         case.query_start + step.start as i64,
+                        &at,
                     )?;
                     output
                         .slice_mut(s![.., step.start - prefill..step.end - prefill, ..])
@@ -229,7 +403,7 @@ impl<'a> Pipeline<'a> {
     }
 
     fn bounds(&self, dtype: Dtype) -> Result<Outputs> {
-        let case = self.case;
+        let case: &Case = &self.case;
         let inputs = self.inputs();
         let contract = Contract::for_dtype(dtype, case.dtype);
         let mut out = Outputs::new();
@@ -340,7 +514,14 @@ impl<'a> Pipeline<'a> {
         for &j in &self.case.hidden_keys {
             scores.slice_mut(s![.., .., j]).fill(f64::NEG_INFINITY);
         }
-        let (_, probs, output) = self.attend_window(q, k, v, p0)?;
+        let at = StepAt {
+            kind: StepKind::Window,
+            index: 0,
+            start: 0,
+            key_tokens: Vec::new(),
+            key_step_starts: Vec::new(),
+        };
+        let (_, probs, output) = self.attend_window(q, k, v, p0, &at)?;
         let row_max_abs = scores.map_axis(Axis(2), |row| {
             row.iter()
                 .copied()

@@ -119,6 +119,7 @@ fn mixed_report() -> Report {
         notes: vec!["kernel restarted once".into()],
         never_exercised: Vec::new(),
         random: Default::default(),
+        diagnosis: None,
     }
 }
 
@@ -249,7 +250,7 @@ fn json_has_header_counts_and_exit_code() {
     let report = mixed_report();
     let doc = parse_json(&report);
     assert_eq!(doc["format"], "posconform.report");
-    assert_eq!(doc["version"], 1);
+    assert_eq!(doc["version"], 2);
     assert_eq!(doc["mode"], "check");
     assert_eq!(doc["subject"], "demo kernel <stdio>");
     // One case could not be compared: the verdict is incomplete, whatever failed.
@@ -371,6 +372,7 @@ fn json_exit_code_follows_the_verdicts() {
         notes: Vec::new(),
         never_exercised: Vec::new(),
         random: Default::default(),
+        diagnosis: None,
     };
     assert_eq!(parse_json(&only_pass)["exit_code"], report::EXIT_CONFORMING);
 
@@ -534,6 +536,7 @@ fn junit_failure_names_every_failing_output_worst_first() {
         notes: Vec::new(),
         never_exercised: Vec::new(),
         random: Default::default(),
+        diagnosis: None,
     };
     let cases = testcases(&junit_root(&report));
     let failure = cases[0].named("failure").next().unwrap();
@@ -690,6 +693,7 @@ fn synthetic(
         verdict: Verdict::Fail,
         outputs: Vec::new(),
         warnings: Vec::new(),
+        diagnosis: None,
     };
     let output = OutputReport {
         name: Output::Scores,

@@ -134,7 +134,7 @@ fn check(
         compare: CompareOptions {
             factor,
             budget_dtype,
-            declared: None,
+            ..CompareOptions::default()
         },
         fuzz_cases: fuzz,
         fuzz_time,
@@ -231,6 +231,7 @@ impl Outcome {
             notes: Vec::new(),
             never_exercised: Vec::new(),
             random: Default::default(),
+            diagnosis: None,
         };
         let mut text = report::text::render(&alone);
         if let Some(m) = self.minimal_of(id) {

@@ -428,7 +428,7 @@ fn compare_options(args: &OutputArgs) -> anyhow::Result<CompareOptions> {
     Ok(CompareOptions {
         factor: args.factor,
         budget_dtype: args.budget_dtype,
-        declared: None,
+        ..CompareOptions::default()
     })
 }
 
@@ -436,7 +436,7 @@ fn list(name: Option<&str>) -> anyhow::Result<u8> {
     let mut out = std::io::stdout().lock();
     if let Some(name) = name {
         for case in suite(name)? {
-            let faults: Vec<String> = case.faults.iter().map(u8::to_string).collect();
+            let faults: Vec<String> = case.faults.clone();
             writeln!(
                 out,
                 "{:<52} {:<5} faults {:<12} {}",

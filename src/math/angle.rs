@@ -27,8 +27,10 @@
 
 use std::cell::Cell;
 
+use crate::math::precision::Dtype;
+
 thread_local! {
-    static SINGLE_PRECISION: Cell<bool> = const { Cell::new(false) };
+    static ANGLE_DTYPE: Cell<Option<Dtype>> = const { Cell::new(None) };
 }
 
 /// Runs `f` with angles formed the way a plain f32 kernel forms them: `p` and `ω`
@@ -36,13 +38,21 @@ thread_local! {
 /// baseline of a narrow dtype uses this to emulate a kernel at the edge of the
 /// numerical contract (docs/budgets.md); the flag is per thread and restored afterwards.
 pub fn with_single_precision_angles<R>(f: impl FnOnce() -> R) -> R {
-    struct Restore(bool);
+    with_angles_in(Dtype::F32, f)
+}
+
+/// Runs `f` with angles formed in `dtype`: `p` and `ω` rounded to it, their product
+/// rounded to it, and the f32 sine and cosine of that angle (f64 ones for f64). The
+/// faulty variant "angles formed in half precision" uses f16 and bf16; the setting is
+/// per thread and restored afterwards.
+pub fn with_angles_in<R>(dtype: Dtype, f: impl FnOnce() -> R) -> R {
+    struct Restore(Option<Dtype>);
     impl Drop for Restore {
         fn drop(&mut self) {
-            SINGLE_PRECISION.with(|p| p.set(self.0));
+            ANGLE_DTYPE.with(|p| p.set(self.0));
         }
     }
-    let _restore = Restore(SINGLE_PRECISION.with(|p| p.replace(true)));
+    let _restore = Restore(ANGLE_DTYPE.with(|p| p.replace(Some(dtype))));
     f()
 }
 
@@ -221,11 +231,24 @@ pub fn frequency(ln_base: DoubleDouble, numerator: f64, denominator: f64) -> Dou
 /// `(sin θ, cos θ)` for the angle `θ = position · ω`, both within about one unit in
 /// the last place for `|θ| <= 2^40`.
 ///
-/// Inside [`with_single_precision_angles`], the f32 recipe instead.
+/// Inside [`with_angles_in`] (and [`with_single_precision_angles`]), the recipe of that
+/// dtype instead.
 pub fn sin_cos(position: DoubleDouble, omega: DoubleDouble) -> (f64, f64) {
-    if SINGLE_PRECISION.with(|p| p.get()) {
-        let theta = position.to_f64() as f32 * omega.to_f64() as f32;
-        return (libm::sinf(theta) as f64, libm::cosf(theta) as f64);
+    match ANGLE_DTYPE.with(|p| p.get()) {
+        None => {}
+        Some(Dtype::F32) => {
+            let theta = position.to_f64() as f32 * omega.to_f64() as f32;
+            return (libm::sinf(theta) as f64, libm::cosf(theta) as f64);
+        }
+        Some(Dtype::F64) => {
+            let theta = position.to_f64() * omega.to_f64();
+            return (libm::sin(theta), libm::cos(theta));
+        }
+        Some(dtype) => {
+            let round = |x: f64| dtype.round(x);
+            let theta = round(round(position.to_f64()) * round(omega.to_f64())) as f32;
+            return (libm::sinf(theta) as f64, libm::cosf(theta) as f64);
+        }
     }
     reduced_sin_cos(position * omega)
 }

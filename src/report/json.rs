@@ -71,7 +71,7 @@ use crate::math::precision::Dtype;
 pub const FORMAT: &str = "posconform.report";
 
 /// The value of `"version"`, the layout revision.
-pub const VERSION: u32 = 1;
+pub const VERSION: u32 = 2;
 
 /// Renders `report` as a pretty-printed JSON document ending in a newline.
 pub fn render(report: &Report) -> String {
@@ -84,6 +84,7 @@ pub fn render(report: &Report) -> String {
         counts: report.counts(),
         notes: &report.notes,
         never_exercised: &report.never_exercised,
+        diagnosis: report.diagnosis.as_ref().map(RunDiagnosisDocument::from),
         cases: report
             .cases
             .iter()
@@ -131,6 +132,8 @@ struct Document<'a> {
     counts: Counts,
     notes: &'a [String],
     never_exercised: &'a [crate::kernel::capability::Gap],
+    #[serde(skip_serializing_if = "Option::is_none")]
+    diagnosis: Option<RunDiagnosisDocument<'a>>,
     cases: Vec<CaseDocument<'a>>,
 }
 
@@ -139,13 +142,15 @@ struct CaseDocument<'a> {
     id: &'a str,
     scheme: &'a str,
     operation: &'a str,
-    faults: &'a [u8],
+    faults: &'a [String],
     memory_len: usize,
     query_len: usize,
     random: bool,
     verdict: &'a Verdict,
     warnings: &'a [crate::compare::Warning],
     outputs: Vec<OutputDocument<'a>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    diagnosis: Option<CaseDiagnosisDocument<'a>>,
 }
 
 impl<'a> CaseDocument<'a> {
@@ -161,6 +166,7 @@ impl<'a> CaseDocument<'a> {
             verdict: &case.verdict,
             warnings: &case.warnings,
             outputs: case.outputs.iter().map(OutputDocument::from).collect(),
+            diagnosis: case.diagnosis.as_ref().map(CaseDiagnosisDocument::from),
         }
     }
 }
@@ -269,6 +275,59 @@ impl From<&Pattern> for PatternDocument {
                 PatternDocument::VisibleKeysMasked { count, top_left }
             }
             Pattern::BeginsAtRow { row } => PatternDocument::BeginsAtRow { row },
+        }
+    }
+}
+
+#[derive(Serialize)]
+struct CaseDiagnosisDocument<'a> {
+    finding: &'a crate::diagnose::Finding,
+    tried: usize,
+    candidates: Vec<CandidateDocument>,
+}
+
+impl<'a> From<&'a crate::diagnose::CaseDiagnosis> for CaseDiagnosisDocument<'a> {
+    fn from(d: &'a crate::diagnose::CaseDiagnosis) -> Self {
+        CaseDiagnosisDocument {
+            finding: &d.finding,
+            tried: d.tried,
+            candidates: d
+                .candidates
+                .iter()
+                .map(|c| CandidateDocument {
+                    fault: c.fault,
+                    explains: c.explains,
+                    reproduced: Real(c.reproduced),
+                    contradicted: Real(c.contradicted),
+                    distance: Real(c.distance),
+                })
+                .collect(),
+        }
+    }
+}
+
+#[derive(Serialize)]
+struct CandidateDocument {
+    fault: &'static str,
+    explains: bool,
+    reproduced: Real,
+    contradicted: Real,
+    distance: Real,
+}
+
+#[derive(Serialize)]
+struct RunDiagnosisDocument<'a> {
+    conclusive: Option<&'static str>,
+    diagnosed: usize,
+    ranked: &'a [crate::diagnose::RunCandidate],
+}
+
+impl<'a> From<&'a crate::diagnose::RunDiagnosis> for RunDiagnosisDocument<'a> {
+    fn from(d: &'a crate::diagnose::RunDiagnosis) -> Self {
+        RunDiagnosisDocument {
+            conclusive: d.conclusive().map(|c| c.fault),
+            diagnosed: d.diagnosed,
+            ranked: &d.ranked,
         }
     }
 }

@@ -6,12 +6,14 @@
 //! - a failing case holds `<failure message="..." type="over_budget">` whose text gives
 //!   the worst output (its worst element, the largest absolute error against the
 //!   tolerance, the masking seen and the error patterns), one line per other failing
-//!   output, and the case's warnings;
+//!   output, the diagnosis (which catalogued fault reproduces the outputs) and the
+//!   case's warnings; the message names the fault when one alone reproduces them;
 //! - a case that could not be compared holds `<error message="..." type="not_compared">`;
 //! - a case the kernel does not support holds `<skipped message="..."/>`, so a missing
 //!   feature shows as skipped rather than failed;
-//! - warnings of a case without a failure body go to its `<system-out>`, and run-level
-//!   notes to the suite's `<system-out>`.
+//! - warnings of a case without a failure body go to its `<system-out>`; the run's
+//!   diagnosis and notes go to the suite's `<system-out>`, and a conclusive diagnosis
+//!   is also the suite property `diagnosis`.
 //!
 //! No `time` attributes are written: the comparison does not time kernels, and a made-up
 //! duration would mislead a dashboard. Text is escaped by `escape` and `escape_text`,
@@ -57,15 +59,26 @@ pub fn render(report: &Report) -> String {
         "      <property name=\"exit_code\" value=\"{}\"/>",
         report.exit_code()
     );
+    if let Some(best) = report.diagnosis.as_ref().and_then(|d| d.conclusive()) {
+        let _ = writeln!(
+            xml,
+            "      <property name=\"diagnosis\" value=\"{}\"/>",
+            escape(best.fault)
+        );
+    }
     let _ = writeln!(xml, "    </properties>");
     for case in &report.cases {
         write_case(&mut xml, case);
     }
+    let mut out = crate::report::text::describe_run_diagnosis(report);
     if !report.notes.is_empty() {
+        out.push_str(&report.notes.join("\n"));
+    }
+    if !out.is_empty() {
         let _ = writeln!(
             xml,
             "    <system-out>{}</system-out>",
-            escape_text(&report.notes.join("\n"))
+            escape_text(out.trim_end())
         );
     }
     xml.push_str("  </testsuite>\n</testsuites>\n");
@@ -179,8 +192,14 @@ fn failure_message(case: &CaseReport) -> String {
                 1 => String::new(),
                 n => format!(" (and {} more output{})", n - 1, plural(n - 1)),
             };
+            let named = match case.diagnosis.as_ref().map(|d| &d.finding) {
+                Some(crate::diagnose::Finding::Explained { faults }) if faults.len() == 1 => {
+                    format!("; reproduced by `{}`", faults[0])
+                }
+                _ => String::new(),
+            };
             format!(
-                "`{}`: {} of {} elements over budget{others}",
+                "`{}`: {} of {} elements over budget{others}{named}",
                 worst.name, worst.over_budget, worst.elements
             )
         }
@@ -248,6 +267,7 @@ fn failure_body(case: &CaseReport) -> String {
             number(other.max_abs)
         );
     }
+    body.push_str(&crate::report::text::describe_case_diagnosis(case));
     if !case.warnings.is_empty() {
         body.push_str(&warning_lines(&case.warnings));
     }

@@ -37,6 +37,9 @@ pub struct Report {
     /// steps the kernel could not answer). They count like every other case; the text
     /// report summarises the ones that passed or failed and lists each error.
     pub random: std::collections::BTreeSet<String>,
+    /// The faults that explain the run's diagnosed failures, checked against the cases
+    /// that passed.
+    pub diagnosis: Option<crate::diagnose::RunDiagnosis>,
 }
 
 /// A failure found by fuzzing, shrunk.

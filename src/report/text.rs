@@ -1,10 +1,12 @@
-//! The report for people: a table of verdicts, then the findings (where, by how much,
-//! which pattern), warnings, notes and a closing summary.
+//! The report for people: a table of verdicts, the run's diagnosis (the catalogued
+//! fault that explains the failures), then the findings (where, by how much, which
+//! pattern, which fault reproduces them), warnings, notes and a closing summary.
 
 use std::fmt::Write as _;
 
 use crate::case::{OperationKind, Output};
 use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
+use crate::diagnose::{self, FaultKind, Finding};
 use crate::report::{printable, Report};
 
 /// Each line of `text` made printable (kernel messages, stderr lines).
@@ -264,6 +266,7 @@ pub fn render(report: &Report) -> String {
             Verdict::Error(_) => true,
         })
         .collect();
+    run_diagnosis(&mut s, report);
     if !findings.is_empty() {
         let _ = writeln!(s, "\nFindings");
         for case in findings {
@@ -426,21 +429,9 @@ fn format_ulp(ulp: f64) -> String {
 }
 
 fn findings_of(s: &mut String, case: &CaseReport) {
-    let targets = if case.faults.is_empty() {
-        String::new()
-    } else {
-        format!(
-            " (built to expose fault classes {}; see docs/faults.md)",
-            case.faults
-                .iter()
-                .map(u8::to_string)
-                .collect::<Vec<_>>()
-                .join(", ")
-        )
-    };
     let _ = writeln!(
         s,
-        "  {} {} [{} {}]{targets}",
+        "  {} {} [{} {}]",
         verdict_word(&case.verdict),
         printable(&case.case),
         case.scheme_name(),
@@ -497,6 +488,230 @@ fn findings_of(s: &mut String, case: &CaseReport) {
             let _ = writeln!(s, "      masking: {}", describe_masking(m));
         }
     }
+    case_diagnosis(s, case, "    ");
+}
+
+/// `text` wrapped before 92 columns, every line after `lead` indented like `indent`.
+fn wrapped(s: &mut String, lead: &str, indent: &str, text: &str) {
+    let mut line = lead.to_string();
+    let mut empty = lead.trim().is_empty();
+    for word in text.split_whitespace() {
+        if !empty && line.chars().count() + 1 + word.chars().count() > 92 {
+            let _ = writeln!(s, "{line}");
+            line = indent.to_string();
+            empty = true;
+        }
+        if !empty {
+            line.push(' ');
+        }
+        line.push_str(word);
+        empty = false;
+    }
+    let _ = writeln!(s, "{line}");
+}
+
+fn quoted(ids: &[&str]) -> String {
+    let ids: Vec<String> = ids.iter().map(|id| format!("`{id}`")).collect();
+    match ids.len() {
+        0 => String::new(),
+        1 => ids[0].clone(),
+        n => format!("{} and {}", ids[..n - 1].join(", "), ids[n - 1]),
+    }
+}
+
+fn percent(x: f64) -> String {
+    format!("{:.0}%", 100.0 * x)
+}
+
+/// The diagnosis of one failing case, or the faults it is built to expose when it
+/// was not diagnosed.
+fn case_diagnosis(s: &mut String, case: &CaseReport, indent: &str) {
+    let more = format!("{indent}  ");
+    let Some(d) = &case.diagnosis else {
+        if case.verdict == Verdict::Fail && !case.faults.is_empty() {
+            let ids: Vec<&str> = case.faults.iter().map(String::as_str).collect();
+            wrapped(
+                s,
+                &format!("{indent}built to expose:"),
+                &more,
+                &format!("{} (posconform explain ID)", ids.join(", ")),
+            );
+        }
+        return;
+    };
+    match &d.finding {
+        Finding::Explained { faults } => {
+            let first = faults.first().and_then(|id| diagnose::fault(id));
+            if let (1, Some(f)) = (faults.len(), first) {
+                let line = match f.kind {
+                    FaultKind::Bug => format!(
+                        "`{}` reproduces every output element within budget ({})",
+                        f.id,
+                        diagnose::explain_command(f.id)
+                    ),
+                    FaultKind::Convention => format!(
+                        "matches `{}`, an equivalent convention rather than a broken model ({})",
+                        f.id,
+                        diagnose::explain_command(f.id)
+                    ),
+                };
+                wrapped(s, &format!("{indent}diagnosis:"), &more, &line);
+            } else {
+                wrapped(
+                    s,
+                    &format!("{indent}diagnosis:"),
+                    &more,
+                    &format!(
+                        "{} each reproduce every output element within budget; this case cannot \
+                         tell them apart (the run's diagnosis weighs every case). Details: \
+                         posconform explain ID",
+                        quoted(faults)
+                    ),
+                );
+            }
+        }
+        Finding::Combined { faults } => wrapped(
+            s,
+            &format!("{indent}diagnosis:"),
+            &more,
+            &format!(
+                "no single catalogued fault reproduces these outputs; {} together do. Details: \
+                 posconform explain ID",
+                quoted(faults)
+            ),
+        ),
+        Finding::Partial { faults } => {
+            let best = d.candidates.iter().find(|c| faults.contains(&c.fault));
+            let detail = best.map_or(String::new(), |c| {
+                format!(
+                    " (`{}` reproduces {} of the over-budget elements and contradicts {} of the \
+                     others)",
+                    c.fault,
+                    percent(c.reproduced),
+                    percent(c.contradicted)
+                )
+            });
+            wrapped(
+                s,
+                &format!("{indent}diagnosis:"),
+                &more,
+                &format!(
+                    "no catalogued fault reproduces every element; closest: {}{detail}. Another \
+                     mistake is present, alone or on top of it.",
+                    quoted(faults)
+                ),
+            );
+        }
+        Finding::Unexplained => wrapped(
+            s,
+            &format!("{indent}diagnosis:"),
+            &more,
+            &format!(
+                "no catalogued fault reproduces these outputs ({} applicable {} tried); the \
+                 lines above say where the errors lie.",
+                d.tried,
+                if d.tried == 1 { "fault" } else { "faults" }
+            ),
+        ),
+    }
+}
+
+/// The diagnosis lines of one case (empty when it has none), as in the text report.
+pub fn describe_case_diagnosis(case: &CaseReport) -> String {
+    let mut s = String::new();
+    case_diagnosis(&mut s, case, "");
+    s
+}
+
+/// The run's diagnosis section, as in the text report (empty when there is none).
+pub fn describe_run_diagnosis(report: &Report) -> String {
+    let mut s = String::new();
+    run_diagnosis(&mut s, report);
+    s.trim_start().to_string()
+}
+
+/// The run's diagnosis: the fault that explains the failures, checked against the
+/// cases that passed.
+fn run_diagnosis(s: &mut String, report: &Report) {
+    let Some(d) = &report.diagnosis else {
+        return;
+    };
+    let _ = writeln!(s, "\nDiagnosis");
+    let cases = |n: usize| if n == 1 { "case" } else { "cases" };
+    if let Some(best) = d.conclusive() {
+        let Some(f) = diagnose::fault(best.fault) else {
+            return;
+        };
+        let what = match f.kind {
+            FaultKind::Bug => "likely bug",
+            FaultKind::Convention => "equivalent convention (not a broken model)",
+        };
+        wrapped(
+            s,
+            &format!("  {what}: `{}`", f.id),
+            "    ",
+            &format!(
+                "- it reproduces {} diagnosed failing {}, and no case that passed contradicts it.",
+                if d.diagnosed == 1 {
+                    "the".to_string()
+                } else {
+                    format!("all {}", d.diagnosed)
+                },
+                cases(d.diagnosed)
+            ),
+        );
+        wrapped(s, "    mistake:", "      ", f.mistake);
+        wrapped(s, "    fix:", "      ", f.fix);
+        let _ = writeln!(s, "    details: {}", diagnose::explain_command(f.id));
+        return;
+    }
+    if d.ranked.is_empty() {
+        wrapped(
+            s,
+            "  ",
+            "  ",
+            &format!(
+                "No catalogued fault explains the {} diagnosed failing {}; see each case's \
+                 diagnosis below.",
+                d.diagnosed,
+                cases(d.diagnosed)
+            ),
+        );
+        return;
+    }
+    wrapped(
+        s,
+        "  ",
+        "  ",
+        &format!(
+            "No single catalogued fault explains all {} diagnosed failing {} without \
+             contradiction. Candidates:",
+            d.diagnosed,
+            cases(d.diagnosed)
+        ),
+    );
+    for c in d.ranked.iter().take(4) {
+        let mut line = format!(
+            "explains {} of {} failing {}",
+            c.explains.len(),
+            d.diagnosed,
+            cases(d.diagnosed)
+        );
+        if !c.contradicted_by.is_empty() {
+            line += &format!(
+                "; it would have failed {} {} that passed ({})",
+                c.contradicted_by.len(),
+                cases(c.contradicted_by.len()),
+                few(&c
+                    .contradicted_by
+                    .iter()
+                    .map(String::as_str)
+                    .collect::<Vec<_>>())
+            );
+        }
+        wrapped(s, &format!("  `{}`:", c.fault), "    ", &line);
+    }
+    let _ = writeln!(s, "    details: posconform explain ID");
 }
 
 /// The minimal failing cases found by fuzzing, with the parameters that matter.
@@ -552,6 +767,7 @@ pub fn render_minimal(minimal: &[crate::report::MinimalFailure]) -> String {
                 let _ = writeln!(s, "    where: {}", describe_pattern(&m.report, p));
             }
         }
+        case_diagnosis(&mut s, &m.report, "    ");
         if let Some(path) = &m.saved {
             let _ = writeln!(
                 s,

@@ -257,6 +257,7 @@ pub fn check(
         notes: Vec::new(),
         never_exercised: Vec::new(),
         random: Default::default(),
+        diagnosis: None,
     };
     for (n, case) in cases.iter().enumerate() {
         progress("suite", n, cases.len());
@@ -305,6 +306,10 @@ pub fn check(
     }
     report.notes.extend(runner.notes);
     report.never_exercised = crate::kernel::capability::never_exercised(&info, &runner.exercised);
+    if options.compare.diagnose {
+        report.diagnosis =
+            super::diagnosis::run_diagnosis(&report, &runner.exercised, &options.compare);
+    }
     Ok(CheckOutcome {
         info,
         report,

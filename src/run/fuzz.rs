@@ -52,6 +52,12 @@ pub(super) fn fuzz_and_shrink(
             minimal,
         };
     }
+    // Random cases and shrinking steps are not diagnosed one by one; each minimal
+    // failure is, once shrinking ends (the clearest evidence).
+    let quiet = crate::compare::CompareOptions {
+        diagnose: false,
+        ..options.compare
+    };
     for n in 0..options.fuzz_cases {
         if options
             .fuzz_time
@@ -65,7 +71,7 @@ pub(super) fn fuzz_and_shrink(
         let Some(case) = random_declared_case(&mut stream, &runner.info, scheme, op, n) else {
             continue;
         };
-        let report = runner.run(&case, &options.compare);
+        let report = runner.run(&case, &quiet);
         summary.cases += 1;
         let verdict = report.verdict.clone();
         cases.push(report.clone());
@@ -79,6 +85,12 @@ pub(super) fn fuzz_and_shrink(
                 {
                     progress("shrink", 0, 0);
                     let mut m = shrink(runner, &case, report, options, &mut summary, &mut cases);
+                    if options.compare.diagnose && runner.stopped.is_none() {
+                        let again = runner.run(&m.case, &options.compare);
+                        if again.verdict == Verdict::Fail {
+                            m.report = again;
+                        }
+                    }
                     if let Some(dir) = &options.save_dir {
                         match VectorFile::build(&m.case, options.compare.factor)
                             .and_then(|v| v.write(dir))
@@ -215,6 +227,7 @@ fn random_case_where(
             head_dim,
             query_start,
             hidden_keys: Vec::new(),
+            input_scale: 1.0,
             dtype: if floats.is_empty() {
                 Dtype::F64
             } else {

@@ -2,6 +2,8 @@
 //! a results directory against golden vectors (`verify`).
 
 pub mod check;
+mod diagnosis;
 pub mod fuzz;
+pub mod plant;
 pub mod shrink;
 pub mod verify;

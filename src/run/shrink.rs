@@ -116,7 +116,11 @@ pub(super) fn shrink(
             let mut candidate = candidate;
             // Each step gets an id of its own, so an unanswered one can be reported.
             candidate.id = format!("{}.shrink{tried}", found.id);
-            let r = runner.run(&candidate, &options.compare);
+            let quiet = crate::compare::CompareOptions {
+                diagnose: false,
+                ..options.compare
+            };
+            let r = runner.run(&candidate, &quiet);
             match r.verdict {
                 Verdict::Fail => {
                     best = candidate;

@@ -36,6 +36,7 @@ pub fn verify(vectors: &Path, results: &Path, options: &CompareOptions) -> Resul
         notes: Vec::new(),
         never_exercised: Vec::new(),
         random: Default::default(),
+        diagnosis: None,
     };
     let mut known = BTreeSet::new();
     for file in &files {
@@ -112,10 +113,11 @@ pub fn verify_one(vector: &VectorFile, results: &Path, options: &CompareOptions)
             budgets(case, &vector.inputs, &expected, dtype, options.factor)
         }
     };
-    let mut report = match compare_with_budgets(case, &expected, &got, options, &mut source) {
-        Ok(report) => report,
-        Err(e) => return CaseReport::error(case, format!("comparison failed: {e}")),
-    };
+    let mut report =
+        match compare_with_budgets(case, &vector.inputs, &expected, &got, options, &mut source) {
+            Ok(report) => report,
+            Err(e) => return CaseReport::error(case, format!("comparison failed: {e}")),
+        };
     if let Some(note) = consistency(vector, options) {
         report.warnings.push(note);
     }

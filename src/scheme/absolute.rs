@@ -3,11 +3,11 @@
 
 use ndarray::{Array2, Array3, ArrayView3};
 
-use crate::attention::{dot_scores, window_for};
+use crate::attention::{dot_scores, window_for, Scale};
 use crate::error::Result;
 use crate::math::contract::{gamma_of, R64};
 use crate::math::Contract;
-use crate::scheme::model::{head_products, Inputs, SchemeModel};
+use crate::scheme::model::{head_products, Inputs, PairPositions, SchemeModel};
 use crate::scheme::xl_relative::standard_positions;
 use crate::shape::Shape;
 
@@ -46,6 +46,22 @@ pub(crate) fn window_scores(
     let q = &q + &table.rows(shape, inputs, &qp)?;
     let k = &k + &table.rows(shape, inputs, &kp)?;
     Ok(dot_scores(q.view(), k.view(), scale)?.0)
+}
+
+/// `scale · (q + P[pos_q]) · (k + P[pos_k])` for every pair, unmasked.
+pub(crate) fn pair_scores(
+    table: &impl AbsoluteTable,
+    shape: &Shape<'_>,
+    inputs: &Inputs<'_, '_>,
+    q: ArrayView3<'_, f64>,
+    k: ArrayView3<'_, f64>,
+    positions: &PairPositions,
+    scale: Scale,
+) -> Result<Array3<f64>> {
+    positions.check(q, k)?;
+    let q = &q + &table.rows(shape, inputs, &positions.queries)?;
+    let k = &k + &table.rows(shape, inputs, &positions.keys)?;
+    Ok(head_products(&q, &k, scale.factor(shape.head_dim)))
 }
 
 /// The score terms of docs/budgets.md for absolute schemes: with `q̂ = q + P` and the

@@ -42,7 +42,7 @@ use crate::error::{expect_finite, expect_shape, Error, Result};
 use crate::math::contract::{gamma_of, R64};
 use crate::math::{Contract, Stream};
 use crate::scheme::model::{
-    finite_or_zero, head_products, Inputs, Parameter, SchemeKind, SchemeModel,
+    finite_or_zero, head_products, Inputs, PairPositions, Parameter, SchemeKind, SchemeModel,
 };
 use crate::shape::{InputSpec, Output, Shape};
 
@@ -358,6 +358,24 @@ impl SchemeModel for AlibiSpec {
             query_start: p0,
         };
         scores(q, k, &slopes(shape.heads)?, &params)
+    }
+
+    fn pair_scores(
+        &self,
+        shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        positions: &PairPositions,
+        scale: Scale,
+    ) -> Result<Array3<f64>> {
+        positions.check(q, k)?;
+        let slopes = slopes(shape.heads)?;
+        let mut out = head_products(&q.to_owned(), &k.to_owned(), scale.factor(shape.head_dim));
+        for ((h, i, j), s) in out.indexed_iter_mut() {
+            *s -= slopes[h] * positions.distance(i, j) as f64;
+        }
+        Ok(out)
     }
 
     fn score_terms(

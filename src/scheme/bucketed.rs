@@ -44,8 +44,8 @@ use crate::math::contract::{gamma_of, R64};
 use crate::math::{Contract, Stream};
 use crate::scheme::alibi::expect_values;
 use crate::scheme::model::{
-    finite_or_zero, head_products, pick, range, Inputs, Parameter, ParameterKind, SchemeKind,
-    SchemeModel,
+    finite_or_zero, head_products, pick, range, Inputs, PairPositions, Parameter, ParameterKind,
+    SchemeKind, SchemeModel,
 };
 use crate::shape::{InputSpec, Output, Shape};
 
@@ -457,6 +457,26 @@ impl SchemeModel for BucketedSpec {
             scale: self.scale,
         };
         scores(q, k, inputs.get2("bias_table")?, &params)
+    }
+
+    fn pair_scores(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        positions: &PairPositions,
+        scale: Scale,
+    ) -> Result<Array3<f64>> {
+        positions.check(q, k)?;
+        let rule = self.rule()?;
+        let table = inputs.get2("bias_table")?;
+        check_table(table, shape.heads, &rule)?;
+        let mut out = head_products(&q.to_owned(), &k.to_owned(), scale.factor(shape.head_dim));
+        for ((h, i, j), s) in out.indexed_iter_mut() {
+            *s += table[[h, bucket(-positions.distance(i, j), &rule)]];
+        }
+        Ok(out)
     }
 
     fn score_terms(

@@ -48,7 +48,8 @@ use crate::math::contract::{gamma_of, R64};
 use crate::math::{Contract, Stream};
 use crate::scheme::alibi::expect_values;
 use crate::scheme::model::{
-    finite_or_zero, range, Inputs, Parameter, ParameterKind, SchemeKind, SchemeModel,
+    finite_or_zero, head_products, range, Inputs, PairPositions, Parameter, ParameterKind,
+    SchemeKind, SchemeModel,
 };
 use crate::shape::{InputSpec, Output, Shape};
 
@@ -363,6 +364,37 @@ impl SchemeModel for ClippedSpec {
         _p0: i64,
     ) -> Result<Array3<f64>> {
         scores(q, k, inputs.get3("w_key")?, &self.params())
+    }
+
+    fn pair_scores(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        positions: &PairPositions,
+        scale: Scale,
+    ) -> Result<Array3<f64>> {
+        positions.check(q, k)?;
+        let w_key = inputs.get3("w_key")?;
+        check_table(
+            "w_key",
+            w_key,
+            shape.heads,
+            self.clip_distance,
+            shape.head_dim,
+        )?;
+        let factor = scale.factor(shape.head_dim);
+        let mut out = head_products(&q.to_owned(), &k.to_owned(), factor);
+        for (h, mut out_h) in out.outer_iter_mut().enumerate() {
+            let table = w_key.index_axis(Axis(0), if w_key.dim().0 == 1 { 0 } else { h });
+            let q_dot_table = crate::math::product::matmul(&q.index_axis(Axis(0), h), &table.t());
+            for ((i, j), s) in out_h.indexed_iter_mut() {
+                let row = embedding_index(-positions.distance(i, j), self.clip_distance);
+                *s += factor * q_dot_table[[i, row]];
+            }
+        }
+        Ok(out)
     }
 
     fn add_value_terms(

@@ -193,6 +193,18 @@ impl SchemeModel for LearnedSpec {
         absolute::window_scores(self, shape, inputs, q, k, p0)
     }
 
+    fn pair_scores(
+        &self,
+        shape: &crate::shape::Shape<'_>,
+        inputs: &crate::scheme::model::Inputs<'_, '_>,
+        q: ndarray::ArrayView3<'_, f64>,
+        k: ndarray::ArrayView3<'_, f64>,
+        positions: &crate::scheme::model::PairPositions,
+        scale: crate::attention::Scale,
+    ) -> Result<ndarray::Array3<f64>> {
+        crate::scheme::absolute::pair_scores(self, shape, inputs, q, k, positions, scale)
+    }
+
     fn score_terms(
         &self,
         shape: &Shape<'_>,

@@ -163,6 +163,25 @@ pub trait SchemeModel: fmt::Debug + Send + Sync {
         p0: i64,
     ) -> Result<Array3<f64>>;
 
+    /// Scores of every query-key pair of one window with no mask at all: query `i` at
+    /// absolute position `positions.queries[i]`, key `j` at `positions.keys[j]`, the
+    /// score scale `scale` (where the scheme scales, as in [`SchemeModel::window_scores`]).
+    /// Future keys (negative distances) get what the formula gives there; NaN marks a
+    /// pair the scheme defines no score for (an xl_relative distance outside `r`).
+    ///
+    /// The faulty variants of the reference ([`crate::variant`]) are built on this; the
+    /// reference's own scores come from [`SchemeModel::window_scores`], and a property
+    /// test checks that both agree on every visible pair at the standard positions.
+    fn pair_scores(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        positions: &PairPositions,
+        scale: Scale,
+    ) -> Result<Array3<f64>>;
+
     /// Adds what the scheme puts on the value side to `out[H,L,d]` from `probs[H,L,K]`
     /// (Shaw's value embeddings); with `absolute`, their magnitudes (for error bounds).
     fn add_value_terms(
@@ -211,6 +230,48 @@ pub trait SchemeModel: fmt::Debug + Send + Sync {
     /// How many parameters differ from their plain defaults (shrinking prefers fewer).
     fn extras(&self, _shape: &Shape<'_>) -> usize {
         0
+    }
+}
+
+/// Absolute positions of the queries and keys of one window.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct PairPositions {
+    /// One per query.
+    pub queries: Vec<i64>,
+    /// One per key.
+    pub keys: Vec<i64>,
+}
+
+impl PairPositions {
+    /// The positions of docs/conventions.md: queries `p0 + i`, keys `p0 - M + j`.
+    pub fn standard(window: Window, query_start: i64) -> Self {
+        let m = window.memory_len() as i64;
+        PairPositions {
+            queries: (0..window.query_len() as i64)
+                .map(|i| query_start + i)
+                .collect(),
+            keys: (0..window.key_len() as i64)
+                .map(|j| query_start - m + j)
+                .collect(),
+        }
+    }
+
+    /// `pos_query - pos_key` of one pair (the distance; negative for a future key).
+    pub fn distance(&self, query: usize, key: usize) -> i64 {
+        self.queries[query] - self.keys[key]
+    }
+
+    /// Errors unless there is one position per query of `q[H, L, d]` and per key of
+    /// `k[H, K, d]`.
+    pub fn check(&self, q: ArrayView3<'_, f64>, k: ArrayView3<'_, f64>) -> Result<()> {
+        if self.queries.len() != q.dim().1 || self.keys.len() != k.dim().1 {
+            return Err(Error::param(
+                "positions",
+                format!("{} query and {} key positions", q.dim().1, k.dim().1),
+                format!("{} and {}", self.queries.len(), self.keys.len()),
+            ));
+        }
+        Ok(())
     }
 }
 

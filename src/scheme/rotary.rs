@@ -36,7 +36,8 @@ use crate::math::contract::{gamma_of, R64};
 use crate::math::product::gemm;
 use crate::math::{AngleScaling, Contract, Stream};
 use crate::scheme::model::{
-    pick, range, Inputs, Parameter, ParameterKind, SchemeKind, SchemeModel,
+    head_products, pick, range, Inputs, PairPositions, Parameter, ParameterKind, SchemeKind,
+    SchemeModel,
 };
 use crate::scheme::sinusoidal::precise_frequencies;
 use crate::scheme::xl_relative::standard_positions;
@@ -635,6 +636,22 @@ impl SchemeModel for RotarySpec {
         p0: i64,
     ) -> Result<Array3<f64>> {
         Ok(scores(&self.rotary(shape.head_dim)?, q, k, p0, self.scale)?.0)
+    }
+
+    fn pair_scores(
+        &self,
+        shape: &Shape<'_>,
+        _inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        positions: &PairPositions,
+        scale: Scale,
+    ) -> Result<Array3<f64>> {
+        positions.check(q, k)?;
+        let rotary = self.rotary(shape.head_dim)?;
+        let q = rotary.apply(q, &positions.queries)?;
+        let k = rotary.apply(k, &positions.keys)?;
+        Ok(head_products(&q, &k, scale.factor(shape.head_dim)))
     }
 
     /// Per rotated pair `j`, `ρ_q ρ_k (δθ_q + δθ_k + 4e + 4e² + γ')` (a rotation by a

@@ -243,6 +243,18 @@ impl crate::scheme::model::SchemeModel for SinusoidalSpec {
         crate::scheme::absolute::window_scores(self, shape, inputs, q, k, p0)
     }
 
+    fn pair_scores(
+        &self,
+        shape: &crate::shape::Shape<'_>,
+        inputs: &crate::scheme::model::Inputs<'_, '_>,
+        q: ndarray::ArrayView3<'_, f64>,
+        k: ndarray::ArrayView3<'_, f64>,
+        positions: &crate::scheme::model::PairPositions,
+        scale: crate::attention::Scale,
+    ) -> Result<ndarray::Array3<f64>> {
+        crate::scheme::absolute::pair_scores(self, shape, inputs, q, k, positions, scale)
+    }
+
     fn score_terms(
         &self,
         shape: &crate::shape::Shape<'_>,

@@ -28,7 +28,7 @@ use crate::math::contract::{gamma_of, R64};
 use crate::math::product::{gemm, matmul};
 use crate::math::{Contract, Stream};
 use crate::scheme::model::{
-    finite_or_zero, range, Inputs, Parameter, ParameterKind, SchemeKind, SchemeModel,
+    finite_or_zero, range, Inputs, PairPositions, Parameter, ParameterKind, SchemeKind, SchemeModel,
 };
 use crate::scheme::sinusoidal::{self, Sinusoid, SinusoidLayout};
 use crate::scheme::SchemeSpec;
@@ -525,6 +525,42 @@ impl SchemeModel for XlRelativeSpec {
             v: v.view(),
         };
         scores(&relative, &self.params())
+    }
+
+    fn pair_scores(
+        &self,
+        shape: &Shape<'_>,
+        inputs: &Inputs<'_, '_>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        positions: &PairPositions,
+        scale: Scale,
+    ) -> Result<Array3<f64>> {
+        positions.check(q, k)?;
+        let (r, u, v) = (
+            inputs.get3("r")?,
+            inputs.get2("content_bias")?,
+            inputs.get2("position_bias")?,
+        );
+        let factor = scale.factor(shape.head_dim);
+        let rows = r.dim().1;
+        let (heads, l, _) = q.dim();
+        let mut out = Array3::zeros((heads, l, k.dim().1));
+        for (h, mut out_h) in out.outer_iter_mut().enumerate() {
+            let qh = q.index_axis(Axis(0), h);
+            let ac = matmul(&add_bias(qh, u.row(h)), &k.index_axis(Axis(0), h).t());
+            let bd = matmul(&add_bias(qh, v.row(h)), &r.index_axis(Axis(0), h).t());
+            for ((i, j), s) in out_h.indexed_iter_mut() {
+                let delta = positions.distance(i, j);
+                *s = match usize::try_from(delta) {
+                    Ok(delta) if clamp(delta, self.clamp_len) < rows => {
+                        factor * (ac[[i, j]] + bd[[i, clamp(delta, self.clamp_len)]])
+                    }
+                    _ => f64::NAN,
+                };
+            }
+        }
+        Ok(out)
     }
 
     fn score_terms(

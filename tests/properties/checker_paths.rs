@@ -20,6 +20,7 @@ fn one_shot(case: &Case) -> Case {
         query_len: case.tokens(),
         memory_len: 0,
         hidden_keys: Vec::new(),
+        input_scale: 1.0,
         ..case.clone()
     }
 }

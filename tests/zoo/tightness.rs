@@ -153,6 +153,7 @@ fn case(label: &str, scheme: &SchemeSpec, op: &Operation, p0: i64, dtype: Dtype)
         head_dim: 64,
         query_start: p0,
         hidden_keys: Vec::new(),
+        input_scale: 1.0,
         dtype,
         seed,
         faults: Vec::new(),

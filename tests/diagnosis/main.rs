@@ -1,0 +1,7 @@
+//! The fault catalogue and the differential diagnosis: the faulty variants agree with
+//! the reference where they must, each reproduces its own mistake, and reports name
+//! what the data supports and nothing more.
+
+mod plant;
+mod scratch;
+mod variants;
