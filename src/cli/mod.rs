@@ -18,8 +18,9 @@ use posconform::Scheme;
 #[command(name = "posconform", version, about, long_about = None)]
 #[command(
     after_help = "Exit status: 0 conforming, 1 nonconforming, 2 could not run.\n\
-Conventions: docs/conventions.md; kernel protocol: docs/protocol.md; fault classes:\n\
-docs/faults.md; budgets: docs/budgets.md; vector format: vectors/README.md."
+Conventions: docs/conventions.md; kernel protocol: docs/protocol.md; fault catalogue:\n\
+docs/faults.md (or `posconform explain`); budgets: docs/budgets.md; vector format:\n\
+vectors/README.md."
 )]
 struct Cli {
     #[command(subcommand)]
@@ -63,6 +64,17 @@ enum Command {
         #[arg(long, default_value_t = 7)]
         seed: u64,
     },
+    /// Explain a catalogued fault: the mistake, how it arises, which cases expose it, a
+    /// worked example and the fix. Without an id, list the catalogue.
+    Explain {
+        /// The fault's id, as reports name it (e.g. mask-not-offset-by-memory).
+        fault: Option<String>,
+    },
+    /// Self-test of the suite's power: plant every catalogued fault in an otherwise
+    /// correct kernel, check it with the suite and a fixed fuzz budget, and print what
+    /// caught each fault and what the diagnosis named. Exit 1 if a fault goes uncaught
+    /// or fewer than 90% are named first.
+    Plant(PlantArgs),
     /// Serve the demo kernel over the protocol on stdin/stdout (used by `demo`).
     #[command(name = "__demo-kernel", hide = true)]
     DemoKernel,
@@ -111,6 +123,45 @@ struct CheckArgs {
     quiet: bool,
     #[command(flatten)]
     output: OutputArgs,
+}
+
+#[derive(Debug, clap::Args)]
+struct PlantArgs {
+    /// Suite each planted kernel is checked with.
+    #[arg(long, default_value = "core")]
+    suite: String,
+    /// Random cases per planted fault after the suite.
+    #[arg(long, default_value_t = PLANT_FUZZ)]
+    fuzz: usize,
+    /// Seed of the fuzzer.
+    #[arg(long, default_value_t = 0x5eed)]
+    seed: u64,
+    /// Plant only these faults (repeatable; default every catalogued fault).
+    #[arg(long, value_name = "ID")]
+    fault: Vec<String>,
+    /// Output: a table (text), JSON, or the catalogue page with the table (markdown,
+    /// as in docs/faults.md).
+    #[arg(long, value_enum, default_value_t = PlantFormat::Text)]
+    format: PlantFormat,
+    /// Write the output to this file instead of standard output.
+    #[arg(long, value_name = "FILE")]
+    out: Option<PathBuf>,
+    /// No progress display.
+    #[arg(long)]
+    quiet: bool,
+}
+
+/// Random cases per planted fault in `posconform plant` (and docs/faults.md).
+const PLANT_FUZZ: usize = posconform::run::plant::DEFAULT_FUZZ;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+enum PlantFormat {
+    /// A table for people.
+    Text,
+    /// One JSON document.
+    Json,
+    /// The docs page: the catalogue and the table.
+    Markdown,
 }
 
 #[derive(Debug, clap::Args)]
@@ -193,6 +244,8 @@ fn dispatch(command: Command) -> anyhow::Result<u8> {
         }
         Command::Check(args) => check(args),
         Command::Demo { fuzz, seed } => demo(fuzz, seed),
+        Command::Explain { fault } => explain(fault.as_deref()),
+        Command::Plant(args) => plant(args),
         Command::DemoKernel => serve(&mut posconform::demo::TernKernel),
         Command::ReferenceKernel => serve(&mut posconform::kernel::ReferenceKernel::default()),
     }
@@ -432,19 +485,111 @@ fn compare_options(args: &OutputArgs) -> anyhow::Result<CompareOptions> {
     })
 }
 
+fn explain(id: Option<&str>) -> anyhow::Result<u8> {
+    let mut out = std::io::stdout().lock();
+    let Some(id) = id else {
+        write!(out, "{}", report::explain::catalogue_text())?;
+        return Ok(0);
+    };
+    let Some(fault) = posconform::diagnose::fault(id) else {
+        let words: Vec<&str> = id.split(['-', '_', ' ']).filter(|w| w.len() > 2).collect();
+        // The ids sharing the most words with the one asked for.
+        let shared = |f: &str| words.iter().filter(|w| f.contains(*w)).count();
+        let best = posconform::diagnose::catalogue()
+            .iter()
+            .map(|f| shared(f.id))
+            .max()
+            .unwrap_or(0);
+        let near: Vec<&str> = posconform::diagnose::catalogue()
+            .iter()
+            .map(|f| f.id)
+            .filter(|f| best > 0 && shared(f) == best)
+            .take(4)
+            .collect();
+        let hint = if near.is_empty() {
+            "run `posconform explain` for the list".to_string()
+        } else {
+            format!(
+                "did you mean {}? (`posconform explain` lists all)",
+                near.join(", ")
+            )
+        };
+        bail!("no catalogued fault is called `{id}`: {hint}");
+    };
+    let cases = suite("core")?;
+    let example = posconform::diagnose::example(fault, &cases, 6);
+    let tagged: Vec<&str> = cases
+        .iter()
+        .filter(|c| c.faults.iter().any(|f| f == fault.id))
+        .map(|c| c.id.as_str())
+        .collect();
+    write!(
+        out,
+        "{}",
+        report::explain::explain_text(fault, example.as_ref(), &tagged)
+    )?;
+    Ok(0)
+}
+
+fn plant(args: PlantArgs) -> anyhow::Result<u8> {
+    let cases = suite(&args.suite)?;
+    for id in &args.fault {
+        if posconform::diagnose::fault(id).is_none() {
+            bail!(
+                "--fault {id}: no catalogued fault has this id (`posconform explain` lists them)"
+            );
+        }
+    }
+    if let Some(path) = &args.out {
+        posconform::files::check_output_file(path)
+            .with_context(|| format!("--out {}", path.display()))?;
+    }
+    let show = !args.quiet && std::io::IsTerminal::is_terminal(&std::io::stderr());
+    let mut progress = |done: usize, total: usize, id: &str| {
+        if show {
+            eprint!("\r\x1b[2Kplanting {done}/{total} {id}");
+            if done == total {
+                eprintln!();
+            }
+        }
+    };
+    let (text, results) = if args.format == PlantFormat::Markdown && args.fault.is_empty() {
+        posconform::run::plant::catalogue_page(&args.suite, args.fuzz, args.seed, &mut progress)?
+    } else {
+        if args.format == PlantFormat::Markdown {
+            bail!("--format markdown writes the whole catalogue page: leave out --fault");
+        }
+        let options = posconform::run::plant::options(args.fuzz, args.seed);
+        let results =
+            posconform::run::plant::plant_all(&cases, &options, &args.fault, &mut progress)?;
+        let text = match args.format {
+            PlantFormat::Json => serde_json::to_string_pretty(&results)? + "\n",
+            _ => report::explain::planted_text(&results),
+        };
+        (text, results)
+    };
+    match &args.out {
+        Some(path) => write_atomic(path, text.as_bytes())
+            .with_context(|| format!("writing {}", path.display()))?,
+        None => write!(std::io::stdout().lock(), "{text}")?,
+    }
+    let caught = results.iter().all(|r| r.detected_by.is_some());
+    let named = results.iter().filter(|r| r.top1).count();
+    Ok(if caught && 10 * named >= 9 * results.len() {
+        0
+    } else {
+        report::EXIT_NONCONFORMING
+    })
+}
+
 fn list(name: Option<&str>) -> anyhow::Result<u8> {
     let mut out = std::io::stdout().lock();
     if let Some(name) = name {
         for case in suite(name)? {
-            let faults: Vec<String> = case.faults.clone();
-            writeln!(
-                out,
-                "{:<52} {:<5} faults {:<12} {}",
-                case.id,
-                case.dtype,
-                faults.join(","),
-                case.purpose
-            )?;
+            writeln!(out, "{:<52} {:<5} {}", case.id, case.dtype, case.purpose)?;
+            if !case.faults.is_empty() {
+                writeln!(out, "{:<52} exposes: {}", "", case.faults.join(", "))?;
+            }
         }
         return Ok(0);
     }

@@ -12,6 +12,7 @@
 //!   cases that contradict them.
 
 mod differential;
+mod example;
 mod faults;
 
 use crate::case::Case;
@@ -21,6 +22,7 @@ pub use differential::{
     diagnose_case, diagnose_run, Candidate, CaseDiagnosis, CaseEvidence, Finding, RunCandidate,
     RunDiagnosis,
 };
+pub use example::{example, Example, ExampleElement};
 
 /// Whether a fault breaks the model or is an equivalent convention.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]

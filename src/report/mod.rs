@@ -7,6 +7,7 @@ use crate::case::Case;
 use crate::compare::{CaseReport, Verdict};
 use std::path::PathBuf;
 
+pub mod explain;
 pub mod json;
 pub mod junit;
 pub mod svg;
@@ -55,6 +56,29 @@ pub struct MinimalFailure {
     pub tried: usize,
     /// Where it was saved, if it was.
     pub saved: Option<PathBuf>,
+}
+
+/// What the self-test found for one fault.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct PlantedResult {
+    /// The fault's id.
+    pub fault: &'static str,
+    /// The first suite case that failed, or the minimal case of the first failing
+    /// random case; `None` when nothing failed.
+    pub detected_by: Option<String>,
+    /// Failing suite cases.
+    pub failing_suite_cases: usize,
+    /// Failing random cases.
+    pub failing_random_cases: usize,
+    /// The run diagnosis's best candidate.
+    pub named: Option<&'static str>,
+    /// Whether that is the planted fault.
+    pub top1: bool,
+    /// Whether the best candidate explains every diagnosed failure and no passing case
+    /// contradicts it.
+    pub conclusive: bool,
+    /// Seconds the run took.
+    pub seconds: f64,
 }
 
 /// What fuzzing did.

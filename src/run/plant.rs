@@ -14,6 +14,7 @@ use crate::reference::{baseline, expected, variant_outputs};
 use crate::variant::{Both, Deviation};
 
 use super::check::{check, CheckOptions};
+use crate::report::PlantedResult;
 
 /// A kernel that is correct in every dtype (the same-precision reference) except for
 /// one catalogued fault.
@@ -74,27 +75,34 @@ impl Kernel for PlantedKernel {
     }
 }
 
-/// What the self-test found for one fault.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
-pub struct PlantedResult {
-    /// The fault's id.
-    pub fault: &'static str,
-    /// The first suite case that failed, or the minimal case of the first failing
-    /// random case; `None` when nothing failed.
-    pub detected_by: Option<String>,
-    /// Failing suite cases.
-    pub failing_suite_cases: usize,
-    /// Failing random cases.
-    pub failing_random_cases: usize,
-    /// The run diagnosis's best candidate.
-    pub named: Option<&'static str>,
-    /// Whether that is the planted fault.
-    pub top1: bool,
-    /// Whether the best candidate explains every diagnosed failure and no passing case
-    /// contradicts it.
-    pub conclusive: bool,
-    /// Seconds the run took.
-    pub seconds: f64,
+/// Random cases per planted fault in the self-test (and the docs page).
+pub const DEFAULT_FUZZ: usize = 40;
+
+/// The check options of the self-test: `fuzz` random cases with `seed`, a small shrink
+/// budget, nothing saved.
+pub fn options(fuzz: usize, seed: u64) -> CheckOptions {
+    CheckOptions {
+        fuzz_cases: fuzz,
+        seed,
+        shrink_budget: 60,
+        save_dir: None,
+        ..CheckOptions::default()
+    }
+}
+
+/// The command line that reproduces a self-test run (for the docs page).
+pub fn command(suite: &str, fuzz: usize, seed: u64) -> String {
+    let mut c = "posconform plant --format markdown --out docs/faults.md".to_string();
+    if suite != "core" {
+        c += &format!(" --suite {suite}");
+    }
+    if fuzz != DEFAULT_FUZZ {
+        c += &format!(" --fuzz {fuzz}");
+    }
+    if seed != 0x5eed {
+        c += &format!(" --seed {seed}");
+    }
+    c
 }
 
 /// Plants every catalogued fault (or those whose id is in `only`) in turn and checks
@@ -161,4 +169,27 @@ pub fn plant(
         conclusive,
         seconds: started.elapsed().as_secs_f64(),
     })
+}
+
+/// The docs page of the catalogue (docs/faults.md): every fault with its smallest
+/// example among `suite`'s cases, and the self-test table of this many random cases
+/// per fault with this seed; with the results.
+pub fn catalogue_page(
+    suite: &str,
+    fuzz: usize,
+    seed: u64,
+    progress: &mut dyn FnMut(usize, usize, &str),
+) -> Result<(String, Vec<PlantedResult>)> {
+    let cases = crate::suite::suite(suite)?;
+    let results = plant_all(&cases, &options(fuzz, seed), &[], progress)?;
+    let examples: Vec<_> = catalogue()
+        .iter()
+        .map(|f| (f.id, crate::diagnose::example(f, &cases, 6)))
+        .collect();
+    let page = crate::report::explain::catalogue_markdown(
+        &results,
+        &command(suite, fuzz, seed),
+        &examples,
+    );
+    Ok((page, results))
 }

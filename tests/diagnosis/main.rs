@@ -2,6 +2,6 @@
 //! the reference where they must, each reproduces its own mistake, and reports name
 //! what the data supports and nothing more.
 
+mod docs_page;
 mod plant;
-mod scratch;
 mod variants;
