@@ -88,9 +88,16 @@ pub enum Masking {
         /// The sentinel value.
         value: f64,
     },
-    /// Some masked entries carry probability (or are NaN / +inf).
+    /// Some masked entries carry probability (finite values where zero or `-inf` is
+    /// expected; NaN or `+inf` ones are counted in `non_finite`).
     Leak {
         /// How many masked entries leak.
+        count: usize,
+    },
+    /// Masked entries that must be zero or `-inf` hold NaN or `+inf` (and none holds a
+    /// finite leak).
+    NonFinite {
+        /// How many.
         count: usize,
     },
 }
@@ -101,16 +108,19 @@ pub enum Masking {
 pub enum Pattern {
     /// Every over-budget element is a masked entry.
     MaskedEntriesOnly,
-    /// Every over-budget element is a memory key (`j < M`).
+    /// Every over-budget element is a memory key (`j < M`), and current keys at the
+    /// same distances are within budget (so the distance alone does not explain it).
     MemoryColumnsOnly,
-    /// Every over-budget element has a distance `Δ = M + i - j` in this range.
+    /// Every over-budget element has a distance `Δ = M + i - j` in this range, and
+    /// visible elements at other distances are within budget.
     DistanceBand {
         /// Smallest distance with errors.
         from: i64,
         /// Largest distance with errors.
         to: i64,
     },
-    /// The error grows along the position axis (last third vs first third).
+    /// The error grows along the position axis (last third vs first third), with a
+    /// measurable error in the first third too.
     GrowsWithPosition {
         /// Ratio of the mean row-maximum errors.
         ratio: f64,
@@ -124,10 +134,25 @@ pub enum Pattern {
         /// a causal mask aligned top-left instead of offset by the memory.
         top_left: bool,
     },
-    /// Rows before this one are within budget (stream and decode: the token index).
+    /// Rows before this one are within budget (the token index for stream and decode,
+    /// the query for scores and attention, the table row for encode).
     BeginsAtRow {
         /// First row with an element over budget.
         row: usize,
+    },
+    /// Every over-budget element is in a row whose keys are all masked (the row must be
+    /// all zeros).
+    FullyMaskedRows {
+        /// How many such rows are wrong.
+        rows: usize,
+        /// Whether they hold NaN.
+        nan: bool,
+    },
+    /// The kernel's scores differ from the reference by one constant per query row
+    /// (within budget): probabilities and outputs would agree.
+    RowConstantShift {
+        /// The largest shift seen.
+        largest: f64,
     },
 }
 
@@ -779,6 +804,7 @@ pub fn compare_output(
     let mut error_map = vec![0.0; want_s.len()];
     let mut failing: Vec<usize> = Vec::new();
     let mut leaks = 0;
+    let mut masked_non_finite = 0;
     let mut sentinel: Option<f64> = None;
     let mut saw_mask = false;
     let mut worst = Worst::default();
@@ -810,8 +836,10 @@ pub fn compare_output(
             if !ok {
                 if g.is_nan() || g == f64::INFINITY {
                     stats.non_finite += 1;
+                    masked_non_finite += 1;
+                } else {
+                    leaks += 1;
                 }
-                leaks += 1;
                 error_map[n] = f64::INFINITY;
                 worst.offer(n, f64::INFINITY, g, w, 0.0, true);
                 failing.push(n);
@@ -884,6 +912,10 @@ pub fn compare_output(
     if key_indexed {
         stats.masking = saw_mask.then_some(if leaks > 0 {
             Masking::Leak { count: leaks }
+        } else if masked_non_finite > 0 {
+            Masking::NonFinite {
+                count: masked_non_finite,
+            }
         } else if let Some(value) = sentinel {
             Masking::Sentinel { value }
         } else {
@@ -894,7 +926,16 @@ pub fn compare_output(
         .unwrap_or_else(|_| ArrayD::zeros(ndarray::IxDyn(&shape)));
     if !stats.passed {
         stats.patterns = patterns(
-            case, output, &shape, got_s, &failing, &error_map, leaks, visibility,
+            case,
+            output,
+            &shape,
+            Values {
+                want: want_s,
+                got: got_s,
+            },
+            &failing,
+            &error_map,
+            visibility,
         );
     }
     if key_indexed {
@@ -912,35 +953,86 @@ fn masked_value(g: f64, output: Output) -> bool {
     }
 }
 
-#[allow(clippy::too_many_arguments)]
+/// An output's expected and returned values, flat in row-major order.
+#[derive(Clone, Copy)]
+struct Values<'a> {
+    want: &'a [f64],
+    got: &'a [f64],
+}
+
+/// Where the errors lie, stated only when true and informative: a distance band only
+/// when visible elements at other distances pass, a memory claim only when current
+/// keys at the same distances pass, growth only against a first third that has a
+/// measurable error itself.
 fn patterns(
     case: &Case,
     output: Output,
     shape: &[usize],
-    got: &[f64],
+    values: Values<'_>,
     failing: &[usize],
     error_map: &ArrayD<f64>,
-    leaks: usize,
     visibility: &Visibility,
 ) -> Vec<Pattern> {
     let mut out = Vec::new();
+    let got = values.got;
     let key_indexed =
         case.operation.kind().is_window() && output.is_key_indexed() && shape.len() == 3;
+    let over = |n: usize| error_map.as_slice().is_none_or(|e| e[n] > 1.0);
     if key_indexed {
         let (l, k) = (shape[1], shape[2]);
         let query = |n: usize| (n / k) % l;
         let key = |n: usize| n % k;
-        if leaks == failing.len() {
+        let row_of = |n: usize| n / k;
+        let m = case.memory_len;
+        // Rows whose every key is hidden: they must be all zeros.
+        let empty_row = |r: usize| (0..k).all(|j| visibility.hidden(r * k + j));
+        let failing_empty: std::collections::BTreeSet<usize> = failing
+            .iter()
+            .map(|&n| row_of(n))
+            .filter(|&r| empty_row(r))
+            .collect();
+        let in_empty_rows = failing.iter().all(|&n| empty_row(row_of(n)));
+        if in_empty_rows && !failing.is_empty() {
+            out.push(Pattern::FullyMaskedRows {
+                rows: failing_empty.len(),
+                nan: failing.iter().any(|&n| got[n].is_nan()),
+            });
+        } else if failing.iter().all(|&n| visibility.hidden(n))
+            && failing.iter().any(|&n| got[n].is_finite())
+        {
             out.push(Pattern::MaskedEntriesOnly);
         }
-        let m = case.memory_len;
-        if m > 0 && failing.iter().all(|&n| key(n) < m) {
-            out.push(Pattern::MemoryColumnsOnly);
-        }
-        let masked_visible: Vec<usize> = failing
+        let visible_failing: Vec<usize> = failing
             .iter()
             .copied()
-            .filter(|&n| !visibility.hidden(n) && masked_value(got[n], output))
+            .filter(|&n| !visibility.hidden(n))
+            .collect();
+        let distance = |n: usize| (m + query(n)) as i64 - key(n) as i64;
+        // Distances of visible elements within budget, by whether the key is memory.
+        let mut passing_current = std::collections::BTreeSet::new();
+        let mut passing_any = std::collections::BTreeSet::new();
+        for n in 0..got.len() {
+            if !visibility.hidden(n) && !over(n) {
+                passing_any.insert(distance(n));
+                if key(n) >= m {
+                    passing_current.insert(distance(n));
+                }
+            }
+        }
+        if m > 0
+            && !visible_failing.is_empty()
+            && visible_failing.len() == failing.len()
+            && visible_failing.iter().all(|&n| key(n) < m)
+            && visible_failing
+                .iter()
+                .any(|&n| passing_current.contains(&distance(n)))
+        {
+            out.push(Pattern::MemoryColumnsOnly);
+        }
+        let masked_visible: Vec<usize> = visible_failing
+            .iter()
+            .copied()
+            .filter(|&n| masked_value(got[n], output))
             .collect();
         if !masked_visible.is_empty() {
             // Top-left alignment hides exactly i < j <= M + i in every row of every head.
@@ -955,12 +1047,27 @@ fn patterns(
                 top_left,
             });
         }
-        let distances = failing
-            .iter()
-            .map(|&n| (m + query(n)) as i64 - key(n) as i64);
-        if let (Some(from), Some(to)) = (distances.clone().min(), distances.max()) {
-            if to - from < 3 && case.key_len() > 4 {
+        let distances = visible_failing.iter().map(|&n| distance(n));
+        let memory_only = out.contains(&Pattern::MemoryColumnsOnly);
+        if let (Some(from), Some(to), false) =
+            (distances.clone().min(), distances.max(), memory_only)
+        {
+            // Informative only if elements at other visible distances pass, and true only
+            // if most visible elements inside the band are over budget (a band whose
+            // elements mostly pass is not where the error lies).
+            let in_band = (0..got.len())
+                .filter(|&n| !visibility.hidden(n) && (from..=to).contains(&distance(n)))
+                .count();
+            if passing_any.iter().any(|&d| d < from || d > to)
+                && 2 * visible_failing.len() >= in_band
+            {
                 out.push(Pattern::DistanceBand { from, to });
+            }
+        }
+        if output == Output::Scores {
+            if let Some(largest) = row_constant_shift(values, shape, failing, visibility, error_map)
+            {
+                out.push(Pattern::RowConstantShift { largest });
             }
         }
     }
@@ -973,36 +1080,84 @@ fn patterns(
     if let Some(axis) = axis {
         let rows = shape[axis];
         let inner: usize = shape[axis + 1..].iter().product();
-        if matches!(
+        let first_row = failing.iter().map(|&n| (n / inner.max(1)) % rows).min();
+        let row_max: Vec<f64> = (0..rows)
+            .map(|r| {
+                error_map
+                    .index_axis(ndarray::Axis(axis), r)
+                    .iter()
+                    .copied()
+                    .filter(|x| x.is_finite())
+                    .fold(0.0, f64::max)
+            })
+            .collect();
+        let third = rows / 3;
+        let mean = |s: &[f64]| s.iter().sum::<f64>() / s.len().max(1) as f64;
+        let (early, late) = if third > 0 {
+            (mean(&row_max[..third]), mean(&row_max[rows - third..]))
+        } else {
+            (0.0, 0.0)
+        };
+        let streaming = matches!(
             case.operation,
             Operation::Stream { .. } | Operation::Decode { .. }
-        ) {
-            if let Some(row) = failing.iter().map(|&n| (n / inner.max(1)) % rows).min() {
-                if row > 0 {
-                    out.push(Pattern::BeginsAtRow { row });
-                }
+        );
+        if let Some(row) = first_row.filter(|&r| r > 0) {
+            if streaming || rows >= 6 {
+                out.push(Pattern::BeginsAtRow { row });
             }
-        }
-        if rows >= 6 {
-            let row_max: Vec<f64> = (0..rows)
-                .map(|r| {
-                    error_map
-                        .index_axis(ndarray::Axis(axis), r)
-                        .iter()
-                        .copied()
-                        .filter(|x| x.is_finite())
-                        .fold(0.0, f64::max)
-                })
-                .collect();
-            let third = rows / 3;
-            let mean = |s: &[f64]| s.iter().sum::<f64>() / s.len() as f64;
-            let (early, late) = (mean(&row_max[..third]), mean(&row_max[rows - third..]));
-            if late > 1.0 && late > 4.0 * early.max(1e-12) {
-                out.push(Pattern::GrowsWithPosition {
-                    ratio: late / early.max(1e-12),
-                });
-            }
+        } else if rows >= 6 && early >= 0.05 && late > 1.0 && late > 4.0 * early {
+            // Growth is stated against a first third with a measurable error of its
+            // own (at least 5% of its tolerance): a ratio to nothing says nothing.
+            out.push(Pattern::GrowsWithPosition {
+                ratio: late / early,
+            });
         }
     }
     out
+}
+
+/// The largest per-row shift when every query row's visible score errors are one
+/// constant (within twice the row's largest tolerance) and only visible scores fail.
+fn row_constant_shift(
+    values: Values<'_>,
+    shape: &[usize],
+    failing: &[usize],
+    visibility: &Visibility,
+    error_map: &ArrayD<f64>,
+) -> Option<f64> {
+    let k = shape[2];
+    if failing.iter().any(|&n| visibility.hidden(n)) {
+        return None;
+    }
+    let ratios = error_map.as_slice()?;
+    let mut largest = 0.0f64;
+    for (r, (want, got)) in values.want.chunks(k).zip(values.got.chunks(k)).enumerate() {
+        let mut lo = f64::INFINITY;
+        let mut hi = f64::NEG_INFINITY;
+        let mut tolerance = 0.0f64;
+        for j in 0..k {
+            let n = r * k + j;
+            if visibility.hidden(n) || !want[j].is_finite() {
+                continue;
+            }
+            if !got[j].is_finite() {
+                return None;
+            }
+            let d = got[j] - want[j];
+            lo = lo.min(d);
+            hi = hi.max(d);
+            let ratio = ratios[n];
+            if ratio > 0.0 && ratio.is_finite() {
+                tolerance = tolerance.max(d.abs() / ratio);
+            }
+        }
+        if lo.is_finite() {
+            if hi - lo > 2.0 * tolerance {
+                return None;
+            }
+            largest = largest.max(lo.abs().max(hi.abs()));
+        }
+    }
+    (largest > 0.0).then_some(largest)
 }

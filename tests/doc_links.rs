@@ -4,7 +4,8 @@
 //! Scanned: every tracked text file (sources, docs, scripts, configuration; not the
 //! generated vector data). Checked in each:
 //! - `*.md` references (bare or as Markdown link targets): the file must exist, relative
-//!   to the referring file or to the repository root; a `#anchor` on a Markdown target
+//!   to the referring file or to the repository root (or, in sources, which generate
+//!   pages under `docs/`, relative to `docs/`); a `#anchor` on a Markdown target
 //!   must name one of its headings;
 //! - paths under the top-level directories (`src/`, `tests/`, `docs/`, `examples/`,
 //!   `vectors/`, `benches/`, `.ci/`) must exist as a file or directory;
@@ -181,13 +182,16 @@ fn anchors(markdown: &str) -> BTreeSet<String> {
         .collect()
 }
 
-/// `relative` resolved against the referring file's directory, then the root; `None`
-/// when neither exists.
+/// `relative` resolved against the referring file's directory, then the root, then (for
+/// sources, which write the generated pages under `docs/`) `docs/`; `None` when none
+/// exists.
 fn resolve(file: &str, relative: &str) -> Option<PathBuf> {
     let dir = Path::new(file).parent().unwrap_or(Path::new(""));
-    [root().join(dir).join(relative), root().join(relative)]
-        .into_iter()
-        .find(|p| p.exists())
+    let mut candidates = vec![root().join(dir).join(relative), root().join(relative)];
+    if file.starts_with("src/") {
+        candidates.push(root().join("docs").join(relative));
+    }
+    candidates.into_iter().find(|p| p.exists())
 }
 
 /// Every problem of one file, as readable lines.

@@ -239,6 +239,7 @@ enum MaskingDocument {
     NegativeInfinity,
     Sentinel { value: Real },
     Leak { count: usize },
+    NonFinite { count: usize },
 }
 
 impl From<Masking> for MaskingDocument {
@@ -247,6 +248,7 @@ impl From<Masking> for MaskingDocument {
             Masking::NegativeInfinity => MaskingDocument::NegativeInfinity,
             Masking::Sentinel { value } => MaskingDocument::Sentinel { value: Real(value) },
             Masking::Leak { count } => MaskingDocument::Leak { count },
+            Masking::NonFinite { count } => MaskingDocument::NonFinite { count },
         }
     }
 }
@@ -260,6 +262,8 @@ enum PatternDocument {
     GrowsWithPosition { ratio: Real },
     VisibleKeysMasked { count: usize, top_left: bool },
     BeginsAtRow { row: usize },
+    FullyMaskedRows { rows: usize, nan: bool },
+    RowConstantShift { largest: Real },
 }
 
 impl From<&Pattern> for PatternDocument {
@@ -275,6 +279,12 @@ impl From<&Pattern> for PatternDocument {
                 PatternDocument::VisibleKeysMasked { count, top_left }
             }
             Pattern::BeginsAtRow { row } => PatternDocument::BeginsAtRow { row },
+            Pattern::FullyMaskedRows { rows, nan } => {
+                PatternDocument::FullyMaskedRows { rows, nan }
+            }
+            Pattern::RowConstantShift { largest } => PatternDocument::RowConstantShift {
+                largest: Real(largest),
+            },
         }
     }
 }

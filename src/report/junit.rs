@@ -284,6 +284,8 @@ fn describe_masking(masking: Masking) -> String {
         Masking::Sentinel { value } => format!("finite sentinel {}", number(value)),
         Masking::Leak { count: 1 } => "1 masked entry carries probability".to_string(),
         Masking::Leak { count } => format!("{count} masked entries carry probability"),
+        Masking::NonFinite { count: 1 } => "1 masked entry holds NaN or +inf".to_string(),
+        Masking::NonFinite { count } => format!("{count} masked entries hold NaN or +inf"),
     }
 }
 

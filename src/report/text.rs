@@ -89,14 +89,20 @@ fn worst_output(case: &CaseReport) -> Option<&OutputReport> {
 /// Describes a pattern in words.
 pub fn describe_pattern(case: &CaseReport, p: &Pattern) -> String {
     match p {
-        Pattern::MaskedEntriesOnly => "only masked entries are wrong: the mask leaks".into(),
-        Pattern::MemoryColumnsOnly => {
-            format!("only memory keys (key < M = {}) are wrong", case.memory_len)
+        Pattern::MaskedEntriesOnly => {
+            "only masked entries are wrong: masked keys carry probability (the mask leaks)".into()
         }
+        Pattern::MemoryColumnsOnly => format!(
+            "only memory keys (key < M = {}) are wrong; current keys at the same distances are \
+             right",
+            case.memory_len
+        ),
         Pattern::DistanceBand { from, to } if from == to => {
-            format!("only distance Δ = {from} is wrong")
+            format!("only distance Δ = {from} is wrong; other visible distances are right")
         }
-        Pattern::DistanceBand { from, to } => format!("only distances Δ = {from}..{to} are wrong"),
+        Pattern::DistanceBand { from, to } => format!(
+            "only distances Δ = {from}..{to} are wrong; other visible distances are right"
+        ),
         Pattern::GrowsWithPosition { ratio } => {
             format!("the error grows with position (last third {ratio:.1}x the first)")
         }
@@ -105,18 +111,40 @@ pub fn describe_pattern(case: &CaseReport, p: &Pattern) -> String {
              top-left (j <= i) instead of offset by the memory (j <= M + i)",
             if *count == 1 { "key is" } else { "keys are" }
         ),
-        Pattern::VisibleKeysMasked { count, top_left: false } => {
-            format!("{count} {} the query must see masked", if *count == 1 { "key is" } else { "keys are" })
-        }
+        Pattern::VisibleKeysMasked { count, top_left: false } => format!(
+            "{count} {} that the query must see {} masked",
+            if *count == 1 { "key" } else { "keys" },
+            if *count == 1 { "is" } else { "are" }
+        ),
         Pattern::BeginsAtRow { row } => {
+            let what = match case.operation {
+                Some(OperationKind::Stream | OperationKind::Decode) => "token",
+                Some(OperationKind::Encode) => "row",
+                _ => "query",
+            };
             let segment = if case.operation == Some(OperationKind::Stream) && case.query_len > 0
             {
                 format!(" (segment {})", row / case.query_len)
             } else {
                 String::new()
             };
-            format!("tokens before {row} are right; errors begin at token {row}{segment}")
+            format!("{what}s before {row} are right; errors begin at {what} {row}{segment}")
         }
+        Pattern::FullyMaskedRows { rows, nan } => format!(
+            "only {rows} {} whose keys are all masked {} wrong: {}",
+            if *rows == 1 { "row" } else { "rows" },
+            if *rows == 1 { "is" } else { "are" },
+            if *nan {
+                "NaN where zeros are expected"
+            } else {
+                "values where zeros are expected"
+            }
+        ),
+        Pattern::RowConstantShift { largest } => format!(
+            "the scores differ from the reference by one constant per query row (up to {largest:.3e}): \
+             probabilities and outputs would agree, so this is an equivalent form of the bias (for \
+             example ALiBi written as m·pos_key) and only the reported scores are off"
+        ),
     }
 }
 
@@ -127,6 +155,14 @@ fn describe_masking(m: &Masking) -> String {
             "masked entries hold a finite sentinel ({value:e}) that carries zero probability"
         ),
         Masking::Leak { count } => format!("{count} masked entries carry probability (leak)"),
+        Masking::NonFinite { count } => format!(
+            "{count} masked {} NaN or +inf where zero (or -inf) is expected",
+            if *count == 1 {
+                "entry holds"
+            } else {
+                "entries hold"
+            }
+        ),
     }
 }
 
