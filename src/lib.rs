@@ -63,7 +63,7 @@ pub use error::{Error, KernelErrorKind, Result};
 pub use kernel::Kernel;
 pub use math::Dtype;
 pub use report::Report;
-pub use run::{check, verify};
+pub use run::{check, select, verify};
 pub use scheme::sinusoidal::{Sinusoid, SinusoidLayout};
 pub use scheme::SchemeSpec;
 pub use scheme::{alibi, bucketed, clipped, learned, rotary, sinusoidal, xl_relative, Scheme};

@@ -690,6 +690,7 @@ fn synthetic(
         verdict: Verdict::Fail,
         outputs: Vec::new(),
         warnings: Vec::new(),
+        time: None,
     };
     let output = OutputReport {
         name: Output::Scores,

@@ -6,9 +6,11 @@ use std::process::ExitCode;
 
 use anyhow::{bail, Context as _};
 use clap::{Parser, Subcommand, ValueEnum};
+use posconform::case::OperationKind;
 use posconform::compare::CompareOptions;
 use posconform::math::Dtype;
 use posconform::report::{self, write_atomic, Report, EXIT_COULD_NOT_RUN};
+use posconform::select::{Filter, IdPattern, Part, Selection};
 use posconform::suite::{suite, SUITES};
 use posconform::Scheme;
 
@@ -110,6 +112,8 @@ struct CheckArgs {
     #[arg(long)]
     quiet: bool,
     #[command(flatten)]
+    select: SelectArgs,
+    #[command(flatten)]
     output: OutputArgs,
 }
 
@@ -122,7 +126,47 @@ struct VerifyArgs {
     #[arg(long)]
     results: PathBuf,
     #[command(flatten)]
+    select: SelectArgs,
+    #[command(flatten)]
     output: OutputArgs,
+}
+
+/// Which cases to run, shared by `check` and `verify`: filters, then one part of N.
+#[derive(Debug, clap::Args)]
+#[command(next_help_heading = "Selecting cases")]
+struct SelectArgs {
+    /// Only cases of these schemes (comma-separated or repeated).
+    #[arg(long, value_name = "SCHEME", value_delimiter = ',')]
+    scheme: Vec<Scheme>,
+    /// Only cases of these operations: encode, scores, attention, stream, decode.
+    #[arg(long, value_name = "OPERATION", value_delimiter = ',')]
+    operation: Vec<OperationKind>,
+    /// Only cases written for these dtypes (the case's own dtype).
+    #[arg(long, value_name = "DTYPE", value_delimiter = ',')]
+    dtype: Vec<Dtype>,
+    /// Only cases whose id matches this pattern (`*` any characters, `?` one; quote it;
+    /// repeated: any may match). Random cases are drawn from the schemes, operations and
+    /// dtypes the other filters keep.
+    #[arg(long, value_name = "PATTERN")]
+    id: Vec<IdPattern>,
+    /// Run part I of N (1 <= I <= N): N runs with parts 1/N to N/N together cover every
+    /// selected case exactly once, and split the random cases of one seed by index.
+    #[arg(long, value_name = "I/N")]
+    part: Option<Part>,
+}
+
+impl SelectArgs {
+    fn selection(&self) -> Selection {
+        Selection {
+            filter: Filter {
+                schemes: self.scheme.clone(),
+                operations: self.operation.clone(),
+                dtypes: self.dtype.clone(),
+                ids: self.id.clone(),
+            },
+            part: self.part.unwrap_or_default(),
+        }
+    }
 }
 
 /// Report options shared by `verify` and `check`.
@@ -188,7 +232,12 @@ fn dispatch(command: Command) -> anyhow::Result<u8> {
         Command::Verify(args) => {
             let options = compare_options(&args.output)?;
             check_report_paths(&args.output)?;
-            let report = posconform::verify::verify(&args.vectors, &args.results, &options)?;
+            let report = posconform::verify::verify_selected(
+                &args.vectors,
+                &args.results,
+                &options,
+                &args.select.selection(),
+            )?;
             finish(&report, &args.output, "")
         }
         Command::Check(args) => check(args),
@@ -321,6 +370,7 @@ fn check(args: CheckArgs) -> anyhow::Result<u8> {
         fuzz_time,
         seed: args.seed,
         save_dir: Some(args.save_failures.clone()),
+        select: args.select.selection(),
         ..Default::default()
     };
     forward_signals()?;
