@@ -39,6 +39,7 @@
 #![deny(missing_docs)]
 
 pub mod attention;
+pub mod bench;
 pub mod budget;
 pub mod case;
 pub mod compare;
