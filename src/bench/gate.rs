@@ -1,10 +1,11 @@
 //! The regression gate: a bench run against a baseline (the JSON document of an
-//! earlier run), workload by workload, on the machine-portable ratios.
+//! earlier run), workload by workload, on the machine-portable floor ratios
+//! ([`super::Timing::floor_ratio`]).
 //!
-//! For a workload with ratio `r ± u` now and `b ± v` in the baseline (`u`, `v` relative
-//! standard errors), the change is `r/b - 1` and its range runs from
-//! `r(1 - 2u) / (b(1 + 2v)) - 1` to `r(1 + 2u) / (b(1 - 2v)) - 1` (two standard errors
-//! on each side; our choice, about 95% for a normal error). With threshold `t`:
+//! For a workload with floor ratio `r ± u` now and `b ± v` in the baseline (`u`, `v`
+//! the relative floor noise, [`super::stats`]), the change is `r/b - 1` and its range
+//! runs from `r(1 - u) / (b(1 + v)) - 1` to `r(1 + u) / (b(1 - v)) - 1`. With threshold
+//! `t`:
 //!
 //! - **regressed** when the whole range lies above `t`: the noise supports the
 //!   regression;
@@ -28,8 +29,6 @@ use super::{
 use crate::error::{Error, Result};
 use crate::run::select::IdPattern;
 
-/// Standard errors on each side of a ratio that its range spans.
-pub const BAND: f64 = 2.0;
 /// The threshold when none is given: 25% slower (our choice, for shared CI machines).
 pub const DEFAULT_THRESHOLD: f64 = 0.25;
 /// The largest threshold accepted (1000%).
@@ -108,10 +107,10 @@ pub struct BaselineEntry {
     pub name: String,
     /// Where its figure came from.
     pub measured: Measured,
-    /// Its ratio.
-    pub ratio: f64,
-    /// The ratio's relative standard error.
-    pub uncertainty: f64,
+    /// Its floor ratio.
+    pub floor_ratio: f64,
+    /// The floor ratio's relative noise.
+    pub floor_noise: f64,
 }
 
 /// A baseline: the timed workloads of an earlier run's JSON document.
@@ -257,8 +256,8 @@ impl Baseline {
                 },
                 name,
                 measured,
-                ratio: number("ratio", true)?,
-                uncertainty: number("uncertainty", false)?,
+                floor_ratio: number("floor_ratio", true)?,
+                floor_noise: number("floor_noise", false)?,
             });
         }
         Ok(Baseline {
@@ -329,21 +328,19 @@ pub struct Range {
     pub high: f64,
 }
 
-/// The verdict on a ratio `ratio ± uncertainty` now against `base ± base_uncertainty`
-/// with `threshold` (see the module docs), with the change and its range.
+/// The verdict on a figure `ratio ± noise` now against `base ± base_noise` (relative
+/// noise) with `threshold` (see the module docs), with the change and its range.
 pub fn judge(
     base: f64,
-    base_uncertainty: f64,
+    base_noise: f64,
     ratio: f64,
-    uncertainty: f64,
+    noise: f64,
     threshold: f64,
 ) -> (Verdict, Range) {
-    let shrink = |u: f64| (1.0 - BAND * u).max(0.0);
-    let grow = |u: f64| 1.0 + BAND * u;
     let change = ratio / base - 1.0;
-    let low = ratio * shrink(uncertainty) / (base * grow(base_uncertainty)) - 1.0;
-    let high = if shrink(base_uncertainty) > 0.0 {
-        ratio * grow(uncertainty) / (base * shrink(base_uncertainty)) - 1.0
+    let low = ratio * (1.0 - noise).max(0.0) / (base * (1.0 + base_noise)) - 1.0;
+    let high = if base_noise < 1.0 {
+        ratio * (1.0 + noise) / (base * (1.0 - base_noise)) - 1.0
     } else {
         f64::INFINITY
     };
@@ -367,9 +364,9 @@ pub struct Change {
     pub target: TargetKind,
     /// The workload.
     pub name: String,
-    /// Ratio and uncertainty in the baseline.
+    /// Floor ratio and its noise in the baseline.
     pub baseline: Option<(f64, f64)>,
-    /// Ratio and uncertainty now.
+    /// Floor ratio and its noise now.
     pub now: Option<(f64, f64)>,
     /// The change and its range, when both runs timed the workload the same way.
     pub range: Option<Range>,
@@ -425,7 +422,7 @@ pub fn compare(report: &BenchReport, baseline: &Baseline, thresholds: &Threshold
         let row = |verdict, now, range, reason| Change {
             target: report.target,
             name: name.clone(),
-            baseline: base.map(|b| (b.ratio, b.uncertainty)),
+            baseline: base.map(|b| (b.floor_ratio, b.floor_noise)),
             now,
             range,
             threshold,
@@ -446,7 +443,7 @@ pub fn compare(report: &BenchReport, baseline: &Baseline, thresholds: &Threshold
                 continue;
             }
         };
-        let now = (timing.ratio(), timing.uncertainty());
+        let now = (timing.floor_ratio(), timing.floor_noise());
         let Some(base) = base else {
             changes.push(row(Verdict::New, Some(now), None, None));
             continue;
@@ -464,7 +461,7 @@ pub fn compare(report: &BenchReport, baseline: &Baseline, thresholds: &Threshold
             ));
             continue;
         }
-        let (verdict, range) = judge(base.ratio, base.uncertainty, now.0, now.1, threshold);
+        let (verdict, range) = judge(base.floor_ratio, base.floor_noise, now.0, now.1, threshold);
         changes.push(row(verdict, Some(now), Some(range), None));
     }
     for (entry, _) in baseline
@@ -476,7 +473,7 @@ pub fn compare(report: &BenchReport, baseline: &Baseline, thresholds: &Threshold
         changes.push(Change {
             target: entry.target,
             name: entry.name.clone(),
-            baseline: Some((entry.ratio, entry.uncertainty)),
+            baseline: Some((entry.floor_ratio, entry.floor_noise)),
             now: None,
             range: None,
             threshold: thresholds.for_name(&entry.name),
@@ -515,26 +512,26 @@ mod tests {
         assert_eq!(thresholds.for_name("rotary/encode/x/f64"), 0.25);
     }
 
-    /// Hand-computed ranges: with `u = v = 0.05` the range of a ratio `r` over `b` is
-    /// `r·0.9/(b·1.1) - 1` to `r·1.1/(b·0.9) - 1`.
+    /// Hand-computed ranges: with noise `u = v = 0.1` the range of a ratio `r` over
+    /// `b` is `r·0.9/(b·1.1) - 1` to `r·1.1/(b·0.9) - 1`.
     #[test]
     fn verdicts_follow_the_range_against_the_threshold() {
         // Twice as slow: range 2·0.9/1.1 - 1 = 0.63636.. to 2·1.1/0.9 - 1 = 1.44444..
-        let (v, r) = judge(1.0, 0.05, 2.0, 0.05, 0.25);
+        let (v, r) = judge(1.0, 0.1, 2.0, 0.1, 0.25);
         assert_eq!(v, Verdict::Regressed);
         assert!((r.change - 1.0).abs() < 1e-12);
         assert!((r.low - (1.8 / 1.1 - 1.0)).abs() < 1e-12);
         assert!((r.high - (2.2 / 0.9 - 1.0)).abs() < 1e-12);
         // The same figure: range 0.9/1.1 - 1 = -0.18 to 1.1/0.9 - 1 = 0.2222 <= 0.25.
-        assert_eq!(judge(1.0, 0.05, 1.0, 0.05, 0.25).0, Verdict::Unchanged);
+        assert_eq!(judge(1.0, 0.1, 1.0, 0.1, 0.25).0, Verdict::Unchanged);
         // 30% slower but the range (1.3·0.9/1.1 - 1 = 0.0636) starts below 25%.
-        assert_eq!(judge(1.0, 0.05, 1.3, 0.05, 0.25).0, Verdict::TooNoisy);
+        assert_eq!(judge(1.0, 0.1, 1.3, 0.1, 0.25).0, Verdict::TooNoisy);
         // Very noisy: ±40% each, the range reaches far above the threshold.
-        assert_eq!(judge(1.0, 0.2, 1.0, 0.2, 0.25).0, Verdict::TooNoisy);
+        assert_eq!(judge(1.0, 0.4, 1.0, 0.4, 0.25).0, Verdict::TooNoisy);
         // Half the time: high = 0.5·1.1/0.9 - 1 = -0.389 < 1/1.25 - 1 = -0.2.
-        assert_eq!(judge(1.0, 0.05, 0.5, 0.05, 0.25).0, Verdict::Improved);
-        // Noise of 50% or more in the baseline: no upper end.
-        let (v, r) = judge(1.0, 0.5, 1.0, 0.0, 0.25);
+        assert_eq!(judge(1.0, 0.1, 0.5, 0.1, 0.25).0, Verdict::Improved);
+        // Noise of 100% or more in the baseline: no upper end.
+        let (v, r) = judge(1.0, 1.0, 1.0, 0.0, 0.25);
         assert_eq!((v, r.high), (Verdict::TooNoisy, f64::INFINITY));
         // Exact figures: nothing but the threshold decides.
         assert_eq!(judge(1.0, 0.0, 1.24, 0.0, 0.25).0, Verdict::Unchanged);

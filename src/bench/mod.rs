@@ -11,9 +11,11 @@
 //! For each workload: warm-up runs, then `repeat` rounds of (calibration, the workload,
 //! and, for a kernel that answers `dry_run`, the same exchange without the computation).
 //! The figure is the kernel's own time when it reports one (`elapsed_ms`) for every
-//! run, the round trip otherwise; its ratio is its median over the median calibration
-//! unit of the same rounds ([`calibrate`]). The noise of the ratio is the combined
-//! standard error of the two medians ([`stats`]).
+//! run, the round trip otherwise. Its ratio is its median over the median calibration
+//! unit of the same rounds ([`calibrate`]), with the combined standard error of the two
+//! medians; its floor ratio is the fastest run over the fastest unit, with the floors'
+//! noise ([`stats`]): the floor is what the gate compares, since a busy machine moves
+//! medians and leaves floors alone.
 
 pub mod calibrate;
 pub mod gate;
@@ -323,7 +325,7 @@ fn keeps(
 
 fn none_selected(filter: &Filter, total: usize) -> Error {
     Error::format(
-        filter.describe(),
+        filter.describe_with("--workload"),
         format!("these filters select none of the {total} workloads; nothing to time"),
     )
 }
@@ -438,8 +440,11 @@ impl Default for BenchOptions {
 pub enum Target<'k> {
     /// The library's reference ([`reference::expected`]), in process.
     Reference,
-    /// A kernel (over the protocol, or in process).
+    /// A kernel over the protocol: dry runs measure the exchange's own cost.
     Kernel(&'k mut dyn Kernel),
+    /// A kernel in the same process (the Python package's path): no protocol, so no
+    /// dry run.
+    InProcess(&'k mut dyn Kernel),
 }
 
 /// Where a workload's figure comes from.
@@ -508,6 +513,18 @@ impl Timing {
         self.time.median_error().hypot(self.unit.median_error())
     }
 
+    /// The floor in calibration units: the fastest run over the fastest unit of the
+    /// same rounds. The gate compares this figure ([`stats`]).
+    pub fn floor_ratio(&self) -> f64 {
+        self.time.min / self.unit.min
+    }
+
+    /// The relative noise of [`floor_ratio`](Self::floor_ratio): the two floors' noise
+    /// ([`Summary::floor_noise`]) combined in quadrature.
+    pub fn floor_noise(&self) -> f64 {
+        self.time.floor_noise().hypot(self.unit.floor_noise())
+    }
+
     /// Median round trip minus median dry-run round trip: the round trip with the
     /// protocol's cost taken out (kernels that answer `dry_run` only).
     pub fn net_ms(&self) -> Option<f64> {
@@ -566,7 +583,8 @@ pub struct BenchReport {
     pub options: BenchOptions,
     /// Every calibration sample of the run, in order.
     pub calibration: Vec<Sample>,
-    /// Whether the kernel answered `dry_run` (`None`: never asked, e.g. the reference).
+    /// Whether the kernel answered `dry_run` (`None`: never asked: the reference, or a
+    /// kernel in process).
     pub dry_run: Option<bool>,
     /// One result per workload, in order.
     pub workloads: Vec<WorkloadResult>,
@@ -620,6 +638,7 @@ pub fn measure(
         calibration: Calibration::new(),
         samples: Vec::new(),
         dry_run: None,
+        asked_dry_run: true,
         notes: Vec::new(),
         options,
     };
@@ -629,8 +648,12 @@ pub fn measure(
     }
     let kind = match target {
         Target::Reference => TargetKind::Reference,
-        Target::Kernel(_) => TargetKind::Kernel,
+        Target::Kernel(_) | Target::InProcess(_) => TargetKind::Kernel,
     };
+    if let Target::InProcess(_) = target {
+        bench.dry_run = Some(false);
+        bench.asked_dry_run = false;
+    }
     let total = workloads.len();
     let mut stopped: Option<String> = None;
     let mut results = Vec::with_capacity(total);
@@ -648,7 +671,7 @@ pub fn measure(
         } else {
             match &mut target {
                 Target::Reference => bench.time_reference(&workload),
-                Target::Kernel(kernel) => {
+                Target::Kernel(kernel) | Target::InProcess(kernel) => {
                     let (outcome, failure) = bench.time_kernel(&mut **kernel, &workload);
                     if let Some(kind) = failure {
                         if let Some(why) = recover(&mut **kernel, kind, &workload.name) {
@@ -668,7 +691,7 @@ pub fn measure(
         subject,
         options,
         calibration: bench.samples,
-        dry_run: bench.dry_run,
+        dry_run: bench.dry_run.filter(|_| bench.asked_dry_run),
         workloads: results,
         notes: bench.notes,
     }
@@ -696,7 +719,10 @@ fn recover(kernel: &mut dyn Kernel, kind: KernelErrorKind, name: &str) -> Option
 struct Bench {
     calibration: Calibration,
     samples: Vec<Sample>,
+    /// `Some(false)` once dry runs are known not to work (or not to apply).
     dry_run: Option<bool>,
+    /// Whether dry runs apply at all (not for the reference or in process).
+    asked_dry_run: bool,
     notes: Vec<String>,
     options: BenchOptions,
 }

@@ -6,7 +6,7 @@ use std::fmt::Write as _;
 use serde::Serialize;
 
 use super::calibrate::{CALIBRATION, PRODUCT_SIZE, SWEEP_BYTES};
-use super::gate::{Gate, Verdict, BAND};
+use super::gate::{Gate, Verdict};
 use super::stats::Summary;
 use super::{build_kind, BenchReport, Outcome, Timing};
 use crate::report::{printable, EXIT_COULD_NOT_RUN, EXIT_NONCONFORMING};
@@ -89,6 +89,7 @@ struct Stats {
     max: Number,
     q1: Number,
     q3: Number,
+    third: Number,
     spread: Number,
 }
 
@@ -101,6 +102,7 @@ impl From<Summary> for Stats {
             max: Number(s.max),
             q1: Number(s.q1),
             q3: Number(s.q3),
+            third: Number(s.third),
             spread: Number(s.spread()),
         }
     }
@@ -123,6 +125,8 @@ struct WorkloadDocument<'a> {
     ratio_product: Option<Number>,
     ratio_sweep: Option<Number>,
     uncertainty: Option<Number>,
+    floor_ratio: Option<Number>,
+    floor_noise: Option<Number>,
     round_trip_ms: Option<Stats>,
     kernel_ms: Option<Stats>,
     overhead_ms: Option<Stats>,
@@ -133,7 +137,6 @@ struct WorkloadDocument<'a> {
 struct GateDocument<'a> {
     baseline: String,
     threshold: Number,
-    band: Number,
     counts: GateCounts,
     changes: Vec<ChangeDocument<'a>>,
 }
@@ -155,10 +158,10 @@ struct ChangeDocument<'a> {
     target: &'static str,
     verdict: &'a Verdict,
     threshold: Number,
-    baseline_ratio: Option<Number>,
-    baseline_uncertainty: Option<Number>,
-    ratio: Option<Number>,
-    uncertainty: Option<Number>,
+    baseline_floor_ratio: Option<Number>,
+    baseline_floor_noise: Option<Number>,
+    floor_ratio: Option<Number>,
+    floor_noise: Option<Number>,
     change: Option<Number>,
     low: Option<Number>,
     high: Option<Number>,
@@ -206,6 +209,8 @@ pub fn json(report: &BenchReport, gate: Option<&Gate>) -> String {
                 ratio_product: timing.map(|t| Number(t.ratio_product())),
                 ratio_sweep: timing.map(|t| Number(t.ratio_sweep())),
                 uncertainty: timing.map(|t| Number(t.uncertainty())),
+                floor_ratio: timing.map(|t| Number(t.floor_ratio())),
+                floor_noise: timing.map(|t| Number(t.floor_noise())),
                 round_trip_ms: timing.and_then(|t| t.round_trip.map(Stats::from)),
                 kernel_ms: timing.and_then(|t| t.kernel.map(Stats::from)),
                 overhead_ms: timing.and_then(|t| t.overhead.map(Stats::from)),
@@ -216,7 +221,6 @@ pub fn json(report: &BenchReport, gate: Option<&Gate>) -> String {
     let gate_document = gate.map(|g| GateDocument {
         baseline: g.baseline.display().to_string(),
         threshold: Number(g.threshold),
-        band: Number(BAND),
         counts: gate_counts(g),
         changes: g
             .changes
@@ -226,10 +230,10 @@ pub fn json(report: &BenchReport, gate: Option<&Gate>) -> String {
                 target: c.target.name(),
                 verdict: &c.verdict,
                 threshold: Number(c.threshold),
-                baseline_ratio: c.baseline.map(|b| Number(b.0)),
-                baseline_uncertainty: c.baseline.map(|b| Number(b.1)),
-                ratio: c.now.map(|n| Number(n.0)),
-                uncertainty: c.now.map(|n| Number(n.1)),
+                baseline_floor_ratio: c.baseline.map(|b| Number(b.0)),
+                baseline_floor_noise: c.baseline.map(|b| Number(b.1)),
+                floor_ratio: c.now.map(|n| Number(n.0)),
+                floor_noise: c.now.map(|n| Number(n.1)),
                 change: c.range.map(|r| Number(r.change)),
                 low: c.range.map(|r| Number(r.low)),
                 high: c.range.map(|r| Number(r.high)),
@@ -340,7 +344,7 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
         .max(8);
     let _ = writeln!(
         out,
-        "\n{:<width$}  {:<10} {:>9} {:>9} {:>9} {:>7} {:>9} {:>7}{}",
+        "\n{:<width$}  {:<10} {:>9} {:>9} {:>9} {:>7} {:>9} {:>6} {:>9} {:>6}{}",
         "workload",
         "measured",
         "median ms",
@@ -349,6 +353,8 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
         "spread",
         "ratio",
         "±2se",
+        "floor",
+        "±",
         if kernel {
             "   round trip ms  dry run ms"
         } else {
@@ -361,14 +367,16 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
             Outcome::Timed(t) => {
                 let _ = write!(
                     out,
-                    "{name:<width$}  {:<10} {:>9} {:>9} {:>9} {:>6.1}% {:>9.4} {:>6.1}%",
+                    "{name:<width$}  {:<10} {:>9} {:>9} {:>9} {:>6.1}% {:>9.4} {:>5.1}% {:>9.4} {:>5.1}%",
                     t.measured.name(),
                     millis(t.time.median),
                     millis(t.time.min),
                     millis(t.time.max),
                     t.time.spread() * 100.0,
                     t.ratio(),
-                    BAND * t.uncertainty() * 100.0
+                    2.0 * t.uncertainty() * 100.0,
+                    t.floor_ratio(),
+                    t.floor_noise() * 100.0
                 );
                 if kernel {
                     let rt = t.round_trip.map_or("-".into(), |s| millis(s.median));
@@ -387,7 +395,8 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
     }
     let _ = writeln!(
         out,
-        "\nratio: the median time over the median calibration unit of the same rounds (docs/bench.md); ±2se: two standard errors of the ratio"
+        "\nratio: median time over median calibration unit of the same rounds, ±2se two standard errors;\n\
+         floor: fastest run over fastest unit, ± its noise (what the gate compares; docs/bench.md)"
     );
     if !report.notes.is_empty() {
         out.push_str("\nNotes\n");
@@ -424,7 +433,7 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
 fn write_gate(out: &mut String, gate: &Gate) {
     let _ = writeln!(
         out,
-        "\nAgainst baseline {} (threshold {:.0}% unless overridden; a change counts only when its range of ±{BAND} standard errors lies wholly beyond it)",
+        "\nAgainst baseline {} (floor ratios; threshold {:.0}% unless overridden; a change counts only when its range, from the floors' noise, lies wholly beyond it)",
         printable(&gate.baseline.display().to_string()),
         gate.threshold * 100.0
     );

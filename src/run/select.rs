@@ -222,6 +222,11 @@ impl Filter {
 
     /// The filter as the options that make it, e.g. `--scheme alibi,rotary --id 'x.*'`.
     pub fn describe(&self) -> String {
+        self.describe_with("--id")
+    }
+
+    /// [`describe`](Self::describe) with the id patterns under another option name.
+    pub fn describe_with(&self, id_option: &str) -> String {
         let mut parts = Vec::new();
         let join = |names: Vec<&str>| names.join(",");
         if !self.schemes.is_empty() {
@@ -243,7 +248,7 @@ impl Filter {
             ));
         }
         for id in &self.ids {
-            parts.push(format!("--id '{id}'"));
+            parts.push(format!("{id_option} '{id}'"));
         }
         parts.join(" ")
     }
