@@ -8,8 +8,9 @@
 //! Data flows one way through the modules: [`math`] (dtypes, the numerical contract,
 //! the one matrix product, angles, the seeded stream) → [`scheme`] (one module per
 //! scheme behind [`scheme::SchemeModel`]) → [`case`] and [`suite`] → [`mod@reference`] and
-//! [`budget`] → [`kernel`] and [`compare`] → [`run`] (check, fuzz, shrink, verify) →
-//! [`report`].
+//! [`budget`] → [`kernel`] and [`compare`] → [`run`] (check, fuzz, shrink, verify, and
+//! `select`: which cases a run covers) and [`bench`] (timing against calibration
+//! workloads, the regression gate) → [`report`].
 //!
 //! # Example
 //!

@@ -189,13 +189,13 @@ where
 
 /// Times the Python kernel `kernel` in process (see `posconform.bench` for the
 /// options): the same workloads, calibration, document and gate as `posconform bench`.
-#[pyfunction]
+#[pyfunction(name = "bench")]
 #[pyo3(signature = (
     kernel, *, shapes=None, schemes=None, operations=None, dtypes=None, workloads=None,
     warmup=3, repeat=15, baseline=None, threshold=0.25
 ))]
 #[allow(clippy::too_many_arguments)]
-fn bench(
+fn bench_kernel(
     py: Python<'_>,
     kernel: Py<PyAny>,
     shapes: Option<Vec<String>>,
@@ -248,7 +248,7 @@ fn bench(
     let result = py.detach(|| {
         std::panic::catch_unwind(AssertUnwindSafe(|| {
             b::measure(
-                b::Target::Kernel(&mut target),
+                b::Target::InProcess(&mut target),
                 subject,
                 selected,
                 &options,
@@ -468,7 +468,7 @@ fn library_version() -> PyResult<String> {
 #[pymodule]
 fn _native(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(check, m)?)?;
-    m.add_function(wrap_pyfunction!(bench, m)?)?;
+    m.add_function(wrap_pyfunction!(bench_kernel, m)?)?;
     m.add_function(wrap_pyfunction!(suite_cases, m)?)?;
     m.add_function(wrap_pyfunction!(suites, m)?)?;
     m.add_function(wrap_pyfunction!(read_handshake, m)?)?;

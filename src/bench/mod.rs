@@ -536,7 +536,7 @@ impl Timing {
 #[derive(Debug, Clone, PartialEq)]
 pub enum Outcome {
     /// Timed.
-    Timed(Timing),
+    Timed(Box<Timing>),
     /// The kernel declined it (`-32001`).
     Skipped(String),
     /// It could not be timed: the kernel failed, or the run stopped before it.
@@ -920,10 +920,11 @@ impl Bench {
         else {
             return Outcome::Error("no usable timings (a clock gave no finite time)".into());
         };
-        if !(unit.median > 0.0) {
+        // Summaries hold finite values only.
+        if unit.median <= 0.0 {
             return Outcome::Error("the calibration took no measurable time".into());
         }
-        Outcome::Timed(Timing {
+        Outcome::Timed(Box::new(Timing {
             measured,
             time,
             unit,
@@ -932,7 +933,7 @@ impl Bench {
             round_trip: round_trips.and_then(Summary::of),
             kernel: kernel.and_then(Summary::of),
             overhead: overhead.and_then(Summary::of),
-        })
+        }))
     }
 }
 

@@ -20,10 +20,14 @@ pub const EXIT_NO_REGRESSION: u8 = 0;
 /// Exit status: at least one regression beyond its threshold that the noise supports.
 pub const EXIT_REGRESSED: u8 = EXIT_NONCONFORMING;
 
-/// The exit status of a bench: 2 when a workload could not be timed (whatever else
-/// happened), 1 when the gate found a regression, 0 otherwise.
+/// The exit status of a bench: 2 when a workload could not be timed or none was
+/// (whatever else happened), 1 when the gate found a regression, 0 otherwise.
 pub fn exit_code(report: &BenchReport, gate: Option<&Gate>) -> u8 {
-    if report.has_errors() {
+    let timed = report
+        .workloads
+        .iter()
+        .any(|w| matches!(w.outcome, Outcome::Timed(_)));
+    if report.has_errors() || !timed {
         EXIT_COULD_NOT_RUN
     } else if gate.is_some_and(Gate::failed) {
         EXIT_REGRESSED
@@ -189,7 +193,7 @@ pub fn json(report: &BenchReport, gate: Option<&Gate>) -> String {
         .map(|result| {
             let w = &result.workload;
             let (status, reason, timing) = match &result.outcome {
-                Outcome::Timed(t) => ("timed", None, Some(t)),
+                Outcome::Timed(t) => ("timed", None, Some(&**t)),
                 Outcome::Skipped(why) => ("skipped", Some(why.as_str()), None),
                 Outcome::Error(why) => ("error", Some(why.as_str()), None),
             };
@@ -419,6 +423,7 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
         EXIT_NO_REGRESSION if gate.is_some() => "no regression the noise supports",
         EXIT_NO_REGRESSION => "timed (no baseline given)",
         EXIT_REGRESSED => "regression",
+        _ if timed == 0 => "nothing was timed",
         _ => "could not time every workload",
     };
     let _ = writeln!(

@@ -511,7 +511,7 @@ fn progress_bar(quiet: bool) -> indicatif::ProgressBar {
 }
 
 fn bench(args: BenchArgs) -> anyhow::Result<u8> {
-    use posconform::bench::{self, gate, render, BenchOptions, BenchShape, Target};
+    use posconform::bench::{self, gate, render, BenchOptions, Target};
     if !(5..=100_000).contains(&args.repeat) {
         bail!("--repeat must be from 5 to 100000, given {}", args.repeat);
     }

@@ -17,8 +17,10 @@
 //! own `elapsed_ms` when it reports one (docs/protocol.md), else the round trip the
 //! harness measured. The suite's `time` is the sum of its cases' times. Cases with no
 //! time (`verify`, errors, skipped cases) and reports without any carry no `time`
-//! attribute: a made-up duration would mislead a dashboard. Text is escaped by `escape` and `escape_text`,
-//! which also drop the control characters XML 1.0 cannot carry at all.
+//! attribute: a made-up duration would mislead a dashboard.
+//!
+//! Text is escaped by `escape` and `escape_text`, which also drop the control
+//! characters XML 1.0 cannot carry at all.
 //!
 //! Written by hand rather than through an XML library: the document is a fixed,
 //! shallow shape and the one subtle part, escaping, is a dozen lines tested directly.

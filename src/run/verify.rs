@@ -1,7 +1,8 @@
 //! Offline verification: compare a results directory with a vectors directory.
 //!
 //! Every vector file is one case. A missing, malformed or mis-shaped result makes that
-//! case an error naming the file and field; the other cases still run. Only regular
+//! case an error naming the file and field; the other cases still run. A selection
+//! ([`verify_selected`]) verifies a subset and reports only that subset. Only regular
 //! files are read (a FIFO or a device in either directory is refused by type, never
 //! opened for reading), a result file larger than its case can need is refused
 //! unread, and `<id>.json` and `<id>.<output>.npy` that both hold an output must agree.
