@@ -535,7 +535,7 @@ fn check_records_the_kernel_time_of_each_case() {
     );
 }
 
-/// `verify` times nothing: no `time` attributes, `time` null in JSON.
+/// `verify` times nothing: no `time` attributes, no `time` in JSON.
 #[test]
 fn verify_writes_no_made_up_times() {
     let results = scratch("verify-time");
@@ -567,7 +567,7 @@ fn verify_writes_no_made_up_times() {
         .as_array()
         .unwrap()
         .iter()
-        .all(|c| c["time"].is_null()));
+        .all(|c| c.get("time").is_none()));
 }
 
 /// In process too: the reference kernel reports no time of its own, so only the round

@@ -49,7 +49,7 @@
 //! `time` (added within version 1) is how long a live kernel took for the case in a
 //! `check` run: `round_trip_ms` as the harness measured it (request written,
 //! computation, reply read and parsed), `kernel_ms` the kernel's own `elapsed_ms`
-//! (docs/protocol.md), `null` when it reported none. `time` is `null` for `verify` and
+//! (docs/protocol.md), `null` when it reported none. `time` is left out for `verify` and
 //! for cases that were skipped or could not be compared.
 //!
 //! `verdict.kind` is `pass`, `fail`, `skipped` or `error`; the last two carry a
@@ -152,6 +152,7 @@ struct CaseDocument<'a> {
     random: bool,
     verdict: &'a Verdict,
     warnings: &'a [crate::compare::Warning],
+    #[serde(skip_serializing_if = "Option::is_none")]
     time: Option<TimeDocument>,
     outputs: Vec<OutputDocument<'a>>,
 }
