@@ -401,6 +401,27 @@ pub struct CaseReport {
     /// Which catalogued faults reproduce the outputs (failing cases that were
     /// diagnosed).
     pub diagnosis: Option<crate::diagnose::CaseDiagnosis>,
+    /// How long the kernel took to answer, for a case a live kernel answered (`check`);
+    /// `None` otherwise (`verify`, errors, skipped cases).
+    pub time: Option<CaseTime>,
+}
+
+/// How long a kernel took for one case, as `check` saw it.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct CaseTime {
+    /// Milliseconds from handing the inputs to the kernel to having its outputs parsed
+    /// (over the protocol: the request written, the computation, the reply read).
+    pub round_trip_ms: f64,
+    /// Milliseconds the kernel reported for its own computation (the reply's
+    /// `elapsed_ms`, docs/protocol.md), when it gave a finite, non-negative one.
+    pub kernel_ms: Option<f64>,
+}
+
+impl CaseTime {
+    /// The kernel's own time when it reported one, else the round trip, in seconds.
+    pub fn seconds(&self) -> f64 {
+        self.kernel_ms.unwrap_or(self.round_trip_ms) / 1e3
+    }
 }
 
 impl CaseReport {
@@ -423,6 +444,7 @@ impl CaseReport {
             outputs: Vec::new(),
             warnings: Vec::new(),
             diagnosis: None,
+            time: None,
         }
     }
 
@@ -443,6 +465,7 @@ impl CaseReport {
             outputs: Vec::new(),
             warnings: Vec::new(),
             diagnosis: None,
+            time: None,
         }
     }
 

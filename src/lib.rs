@@ -8,8 +8,9 @@
 //! Data flows one way through the modules: [`math`] (dtypes, the numerical contract,
 //! the one matrix product, angles, the seeded stream) → [`scheme`] (one module per
 //! scheme behind [`scheme::SchemeModel`]) → [`case`] and [`suite`] → [`mod@reference`] and
-//! [`budget`] → [`kernel`] and [`compare`] → [`run`] (check, fuzz, shrink, verify) →
-//! [`report`].
+//! [`budget`] → [`kernel`] and [`compare`] → [`run`] (check, fuzz, shrink, verify, and
+//! `select`: which cases a run covers) and [`bench`] (timing against calibration
+//! workloads, the regression gate) → [`report`].
 //!
 //! # Example
 //!
@@ -39,6 +40,7 @@
 #![deny(missing_docs)]
 
 pub mod attention;
+pub mod bench;
 pub mod budget;
 pub mod case;
 pub mod compare;
@@ -65,7 +67,7 @@ pub use error::{Error, KernelErrorKind, Result};
 pub use kernel::Kernel;
 pub use math::Dtype;
 pub use report::Report;
-pub use run::{check, verify};
+pub use run::{check, select, verify};
 pub use scheme::sinusoidal::{Sinusoid, SinusoidLayout};
 pub use scheme::SchemeSpec;
 pub use scheme::{alibi, bucketed, clipped, learned, rotary, sinusoidal, xl_relative, Scheme};

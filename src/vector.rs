@@ -187,6 +187,43 @@ impl VectorFile {
         Ok(written)
     }
 
+    /// Reads only the case of a vector file (format, version and `case`; the arrays are
+    /// skipped unparsed), to decide whether a run selects it.
+    pub fn read_case(path: &Path) -> Result<Case> {
+        #[derive(serde::Deserialize)]
+        struct Head {
+            #[serde(default)]
+            format: Option<Value>,
+            #[serde(default)]
+            version: Option<Value>,
+            #[serde(default)]
+            case: Option<Value>,
+        }
+        let bytes = crate::files::read_regular(path, vector_file_limit(), "a vector file")?;
+        let head: Head = serde_json::from_slice(&bytes).map_err(|e| {
+            Error::format(
+                path.display(),
+                format!(
+                    "malformed JSON at line {}, column {}: {e}",
+                    e.line(),
+                    e.column()
+                ),
+            )
+        })?;
+        check_header(
+            head.format.as_ref(),
+            head.version.as_ref(),
+            path,
+            VECTOR_FORMAT,
+        )?;
+        let at = format!("{}: field `case`", path.display());
+        let case: Case = serde_json::from_value(head.case.unwrap_or(Value::Null))
+            .map_err(|e| Error::format(&at, e.to_string()))?;
+        case.validate()
+            .map_err(|e| Error::format(&at, e.to_string()))?;
+        Ok(case)
+    }
+
     /// Reads and validates a vector file; errors name the file and the field. Only a
     /// regular file is read, and arrays are parsed straight into typed values.
     pub fn read(path: &Path) -> Result<Self> {

@@ -694,6 +694,7 @@ fn synthetic(
         outputs: Vec::new(),
         warnings: Vec::new(),
         diagnosis: None,
+        time: None,
     };
     let output = OutputReport {
         name: Output::Scores,

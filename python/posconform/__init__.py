@@ -10,10 +10,12 @@ your function directly with numpy arrays (no subprocess, no JSON), and returns a
 :class:`Report`. ``posconform.torch`` adapts functions of torch tensors (imported only
 when you import it); the pytest plugin (``@pytest.mark.posconform``) turns a kernel
 into one test per case; ``posconform.protocol`` serves a kernel over the stdio protocol
-for the ``posconform`` command. See docs/python.md in the repository.
+for the ``posconform`` command; ``bench`` times a kernel in process (docs/bench.md). See
+docs/python.md in the repository.
 """
 
 from . import _native
+from ._bench import BenchResult, bench
 from ._kernel import Kernel
 from ._report import CaseResult, MinimalCase, Report, check, suite_cases
 from .protocol import Unsupported, numpy_dtype, serve
@@ -24,12 +26,14 @@ __version__: str = _native.library_version()
 SUITES: list = list(_native.suites())
 
 __all__ = [
+    "BenchResult",
     "CaseResult",
     "Kernel",
     "MinimalCase",
     "Report",
     "SUITES",
     "Unsupported",
+    "bench",
     "check",
     "numpy_dtype",
     "serve",

@@ -53,6 +53,14 @@ Errors
     skipped). Any other exception is answered as -32000 with its message; the
     traceback goes to stderr, which the harness keeps in its run log.
 
+Timing
+    Each ``run`` reply carries ``elapsed_ms``, the time the handler took
+    (``time.perf_counter`` around the call: decoding the request and encoding the reply
+    are left out). A ``dry_run`` request (sent by ``posconform bench``) is read like a
+    ``run`` and answered with zeros of the requested shapes, without calling the
+    handler: its round trip is the protocol's own cost. For a GPU kernel, synchronise
+    before returning so that ``elapsed_ms`` covers the computation.
+
 stdout belongs to the protocol: while :func:`serve` runs, ``print`` and anything a
 native library writes to file descriptor 1 are sent to stderr instead.
 """
@@ -324,6 +332,27 @@ class _Server:
         elapsed_ms = (time.perf_counter() - start) * 1e3
         return {"outputs": _encode_outputs(outputs), "elapsed_ms": elapsed_ms}
 
+    def dry_run(self, params):
+        """Reads a request as ``run`` does and answers zeros of the requested outputs.
+
+        The handler is not called: the round trip is what the exchange alone costs
+        (docs/protocol.md, "Dry run"), which ``posconform bench`` subtracts.
+        """
+        if not isinstance(params, Mapping):
+            raise _RpcError(INVALID_PARAMS, "dry_run: params must be an object")
+        wire, requested = params.get("inputs", {}), params.get("outputs")
+        if not isinstance(wire, Mapping) or not isinstance(requested, Mapping):
+            raise _RpcError(INVALID_PARAMS, "dry_run: params need `inputs` and `outputs` objects")
+        try:
+            for obj in wire.values():
+                decode_array(obj)
+            zeros = {name: encode_array(np.zeros(spec["shape"], numpy_dtype(spec["dtype"])),
+                                        spec["dtype"])
+                     for name, spec in requested.items()}
+        except (ValueError, TypeError, KeyError) as e:
+            raise _RpcError(INVALID_PARAMS, f"dry_run: bad array: {e}")
+        return {"outputs": zeros}
+
     def respond(self, line: bytes) -> tuple[dict | None, bool]:
         """The response to one request line (None for a notification) and whether to stop."""
         try:
@@ -346,7 +375,7 @@ class _Server:
         if method == "shutdown":
             # Sent as a request by mistake: answer it, then stop as asked.
             return {"jsonrpc": "2.0", "id": rid, "result": None}, True
-        methods = {"handshake": self.handshake, "run": self.run}
+        methods = {"handshake": self.handshake, "run": self.run, "dry_run": self.dry_run}
         if method not in methods:
             return _error(rid, METHOD_NOT_FOUND, f"method not found: {method}"), False
         try:

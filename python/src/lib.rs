@@ -142,6 +142,7 @@ fn check(
         max_consecutive_errors,
         shrink_budget,
         save_dir: save_failures,
+        select: posconform::select::Selection::everything(),
     };
     let mut target = kernel::PythonKernel::new(kernel);
     // The library runs without the GIL; the kernel takes it back for each call.
@@ -172,6 +173,115 @@ fn check(
             factor,
         }),
     }
+}
+
+/// Parses each name in `names` (an argument called `what`) with `FromStr`.
+fn parse_all<T: std::str::FromStr>(what: &str, names: Option<Vec<String>>) -> PyResult<Vec<T>>
+where
+    T::Err: std::fmt::Display,
+{
+    names
+        .unwrap_or_default()
+        .iter()
+        .map(|name| T::from_str(name).map_err(|e| value_error(format!("{what}: {e}"))))
+        .collect()
+}
+
+/// Times the Python kernel `kernel` in process (see `posconform.bench` for the
+/// options): the same workloads, calibration, document and gate as `posconform bench`.
+#[pyfunction(name = "bench")]
+#[pyo3(signature = (
+    kernel, *, shapes=None, schemes=None, operations=None, dtypes=None, workloads=None,
+    warmup=3, repeat=15, baseline=None, threshold=0.25
+))]
+#[allow(clippy::too_many_arguments)]
+fn bench_kernel(
+    py: Python<'_>,
+    kernel: Py<PyAny>,
+    shapes: Option<Vec<String>>,
+    schemes: Option<Vec<String>>,
+    operations: Option<Vec<String>>,
+    dtypes: Option<Vec<String>>,
+    workloads: Option<Vec<String>>,
+    warmup: usize,
+    repeat: usize,
+    baseline: Option<PathBuf>,
+    threshold: f64,
+) -> PyResult<BenchOutcome> {
+    use posconform::bench::{self as b, gate, render};
+    if !(5..=100_000).contains(&repeat) {
+        return Err(value_error(format!(
+            "repeat must be from 5 to 100000, given {repeat}"
+        )));
+    }
+    if warmup > 10_000 {
+        return Err(value_error(format!(
+            "warmup must be at most 10000, given {warmup}"
+        )));
+    }
+    if !(threshold.is_finite() && threshold > 0.0 && threshold <= gate::MAX_THRESHOLD) {
+        return Err(value_error(format!(
+            "threshold must be a fraction more than 0 and at most {}, given {threshold}",
+            gate::MAX_THRESHOLD
+        )));
+    }
+    let mut shapes: Vec<b::BenchShape> = parse_all("shapes", shapes)?;
+    if shapes.is_empty() {
+        shapes
+            .push(b::BenchShape::preset("medium").ok_or_else(|| value_error("no medium preset"))?);
+    }
+    let filter = posconform::select::Filter {
+        schemes: parse_all("schemes", schemes)?,
+        operations: parse_all("operations", operations)?,
+        dtypes: parse_all("dtypes", dtypes)?,
+        ids: parse_all("workloads", workloads)?,
+    };
+    let baseline = match baseline {
+        Some(path) => Some(gate::Baseline::read(&path).map_err(value_error)?),
+        None => None,
+    };
+    let mut target = kernel::PythonKernel::new(kernel);
+    let info = posconform::Kernel::describe(&mut target).map_err(value_error)?;
+    let (selected, notes) = b::kernel_workloads(&info, &shapes, &filter).map_err(value_error)?;
+    let subject = format!("{} {}", info.name, info.version).trim().to_string();
+    let options = b::BenchOptions { warmup, repeat };
+    let result = py.detach(|| {
+        std::panic::catch_unwind(AssertUnwindSafe(|| {
+            b::measure(
+                b::Target::InProcess(&mut target),
+                subject,
+                selected,
+                &options,
+                &mut |_, _| {},
+            )
+        }))
+    });
+    if let Some(interruption) = target.interruption.take() {
+        return Err(interruption);
+    }
+    let mut report = result.map_err(|_| {
+        PyRuntimeError::new_err("posconform failed inside bench (a bug; please report it)")
+    })?;
+    report.notes.splice(0..0, notes);
+    let thresholds = gate::Thresholds {
+        default: threshold,
+        overrides: Vec::new(),
+    };
+    let gate = baseline.map(|b| gate::compare(&report, &b, &thresholds));
+    Ok(BenchOutcome {
+        text: render::text(&report, gate.as_ref()),
+        json: render::json(&report, gate.as_ref()),
+        exit_code: render::exit_code(&report, gate.as_ref()),
+    })
+}
+
+/// The result of a bench run: the text report, the JSON document, the exit status the
+/// command would give.
+#[pyclass(module = "posconform._native", frozen, get_all)]
+struct BenchOutcome {
+    text: String,
+    json: String,
+    exit_code: u8,
 }
 
 /// The result of a check run, with the library's renderers.
@@ -359,10 +469,12 @@ fn library_version() -> PyResult<String> {
 #[pymodule]
 fn _native(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(check, m)?)?;
+    m.add_function(wrap_pyfunction!(bench_kernel, m)?)?;
     m.add_function(wrap_pyfunction!(suite_cases, m)?)?;
     m.add_function(wrap_pyfunction!(suites, m)?)?;
     m.add_function(wrap_pyfunction!(read_handshake, m)?)?;
     m.add_function(wrap_pyfunction!(library_version, m)?)?;
     m.add_class::<Outcome>()?;
+    m.add_class::<BenchOutcome>()?;
     Ok(())
 }

@@ -6,9 +6,12 @@ use std::process::ExitCode;
 
 use anyhow::{bail, Context as _};
 use clap::{Parser, Subcommand, ValueEnum};
+use posconform::bench::BenchShape;
+use posconform::case::OperationKind;
 use posconform::compare::CompareOptions;
 use posconform::math::Dtype;
 use posconform::report::{self, write_atomic, Report, EXIT_COULD_NOT_RUN};
+use posconform::select::{Filter, IdPattern, Part, Selection};
 use posconform::suite::{suite, SUITES};
 use posconform::Scheme;
 
@@ -75,13 +78,84 @@ enum Command {
     /// caught each fault and what the diagnosis named. Exit 1 if a fault goes uncaught
     /// or fewer than 90% are named first.
     Plant(PlantArgs),
+    /// Time named workloads (scheme/operation/shape/dtype) of the reference or of a
+    /// kernel, as ratios to calibration workloads run in the same process; with
+    /// --baseline, gate on regressions the noise supports (docs/bench.md).
+    #[command(
+        after_help = "Exit status: 0 no regression the noise supports, 1 a regression beyond its\n\
+threshold, 2 could not run (bad input, a workload that could not be timed).\n\
+JSON document, ratios and the gate: docs/bench.md."
+    )]
+    Bench(BenchArgs),
     /// Serve the demo kernel over the protocol on stdin/stdout (used by `demo`).
     #[command(name = "__demo-kernel", hide = true)]
     DemoKernel,
     /// Serve the reference over the protocol on stdin/stdout (a conforming kernel for
     /// testing a setup end to end).
     #[command(name = "__reference-kernel", hide = true)]
-    ReferenceKernel,
+    ReferenceKernel {
+        /// Compute every case this many times (tests only: a planted slowdown for the
+        /// bench gate).
+        #[arg(long, default_value_t = 1, hide = true)]
+        repeat_work: usize,
+    },
+}
+
+#[derive(Debug, clap::Args)]
+struct BenchArgs {
+    /// The kernel's command line, run without a shell; without it, the library's own
+    /// reference operations are timed, in process.
+    #[arg(long)]
+    kernel: Option<String>,
+    /// Shapes: small, medium, large, or L<L>_M<M>_d<d>_h<H> such as L512_M512_d64_h8
+    /// (comma-separated or repeated; default medium = L128_M128_d64_h4).
+    #[arg(long, value_name = "SHAPE", value_delimiter = ',')]
+    shape: Vec<BenchShape>,
+    /// Only workloads of these schemes (comma-separated or repeated).
+    #[arg(long, value_name = "SCHEME", value_delimiter = ',')]
+    scheme: Vec<Scheme>,
+    /// Only workloads of these operations.
+    #[arg(long, value_name = "OPERATION", value_delimiter = ',')]
+    operation: Vec<OperationKind>,
+    /// Only workloads in these dtypes (the reference computes in f64).
+    #[arg(long, value_name = "DTYPE", value_delimiter = ',')]
+    dtype: Vec<Dtype>,
+    /// Only workloads whose name matches this pattern (`*` any characters, `?` one;
+    /// repeated: any may match), e.g. 'rotary/*/f32'.
+    #[arg(long, value_name = "PATTERN")]
+    workload: Vec<IdPattern>,
+    /// Untimed runs of each workload first.
+    #[arg(long, value_name = "N", default_value_t = 3)]
+    warmup: usize,
+    /// Timed runs of each workload (at least 5).
+    #[arg(long, value_name = "N", default_value_t = 15)]
+    repeat: usize,
+    /// Seconds the kernel may take to read one request and answer it.
+    #[arg(long, default_value_t = 30.0)]
+    timeout: f64,
+    /// Append the kernel's stderr to this file.
+    #[arg(long, value_name = "FILE")]
+    kernel_log: Option<PathBuf>,
+    /// The JSON document of an earlier run (--format json or --json) to gate against.
+    #[arg(long, value_name = "FILE")]
+    baseline: Option<PathBuf>,
+    /// Slowdown of a workload's ratio that fails the gate when the noise supports it: a
+    /// fraction or a percentage.
+    #[arg(long, value_name = "FRACTION", default_value = "25%")]
+    threshold: String,
+    /// Another threshold for the workloads whose name matches PATTERN (repeated; the
+    /// first match wins), e.g. 'xl_relative/*=40%'.
+    #[arg(long, value_name = "PATTERN=FRACTION")]
+    threshold_for: Vec<String>,
+    /// Report format on standard output.
+    #[arg(long, value_enum, default_value_t = Format::Text)]
+    format: Format,
+    /// Also write the JSON document to this file (the next run's baseline).
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+    /// No progress display.
+    #[arg(long)]
+    quiet: bool,
 }
 
 #[derive(Debug, clap::Args)]
@@ -121,6 +195,8 @@ struct CheckArgs {
     /// No progress display.
     #[arg(long)]
     quiet: bool,
+    #[command(flatten)]
+    select: SelectArgs,
     #[command(flatten)]
     output: OutputArgs,
 }
@@ -173,7 +249,47 @@ struct VerifyArgs {
     #[arg(long)]
     results: PathBuf,
     #[command(flatten)]
+    select: SelectArgs,
+    #[command(flatten)]
     output: OutputArgs,
+}
+
+/// Which cases to run, shared by `check` and `verify`: filters, then one part of N.
+#[derive(Debug, clap::Args)]
+#[command(next_help_heading = "Selecting cases")]
+struct SelectArgs {
+    /// Only cases of these schemes (comma-separated or repeated).
+    #[arg(long, value_name = "SCHEME", value_delimiter = ',')]
+    scheme: Vec<Scheme>,
+    /// Only cases of these operations: encode, scores, attention, stream, decode.
+    #[arg(long, value_name = "OPERATION", value_delimiter = ',')]
+    operation: Vec<OperationKind>,
+    /// Only cases written for these dtypes (the case's own dtype).
+    #[arg(long, value_name = "DTYPE", value_delimiter = ',')]
+    dtype: Vec<Dtype>,
+    /// Only cases whose id matches this pattern (`*` any characters, `?` one; quote it;
+    /// repeated: any may match). Random cases are drawn from the schemes, operations and
+    /// dtypes the other filters keep.
+    #[arg(long, value_name = "PATTERN")]
+    id: Vec<IdPattern>,
+    /// Run part I of N (1 <= I <= N): N runs with parts 1/N to N/N together cover every
+    /// selected case exactly once, and split the random cases of one seed by index.
+    #[arg(long, value_name = "I/N")]
+    part: Option<Part>,
+}
+
+impl SelectArgs {
+    fn selection(&self) -> Selection {
+        Selection {
+            filter: Filter {
+                schemes: self.scheme.clone(),
+                operations: self.operation.clone(),
+                dtypes: self.dtype.clone(),
+                ids: self.id.clone(),
+            },
+            part: self.part.unwrap_or_default(),
+        }
+    }
 }
 
 /// Report options shared by `verify` and `check`.
@@ -239,7 +355,12 @@ fn dispatch(command: Command) -> anyhow::Result<u8> {
         Command::Verify(args) => {
             let options = compare_options(&args.output)?;
             check_report_paths(&args.output)?;
-            let report = posconform::verify::verify(&args.vectors, &args.results, &options)?;
+            let report = posconform::verify::verify_selected(
+                &args.vectors,
+                &args.results,
+                &options,
+                &args.select.selection(),
+            )?;
             finish(&report, &args.output, "")
         }
         Command::Check(args) => check(args),
@@ -247,7 +368,36 @@ fn dispatch(command: Command) -> anyhow::Result<u8> {
         Command::Explain { fault } => explain(fault.as_deref()),
         Command::Plant(args) => plant(args),
         Command::DemoKernel => serve(&mut posconform::demo::TernKernel),
-        Command::ReferenceKernel => serve(&mut posconform::kernel::ReferenceKernel::default()),
+        Command::ReferenceKernel { repeat_work } => serve(&mut RepeatedWork {
+            kernel: posconform::kernel::ReferenceKernel::default(),
+            times: repeat_work.max(1),
+        }),
+        Command::Bench(args) => bench(args),
+    }
+}
+
+/// A kernel that computes every case `times` times and answers the last result: the
+/// same answers, `times` times the work (tests plant a slowdown with it).
+struct RepeatedWork<K> {
+    kernel: K,
+    times: usize,
+}
+
+impl<K: posconform::kernel::Kernel> posconform::kernel::Kernel for RepeatedWork<K> {
+    fn describe(&mut self) -> posconform::Result<posconform::kernel::KernelInfo> {
+        self.kernel.describe()
+    }
+
+    fn run(
+        &mut self,
+        case: &posconform::Case,
+        dtype: Dtype,
+        inputs: &posconform::case::Arrays,
+    ) -> posconform::Result<posconform::kernel::Answer> {
+        for _ in 1..self.times {
+            self.kernel.run(case, dtype, inputs)?;
+        }
+        self.kernel.run(case, dtype, inputs)
     }
 }
 
@@ -374,6 +524,7 @@ fn check(args: CheckArgs) -> anyhow::Result<u8> {
         fuzz_time,
         seed: args.seed,
         save_dir: Some(args.save_failures.clone()),
+        select: args.select.selection(),
         ..Default::default()
     };
     forward_signals()?;
@@ -396,24 +547,136 @@ fn check(args: CheckArgs) -> anyhow::Result<u8> {
     Ok(code)
 }
 
+/// A progress bar on stderr when it is a terminal (and not `quiet`); nothing is drawn
+/// for runs that finish within a second.
+fn progress_bar(quiet: bool) -> indicatif::ProgressBar {
+    use std::io::IsTerminal as _;
+    if quiet || !std::io::stderr().is_terminal() {
+        return indicatif::ProgressBar::hidden();
+    }
+    let bar = indicatif::ProgressBar::new(0);
+    if let Ok(style) =
+        indicatif::ProgressStyle::with_template("{prefix:>7} [{bar:30}] {pos}/{len} {elapsed}")
+    {
+        bar.set_style(style.progress_chars("=> "));
+    }
+    bar
+}
+
+fn bench(args: BenchArgs) -> anyhow::Result<u8> {
+    use posconform::bench::{self, gate, render, BenchOptions, Target};
+    if !(5..=100_000).contains(&args.repeat) {
+        bail!("--repeat must be from 5 to 100000, given {}", args.repeat);
+    }
+    if args.warmup > 10_000 {
+        bail!("--warmup must be at most 10000, given {}", args.warmup);
+    }
+    let timeout = seconds("--timeout", args.timeout, false)?;
+    let thresholds = gate::Thresholds {
+        default: gate::parse_threshold(&args.threshold).context("--threshold")?,
+        overrides: args
+            .threshold_for
+            .iter()
+            .map(|text| {
+                gate::parse_override(text).with_context(|| format!("--threshold-for {text}"))
+            })
+            .collect::<anyhow::Result<_>>()?,
+    };
+    if let Some(path) = &args.json {
+        posconform::files::check_output_file(path)
+            .with_context(|| format!("--json {}", path.display()))?;
+    }
+    // A bad baseline costs nothing: it is read before anything is timed.
+    let baseline = match &args.baseline {
+        Some(path) => Some(gate::Baseline::read(path).context("--baseline")?),
+        None => None,
+    };
+    let shapes = if args.shape.is_empty() {
+        vec![BenchShape::preset("medium").context("the medium preset")?]
+    } else {
+        args.shape.clone()
+    };
+    let filter = Filter {
+        schemes: args.scheme.clone(),
+        operations: args.operation.clone(),
+        dtypes: args.dtype.clone(),
+        ids: args.workload.clone(),
+    };
+    let options = BenchOptions {
+        warmup: args.warmup,
+        repeat: args.repeat,
+    };
+    let bar = progress_bar(args.quiet);
+    let started = std::time::Instant::now();
+    let mut progress = |done: usize, total: usize| {
+        if started.elapsed() < std::time::Duration::from_secs(1) {
+            return;
+        }
+        bar.set_prefix("bench");
+        bar.set_length(total as u64);
+        bar.set_position(done as u64);
+    };
+    let report = match &args.kernel {
+        None => {
+            let workloads = bench::reference_workloads(&shapes, &filter)?;
+            let subject = format!("posconform {}", env!("CARGO_PKG_VERSION"));
+            bench::measure(
+                Target::Reference,
+                subject,
+                workloads,
+                &options,
+                &mut progress,
+            )
+        }
+        Some(command) => {
+            let argv = posconform::kernel::stdio::split_command(command)?;
+            let mut kernel = posconform::kernel::stdio::StdioKernel::new(argv, timeout);
+            if let Some(log) = &args.kernel_log {
+                kernel = kernel
+                    .with_log(log)
+                    .with_context(|| format!("--kernel-log {}", log.display()))?;
+            }
+            forward_signals()?;
+            let info = posconform::Kernel::describe(&mut kernel)?;
+            let (workloads, notes) = bench::kernel_workloads(&info, &shapes, &filter)?;
+            let subject = format!("{} {}", info.name, info.version).trim().to_string();
+            let mut report = bench::measure(
+                Target::Kernel(&mut kernel),
+                subject,
+                workloads,
+                &options,
+                &mut progress,
+            );
+            report.notes.splice(0..0, notes);
+            if let Some(problem) = kernel.log_problem() {
+                report
+                    .notes
+                    .push(format!("the kernel log is incomplete: {problem}"));
+            }
+            report
+        }
+    };
+    bar.finish_and_clear();
+    let gate = baseline.map(|b| gate::compare(&report, &b, &thresholds));
+    let json = render::json(&report, gate.as_ref());
+    if let Some(path) = &args.json {
+        write_atomic(path, json.as_bytes())?;
+    }
+    let text = match args.format {
+        Format::Text => render::text(&report, gate.as_ref()),
+        Format::Json => json,
+    };
+    let _ = std::io::stdout().lock().write_all(text.as_bytes());
+    Ok(render::exit_code(&report, gate.as_ref()))
+}
+
 fn run_check(
     kernel: &mut dyn posconform::kernel::Kernel,
     cases: &[posconform::case::Case],
     options: &posconform::check::CheckOptions,
     quiet: bool,
 ) -> anyhow::Result<posconform::check::CheckOutcome> {
-    use std::io::IsTerminal as _;
-    let bar = if quiet || !std::io::stderr().is_terminal() {
-        indicatif::ProgressBar::hidden()
-    } else {
-        let bar = indicatif::ProgressBar::new(0);
-        if let Ok(style) =
-            indicatif::ProgressStyle::with_template("{prefix:>7} [{bar:30}] {pos}/{len} {elapsed}")
-        {
-            bar.set_style(style.progress_chars("=> "));
-        }
-        bar
-    };
+    let bar = progress_bar(quiet);
     let started = std::time::Instant::now();
     let mut progress = |phase: &str, done: usize, total: usize| {
         // Nothing is drawn for runs that finish within a second.

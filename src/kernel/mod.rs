@@ -88,6 +88,15 @@ pub enum Answer {
     Unsupported(String),
 }
 
+/// The dtype and shape of one output array, as a dry run asks for it.
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
+pub struct ArraySpec {
+    /// The dtype to answer in.
+    pub dtype: Dtype,
+    /// The shape.
+    pub shape: Vec<usize>,
+}
+
 /// Something that computes cases: the reference, a planted-fault variant, or a team's
 /// kernel behind the stdio protocol.
 pub trait Kernel {
@@ -101,6 +110,23 @@ pub trait Kernel {
     /// Brings the kernel back after an error (the stdio client starts a new process).
     fn restart(&mut self) -> Result<()> {
         Ok(())
+    }
+
+    /// Takes `case` and its inputs as [`run`](Self::run) does but computes nothing:
+    /// answers arrays of the names, dtypes and shapes in `outputs`, whatever their
+    /// values. Over the protocol this is the optional `dry_run` request
+    /// (docs/protocol.md): its round trip is what the exchange alone costs, which
+    /// `bench` subtracts. `Ok(None)` when the kernel has no such path (the default, and
+    /// a kernel that answers `dry_run` with an error); `Err` when it could not answer.
+    fn dry_run(
+        &mut self,
+        case: &Case,
+        dtype: Dtype,
+        inputs: &Arrays,
+        outputs: &std::collections::BTreeMap<String, ArraySpec>,
+    ) -> Result<Option<Answer>> {
+        let _ = (case, dtype, inputs, outputs);
+        Ok(None)
     }
 }
 

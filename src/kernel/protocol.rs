@@ -41,6 +41,18 @@ pub fn run_params(case: &Case, dtype: Dtype, inputs: &Arrays) -> Value {
     json!({"case": case, "dtype": dtype, "inputs": inputs})
 }
 
+/// The parameters of a `dry_run` request: those of `run`, and the arrays to answer.
+pub fn dry_run_params(
+    case: &Case,
+    dtype: Dtype,
+    inputs: &Arrays,
+    outputs: &BTreeMap<String, crate::kernel::ArraySpec>,
+) -> Value {
+    let mut params = run_params(case, dtype, inputs);
+    params["outputs"] = json!(outputs);
+    params
+}
+
 /// The handshake result a kernel sends.
 pub fn handshake_result(info: &KernelInfo) -> Value {
     json!({
@@ -304,6 +316,7 @@ pub fn serve(kernel: &mut dyn Kernel, input: impl BufRead, mut output: impl Writ
                 .map(|info| handshake_result(&info))
                 .map_err(|e| (KERNEL_FAILED, e.to_string())),
             "run" => serve_run(kernel, &params),
+            "dry_run" => serve_dry_run(&params),
             other => Err((METHOD_NOT_FOUND, format!("unknown method `{other}`"))),
         };
         writeln!(output, "{}", response(&id, outcome)).map_err(io)?;
@@ -312,7 +325,34 @@ pub fn serve(kernel: &mut dyn Kernel, input: impl BufRead, mut output: impl Writ
     Ok(())
 }
 
-fn serve_run(kernel: &mut dyn Kernel, params: &Value) -> std::result::Result<Value, (i64, String)> {
+/// Answers a `dry_run`: reads the request as `run` does, then answers zeros of the
+/// requested dtypes and shapes without asking the kernel.
+fn serve_dry_run(params: &Value) -> std::result::Result<Value, (i64, String)> {
+    let invalid = |m: String| (INVALID_PARAMS, m);
+    read_run_params(params)?;
+    let requested = params
+        .get("outputs")
+        .and_then(Value::as_object)
+        .ok_or_else(|| invalid("`outputs` must be an object of {dtype, shape}".into()))?;
+    let mut object = Map::new();
+    for (name, spec) in requested {
+        let dtype: Dtype =
+            serde_json::from_value(spec.get("dtype").cloned().unwrap_or(Value::Null))
+                .map_err(|e| invalid(format!("`outputs.{name}.dtype`: {e}")))?;
+        let shape: Vec<usize> =
+            serde_json::from_value(spec.get("shape").cloned().unwrap_or(Value::Null))
+                .map_err(|e| invalid(format!("`outputs.{name}.shape`: {e}")))?;
+        crate::tensor::element_count(&shape, &format!("`outputs.{name}.shape`"))
+            .map_err(|e| invalid(e.to_string()))?;
+        let zeros = ndarray::ArrayD::<f64>::zeros(shape);
+        object.insert(name.clone(), Tensor::from_f64(dtype, zeros).to_json());
+    }
+    Ok(json!({ "outputs": object }))
+}
+
+type RunParams = (Case, Dtype, Arrays);
+
+fn read_run_params(params: &Value) -> std::result::Result<RunParams, (i64, String)> {
     let invalid = |m: String| (INVALID_PARAMS, m);
     let case: Case = serde_json::from_value(params.get("case").cloned().unwrap_or(Value::Null))
         .map_err(|e| invalid(format!("`case`: {e}")))?;
@@ -326,6 +366,11 @@ fn serve_run(kernel: &mut dyn Kernel, params: &Value) -> std::result::Result<Val
             inputs.insert(name.clone(), t);
         }
     }
+    Ok((case, dtype, inputs))
+}
+
+fn serve_run(kernel: &mut dyn Kernel, params: &Value) -> std::result::Result<Value, (i64, String)> {
+    let (case, dtype, inputs) = read_run_params(params)?;
     let started = std::time::Instant::now();
     match kernel.run(&case, dtype, &inputs) {
         Ok(Answer::Outputs {

@@ -938,21 +938,52 @@ impl Kernel for StdioKernel {
     }
 
     fn run(&mut self, case: &Case, dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
+        self.answer("run", case, protocol::run_params(case, dtype, inputs))
+    }
+
+    fn restart(&mut self) -> Result<()> {
+        if let Some(r) = self.running.as_mut() {
+            r.terminate();
+        }
+        self.running = None;
+        self.start()?;
+        self.describe().map(drop)
+    }
+
+    fn dry_run(
+        &mut self,
+        case: &Case,
+        dtype: Dtype,
+        inputs: &Arrays,
+        outputs: &std::collections::BTreeMap<String, crate::kernel::ArraySpec>,
+    ) -> Result<Option<Answer>> {
+        let params = protocol::dry_run_params(case, dtype, inputs, outputs);
+        match self.answer("dry_run", case, params) {
+            Ok(Answer::Outputs { outputs, .. }) => Ok(Some(Answer::Outputs {
+                outputs,
+                elapsed_ms: None,
+            })),
+            // An error reply (method not found, most likely): the kernel has no dry run.
+            Ok(Answer::Unsupported(_)) => Ok(None),
+            Err(e) if e.kernel_kind() == Some(KernelErrorKind::Failed) => Ok(None),
+            Err(e) => Err(e),
+        }
+    }
+}
+
+impl StdioKernel {
+    /// Sends a `run` (or `dry_run`) request for `case` and reads the outputs from the
+    /// reply.
+    fn answer(&mut self, method: &str, case: &Case, params: Value) -> Result<Answer> {
         if self.running.is_none() {
             self.start()?;
             self.describe()?;
         }
         let id = self.next_id;
         self.next_id += 1;
-        let reply = self.exchange(
-            "run",
-            id,
-            protocol::run_params(case, dtype, inputs),
-            reply_limit(case),
-            self.timeout,
-        )?;
+        let reply = self.exchange(method, id, params, reply_limit(case), self.timeout)?;
         let who = self.who();
-        let parsed = protocol::parse_reply(&reply.line, id, "run", &who).and_then(|r| match r {
+        let parsed = protocol::parse_reply(&reply.line, id, method, &who).and_then(|r| match r {
             Reply::Result(raw) => protocol::parse_run_result(raw, &who),
             Reply::Error {
                 code: UNSUPPORTED,
@@ -972,15 +1003,6 @@ impl Kernel for StdioKernel {
             Err(Error::Kernel { kind, reason, .. }) => Err(self.soft(kind, reason, reply.since)),
             Err(other) => Err(other),
         }
-    }
-
-    fn restart(&mut self) -> Result<()> {
-        if let Some(r) = self.running.as_mut() {
-            r.terminate();
-        }
-        self.running = None;
-        self.start()?;
-        self.describe().map(drop)
     }
 }
 

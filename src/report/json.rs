@@ -24,6 +24,7 @@
 //!       "random": false,
 //!       "verdict": { "kind": "fail" },
 //!       "warnings": [],
+//!       "time": { "round_trip_ms": 3.1, "kernel_ms": 1.2 },
 //!       "outputs": [
 //!         {
 //!           "name": "scores", "shape": [2, 9, 13], "dtype": "f64", "budget_dtype": "f64",
@@ -44,6 +45,12 @@
 //! `never_exercised` lists what no compared case covered in a `check` run (schemes,
 //! operations, parameter values, dtypes), each marked whether the kernel declared it
 //! (docs/protocol.md, "Capabilities"); it is empty for `verify`.
+//!
+//! `time` (added within version 1) is how long a live kernel took for the case in a
+//! `check` run: `round_trip_ms` as the harness measured it (request written,
+//! computation, reply read and parsed), `kernel_ms` the kernel's own `elapsed_ms`
+//! (docs/protocol.md), `null` when it reported none. `time` is left out for `verify` and
+//! for cases that were skipped or could not be compared.
 //!
 //! `verdict.kind` is `pass`, `fail`, `skipped` or `error`; the last two carry a
 //! `reason` string (for an error, the kernel's message and its last stderr lines).
@@ -148,9 +155,17 @@ struct CaseDocument<'a> {
     random: bool,
     verdict: &'a Verdict,
     warnings: &'a [crate::compare::Warning],
+    #[serde(skip_serializing_if = "Option::is_none")]
+    time: Option<TimeDocument>,
     outputs: Vec<OutputDocument<'a>>,
     #[serde(skip_serializing_if = "Option::is_none")]
     diagnosis: Option<CaseDiagnosisDocument<'a>>,
+}
+
+#[derive(Serialize)]
+struct TimeDocument {
+    round_trip_ms: Real,
+    kernel_ms: Option<Real>,
 }
 
 impl<'a> CaseDocument<'a> {
@@ -165,6 +180,10 @@ impl<'a> CaseDocument<'a> {
             random,
             verdict: &case.verdict,
             warnings: &case.warnings,
+            time: case.time.map(|t| TimeDocument {
+                round_trip_ms: Real(t.round_trip_ms),
+                kernel_ms: t.kernel_ms.map(Real),
+            }),
             outputs: case.outputs.iter().map(OutputDocument::from).collect(),
             diagnosis: case.diagnosis.as_ref().map(CaseDiagnosisDocument::from),
         }

@@ -15,9 +15,14 @@
 //!   diagnosis and notes go to the suite's `<system-out>`, and a conclusive diagnosis
 //!   is also the suite property `diagnosis`.
 //!
-//! No `time` attributes are written: the comparison does not time kernels, and a made-up
-//! duration would mislead a dashboard. Text is escaped by `escape` and `escape_text`,
-//! which also drop the control characters XML 1.0 cannot carry at all.
+//! A case a live kernel answered (`check`) carries `time`, in seconds: the kernel's
+//! own `elapsed_ms` when it reports one (docs/protocol.md), else the round trip the
+//! harness measured. The suite's `time` is the sum of its cases' times. Cases with no
+//! time (`verify`, errors, skipped cases) and reports without any carry no `time`
+//! attribute: a made-up duration would mislead a dashboard.
+//!
+//! Text is escaped by `escape` and `escape_text`, which also drop the control
+//! characters XML 1.0 cannot carry at all.
 //!
 //! Written by hand rather than through an XML library: the document is a fixed,
 //! shallow shape and the one subtle part, escaping, is a dozen lines tested directly.
@@ -33,10 +38,18 @@ pub fn render(report: &Report) -> String {
     let total = report.cases.len();
     let suite_name = format!("posconform {}", report.mode);
     let mut xml = String::from("<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n");
-    let totals = format!(
+    let mut totals = format!(
         "tests=\"{total}\" failures=\"{}\" errors=\"{}\" skipped=\"{}\"",
         counts.failed, counts.errors, counts.skipped
     );
+    let times: Vec<f64> = report
+        .cases
+        .iter()
+        .filter_map(|c| c.time.map(|t| t.seconds()))
+        .collect();
+    if !times.is_empty() {
+        let _ = write!(totals, " time=\"{}\"", seconds(times.iter().sum()));
+    }
     // `write!` into a String cannot fail, hence the ignored results throughout.
     let _ = writeln!(
         xml,
@@ -92,6 +105,9 @@ fn write_case(xml: &mut String, case: &CaseReport) {
         escape(&format!("{}.{}", case.scheme_name(), case.operation_name())),
         escape(&case.case)
     );
+    if let Some(time) = case.time {
+        let _ = write!(xml, " time=\"{}\"", seconds(time.seconds()));
+    }
     let mut warnings_written = false;
     let child = match &case.verdict {
         Verdict::Pass => None,
@@ -125,6 +141,11 @@ fn write_case(xml: &mut String, case: &CaseReport) {
     xml.push_str(child.as_deref().unwrap_or(""));
     xml.push_str(system_out.as_deref().unwrap_or(""));
     xml.push_str("    </testcase>\n");
+}
+
+/// Seconds as JUnit writes them: a plain decimal (no exponent), to the microsecond.
+fn seconds(value: f64) -> String {
+    format!("{:.6}", value.max(0.0))
 }
 
 /// Escapes `text` for an XML attribute value, and drops the characters XML 1.0

@@ -14,7 +14,7 @@ use std::path::PathBuf;
 use std::time::Duration;
 
 use crate::case::{Arrays, Case};
-use crate::compare::{compare, CaseReport, CompareOptions, Verdict, Warning};
+use crate::compare::{compare, CaseReport, CaseTime, CompareOptions, Verdict, Warning};
 use crate::error::{KernelErrorKind, Result};
 use crate::kernel::{Answer, Kernel, KernelInfo};
 use crate::math::precision::Dtype;
@@ -22,6 +22,7 @@ use crate::reference;
 use crate::report::{FuzzSummary, MinimalFailure, Report};
 
 use super::fuzz::fuzz_and_shrink;
+use super::select::Selection;
 use crate::tensor::Tensor;
 
 /// How to check a kernel.
@@ -41,6 +42,11 @@ pub struct CheckOptions {
     pub shrink_budget: usize,
     /// Where minimal failing cases are saved as vector files.
     pub save_dir: Option<PathBuf>,
+    /// Which cases to run: filters and one part of N (docs in [`super::select`]). The
+    /// filters apply to the cases given and to what the fuzzer draws (its scheme,
+    /// operation and dtype; id patterns select given cases only); the part takes its
+    /// share of both.
+    pub select: Selection,
 }
 
 impl Default for CheckOptions {
@@ -53,6 +59,7 @@ impl Default for CheckOptions {
             max_consecutive_errors: 3,
             shrink_budget: 300,
             save_dir: None,
+            select: Selection::everything(),
         }
     }
 }
@@ -116,7 +123,10 @@ pub fn run_case(
             (n.clone(), t)
         })
         .collect();
-    match kernel.run(case, dtype, &sent) {
+    let started = std::time::Instant::now();
+    let answer = kernel.run(case, dtype, &sent);
+    let round_trip_ms = started.elapsed().as_secs_f64() * 1e3;
+    match answer {
         Err(e) => {
             let kind = e.kernel_kind().unwrap_or(KernelErrorKind::Failed);
             (CaseReport::error(case, e.to_string()), Some(kind))
@@ -125,7 +135,10 @@ pub fn run_case(
             CaseReport::skipped(case, format!("the kernel declined: {reason}")),
             None,
         ),
-        Ok(Answer::Outputs { outputs, .. }) => {
+        Ok(Answer::Outputs {
+            outputs,
+            elapsed_ms,
+        }) => {
             let options = CompareOptions {
                 declared: Some(dtype),
                 ..*options
@@ -139,6 +152,10 @@ pub fn run_case(
                     )
                 }
             };
+            report.time = Some(CaseTime {
+                round_trip_ms,
+                kernel_ms: elapsed_ms.filter(|ms| ms.is_finite() && *ms >= 0.0),
+            });
             if dtype != case.dtype {
                 // Replaces compare's generic note with the reason the dtypes differ.
                 report
@@ -240,6 +257,8 @@ pub fn check(
     options: &CheckOptions,
     progress: &mut ProgressFn<'_>,
 ) -> Result<CheckOutcome> {
+    let selected = options.select.cases(cases.to_vec(), "cases")?;
+    let cases = &selected.items;
     let info = kernel.describe()?;
     let mut runner = Runner {
         kernel,
@@ -264,6 +283,11 @@ pub fn check(
         report.cases.push(runner.run(case, &options.compare));
     }
     progress("suite", cases.len(), cases.len());
+    if !options.select.is_everything() {
+        report
+            .notes
+            .push(selected.note("cases given", &options.select));
+    }
     let mut fuzz = None;
     let mut minimal = Vec::new();
     if options.fuzz_cases > 0 && runner.stopped.is_none() {
@@ -277,8 +301,20 @@ pub fn check(
         } else {
             String::new()
         };
+        let share = options.select.part.range(options.fuzz_cases);
+        let part = if options.select.part.is_whole() {
+            String::new()
+        } else {
+            format!(
+                "; part {}: random cases {} to {} of {}",
+                options.select.part,
+                share.start,
+                share.end.saturating_sub(1),
+                options.fuzz_cases
+            )
+        };
         report.notes.push(format!(
-            "fuzzing: {} random cases ({} within budget, {} over budget, {} errors, {} declined{shrinking}) in {:.1} s, {:.1} cases/s (seed {})",
+            "fuzzing: {} random cases ({} within budget, {} over budget, {} errors, {} declined{shrinking}) in {:.1} s, {:.1} cases/s (seed {}{part})",
             summary.cases,
             summary.passed,
             summary.failed,

@@ -35,17 +35,37 @@ pub(super) fn fuzz_and_shrink(
     let mut summary = FuzzSummary::default();
     let mut minimal: Vec<MinimalFailure> = Vec::new();
     let mut cases: Vec<CaseReport> = Vec::new();
-    let supported: Vec<(Scheme, Operation)> = runner
+    let filter = &options.select.filter;
+    // The (scheme, operation) pairs to draw from, each with the dtypes the kernel
+    // declares for it that the filter keeps (without a dtype filter, all of them: the
+    // draws are then exactly those of an unfiltered run).
+    let supported: Vec<(Scheme, Operation, Vec<Dtype>)> = runner
         .info
         .supports
         .iter()
-        .flat_map(|s| {
-            s.operations
-                .iter()
-                .map(move |&o| (s.scheme, operation_of(o)))
+        .flat_map(|s| s.operations.iter().map(move |&o| (s.scheme, o)))
+        .filter(|&(scheme, op)| {
+            (filter.schemes.is_empty() || filter.schemes.contains(&scheme))
+                && (filter.operations.is_empty() || filter.operations.contains(&op))
         })
+        .map(|(scheme, op)| {
+            let dtypes: Vec<Dtype> = runner
+                .info
+                .operation_dtypes(scheme, op)
+                .into_iter()
+                .filter(|d| filter.dtypes.is_empty() || filter.dtypes.contains(d))
+                .collect();
+            (scheme, operation_of(op), dtypes)
+        })
+        .filter(|(_, _, dtypes)| filter.dtypes.is_empty() || !dtypes.is_empty())
         .collect();
     if supported.is_empty() {
+        if !filter.is_empty() {
+            runner.notes.push(format!(
+                "fuzzing: the filters ({}) leave no declared scheme, operation and dtype to draw from; no random case ran",
+                filter.describe()
+            ));
+        }
         return Fuzzed {
             summary,
             cases,
@@ -58,17 +78,26 @@ pub(super) fn fuzz_and_shrink(
         diagnose: false,
         ..options.compare
     };
-    for n in 0..options.fuzz_cases {
-        if options
-            .fuzz_time
-            .is_some_and(|limit| started.elapsed() >= limit)
-            || runner.stopped.is_some()
+    // Every part draws the whole sequence from the seed (drawing is cheap: no inputs are
+    // built) and runs its own contiguous share of it.
+    let share = options.select.part.range(options.fuzz_cases);
+    for n in 0..share.end {
+        if n >= share.start
+            && (options
+                .fuzz_time
+                .is_some_and(|limit| started.elapsed() >= limit)
+                || runner.stopped.is_some())
         {
             break;
         }
-        progress("fuzz", n, options.fuzz_cases);
-        let (scheme, op) = supported[stream.below(supported.len() as u64) as usize].clone();
-        let Some(case) = random_declared_case(&mut stream, &runner.info, scheme, op, n) else {
+        let (scheme, op, dtypes) = supported[stream.below(supported.len() as u64) as usize].clone();
+        let accept = |case: &Case| runner.info.declares(case).is_ok();
+        let case = random_case_where(&mut stream, scheme, op, &dtypes, n, 64, &accept);
+        if n < share.start {
+            continue;
+        }
+        progress("fuzz", n - share.start, share.len());
+        let Some(case) = case else {
             continue;
         };
         let report = runner.run(&case, &quiet);
@@ -109,7 +138,7 @@ pub(super) fn fuzz_and_shrink(
             Verdict::Pass => summary.passed += 1,
         }
     }
-    progress("fuzz", options.fuzz_cases, options.fuzz_cases);
+    progress("fuzz", share.len(), share.len());
     summary.seconds = started.elapsed().as_secs_f64();
     Fuzzed {
         summary,

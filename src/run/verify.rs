@@ -1,15 +1,18 @@
 //! Offline verification: compare a results directory with a vectors directory.
 //!
 //! Every vector file is one case. A missing, malformed or mis-shaped result makes that
-//! case an error naming the file and field; the other cases still run. Only regular
+//! case an error naming the file and field; the other cases still run. A selection
+//! ([`verify_selected`]) verifies a subset and reports only that subset. Only regular
 //! files are read (a FIFO or a device in either directory is refused by type, never
 //! opened for reading), a result file larger than its case can need is refused
 //! unread, and `<id>.json` and `<id>.<output>.npy` that both hold an output must agree.
 
 use std::collections::BTreeSet;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
+use super::select::Selection;
 use crate::budget::budgets;
+use crate::case::Case;
 use crate::compare::{compare_with_budgets, CaseReport, CompareOptions, Warning};
 use crate::error::{Error, Result};
 use crate::report::Report;
@@ -19,6 +22,25 @@ use crate::vector::{read_results_for, vector_files, VectorFile, INDEX_FILE};
 ///
 /// Errors only when the run cannot start (an unreadable directory, no vector files).
 pub fn verify(vectors: &Path, results: &Path, options: &CompareOptions) -> Result<Report> {
+    verify_selected(vectors, results, options, &Selection::everything())
+}
+
+/// Verifies the cases of `vectors` that `selection` keeps (vector files in file-name
+/// order, filtered, then this part's round-robin share) against `results`. The cases
+/// left out are not reported, so a kernel that implements one scheme verifies just that
+/// scheme cleanly; a note says how many were selected. A vector file whose case cannot
+/// be read is kept whatever the scheme, operation and dtype filters say (only its file
+/// name can be matched against the id patterns), so a broken file is never skipped
+/// silently.
+///
+/// Errors when the run cannot start (an unreadable directory, no vector files) or when
+/// the filters keep none of the files.
+pub fn verify_selected(
+    vectors: &Path,
+    results: &Path,
+    options: &CompareOptions,
+    selection: &Selection,
+) -> Result<Report> {
     let files = vector_files(vectors)?;
     if files.is_empty() {
         return Err(Error::format(
@@ -29,6 +51,43 @@ pub fn verify(vectors: &Path, results: &Path, options: &CompareOptions) -> Resul
     if !results.is_dir() {
         return Err(Error::format(results.display(), "not a directory"));
     }
+    let stem_of = |file: &Path| {
+        file.file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_default()
+    };
+    // Every vector's id, selected or not: a result file of a case left out is not a
+    // stray.
+    let mut known: BTreeSet<String> = files.iter().map(|f| stem_of(f)).collect();
+    let filter = &selection.filter;
+    let entries: Vec<(PathBuf, Option<Case>)> = files
+        .into_iter()
+        .map(|file| {
+            let case = if filter.ids_only() {
+                None
+            } else {
+                VectorFile::read_case(&file).ok()
+            };
+            (file, case)
+        })
+        .collect();
+    for case in entries.iter().filter_map(|(_, c)| c.as_ref()) {
+        known.insert(case.id.clone());
+    }
+    let selected = selection.apply(entries, |filter, (file, case)| match case {
+        Some(case) => filter.keeps(case),
+        None => filter.keeps_id(&stem_of(file)),
+    });
+    if selected.kept == 0 {
+        return Err(Error::format(
+            filter.describe(),
+            format!(
+                "these filters select none of the {} vector files in {}; nothing to verify",
+                selected.total,
+                vectors.display()
+            ),
+        ));
+    }
     let mut report = Report {
         mode: "verify".into(),
         subject: format!("{} against {}", vectors.display(), results.display()),
@@ -38,12 +97,11 @@ pub fn verify(vectors: &Path, results: &Path, options: &CompareOptions) -> Resul
         random: Default::default(),
         diagnosis: None,
     };
-    let mut known = BTreeSet::new();
-    for file in &files {
-        let stem = file
-            .file_stem()
-            .map(|s| s.to_string_lossy().into_owned())
-            .unwrap_or_default();
+    if !selection.is_everything() {
+        report.notes.push(selected.note("vector files", selection));
+    }
+    for (file, _) in &selected.items {
+        let stem = stem_of(file);
         let vector = match VectorFile::read(file) {
             Ok(v) => v,
             Err(e) => {
