@@ -442,6 +442,54 @@ fn a_huge_reply_under_a_memory_limit_costs_the_case_not_the_run() {
     );
 }
 
+/// A reply cut off in the middle of its line (the kernel exited while writing it) is
+/// said to be cut off, with the bytes that arrived, not called a reply that is not JSON.
+#[test]
+fn a_reply_cut_short_is_reported_as_cut_short() {
+    let case = core("alibi.encode.h6");
+    let inputs = case.inputs().unwrap();
+    let mut k = kernel("half-reply", None, 60.0);
+    k.describe().unwrap();
+    let result = k.run(&case, Dtype::F64, &inputs);
+    assert_eq!(kind_of(&result), KernelErrorKind::Exited);
+    let e = result.unwrap_err().to_string();
+    assert!(
+        e.contains("bytes of a reply, before it ended") && !e.contains("not a JSON-RPC"),
+        "{e}"
+    );
+}
+
+/// Under the binary framing, blocks announced beyond the case's limit are refused
+/// before a byte of them is read.
+#[test]
+fn announced_blocks_over_the_limit_are_refused_unread() {
+    let case = core("alibi.encode.h6");
+    let inputs = case.inputs().unwrap();
+    let mut k = kernel("blocks-huge", None, 60.0);
+    k.describe().unwrap();
+    let result = k.run(&case, Dtype::F64, &inputs);
+    assert_eq!(kind_of(&result), KernelErrorKind::Garbage);
+    let e = result.unwrap_err().to_string();
+    assert!(
+        e.contains("over the limit") && e.contains("1099511627"),
+        "{e}"
+    );
+}
+
+/// Under the binary framing, a block cut short by the kernel's exit is reported with
+/// the bytes that arrived.
+#[test]
+fn a_block_cut_short_is_reported_as_cut_short() {
+    let case = core("alibi.encode.h6");
+    let inputs = case.inputs().unwrap();
+    let mut k = kernel("blocks-short", None, 60.0);
+    k.describe().unwrap();
+    let result = k.run(&case, Dtype::F64, &inputs);
+    assert_eq!(kind_of(&result), KernelErrorKind::Exited);
+    let e = result.unwrap_err().to_string();
+    assert!(e.contains("bytes of a reply, before it ended"), "{e}");
+}
+
 /// Stderr is drained to the end whatever it holds: invalid UTF-8 and a progress bar
 /// redrawn with `\r` do not stop the reader, so the kernel never dies of a closed pipe.
 #[test]
