@@ -143,10 +143,15 @@ fn assemble(
                 factor,
                 baseline_error,
                 floor,
-                // Flat indexing (analytic_at) needs row-major storage.
-                analytic: analytic
-                    .remove(&output)
-                    .map(|a| a.as_standard_layout().into_owned()),
+                // Flat indexing (analytic_at) needs row-major storage (copied only when
+                // the bound is not already row-major).
+                analytic: analytic.remove(&output).map(|a| {
+                    if a.is_standard_layout() {
+                        a
+                    } else {
+                        a.as_standard_layout().into_owned()
+                    }
+                }),
                 exact,
             },
         );

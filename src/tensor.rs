@@ -292,15 +292,87 @@ impl NpyHeader {
 }
 
 /// The largest number of elements one array may have, whatever its origin (a case, a
-/// kernel's reply, a result or vector file). Every shape is checked against it before
-/// anything is allocated; this function is the one place the limit is decided.
+/// kernel's reply, a result or vector file): as many f64 values as the machine's
+/// available memory holds ([`available_memory`]), so an array that could not be held
+/// even once is refused before anything is allocated. Every shape is checked against
+/// it; this function is the one place the limit is decided. Whether a whole case fits
+/// is [`crate::case::Case::validate`]'s question ([`crate::case::Case::memory_needed`]).
 pub fn max_elements() -> usize {
-    MAX_ELEMENTS
+    usize::try_from(available_memory().bytes / 8).unwrap_or(usize::MAX)
 }
 
-/// The element limit of [`max_elements`] (guards memory when a peer or a file asks for
-/// absurd shapes).
-pub const MAX_ELEMENTS: usize = 1 << 27;
+/// Memory this process may still allocate, and where the figure comes from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Memory {
+    /// Bytes.
+    pub bytes: u64,
+    /// Where the figure was read (named in errors).
+    pub source: &'static str,
+}
+
+/// The memory available for new allocations, read once per process: on Linux
+/// `MemAvailable` of `/proc/meminfo`, lowered to what a cgroup v2 memory limit leaves
+/// (`/sys/fs/cgroup/memory.max` minus `memory.current`); elsewhere on Unix the physical
+/// memory (`sysconf`); 8 GiB where neither can be read.
+pub fn available_memory() -> Memory {
+    use std::sync::OnceLock;
+    static MEMORY: OnceLock<Memory> = OnceLock::new();
+    *MEMORY.get_or_init(read_available_memory)
+}
+
+fn read_available_memory() -> Memory {
+    let file = |path: &str| std::fs::read_to_string(path).ok();
+    let meminfo = file("/proc/meminfo").and_then(|text| {
+        let line = text.lines().find(|l| l.starts_with("MemAvailable:"))?;
+        let kib: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
+        Some(kib.saturating_mul(1024))
+    });
+    let cgroup = file("/sys/fs/cgroup/memory.max")
+        .and_then(|max| max.trim().parse::<u64>().ok())
+        .map(|max| {
+            let used = file("/sys/fs/cgroup/memory.current")
+                .and_then(|c| c.trim().parse::<u64>().ok())
+                .unwrap_or(0);
+            max.saturating_sub(used)
+        });
+    match (meminfo, cgroup) {
+        (Some(m), Some(c)) if c < m => Memory {
+            bytes: c,
+            source: "the cgroup memory limit, /sys/fs/cgroup/memory.max",
+        },
+        (Some(m), _) => Memory {
+            bytes: m,
+            source: "MemAvailable in /proc/meminfo",
+        },
+        (None, _) => physical_memory().unwrap_or(Memory {
+            bytes: 8 << 30,
+            source: "an assumed 8 GiB (the machine's memory could not be read)",
+        }),
+    }
+}
+
+#[cfg(unix)]
+fn physical_memory() -> Option<Memory> {
+    // SAFETY: sysconf only reads system configuration values.
+    let (pages, size) = unsafe {
+        (
+            libc::sysconf(libc::_SC_PHYS_PAGES),
+            libc::sysconf(libc::_SC_PAGESIZE),
+        )
+    };
+    let bytes = u64::try_from(pages)
+        .ok()?
+        .checked_mul(u64::try_from(size).ok()?)?;
+    Some(Memory {
+        bytes,
+        source: "the physical memory (sysconf)",
+    })
+}
+
+#[cfg(not(unix))]
+fn physical_memory() -> Option<Memory> {
+    None
+}
 
 /// The number of elements of `shape`, checked: no overflow, and at most
 /// [`max_elements`] counting every zero-length axis as one (so `[0, 2^63]` is refused

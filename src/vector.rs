@@ -297,6 +297,44 @@ impl VectorFile {
         })
     }
 
+    /// Reads only the case of a vector file (its format, version and `case`, validated),
+    /// without reading its arrays: what `check --case FILE` needs, since the checker
+    /// derives inputs, expected outputs and budgets from the case itself.
+    pub fn read_case(path: &Path) -> Result<Case> {
+        #[derive(serde::Deserialize)]
+        struct CaseOnly {
+            #[serde(default)]
+            format: Option<Value>,
+            #[serde(default)]
+            version: Option<Value>,
+            #[serde(default)]
+            case: Option<Value>,
+        }
+        let bytes = crate::files::read_regular(path, vector_file_limit(), "a vector file")?;
+        let doc: CaseOnly = serde_json::from_slice(&bytes).map_err(|e| {
+            Error::format(
+                path.display(),
+                format!(
+                    "malformed JSON at line {}, column {}: {e}",
+                    e.line(),
+                    e.column()
+                ),
+            )
+        })?;
+        check_header(
+            doc.format.as_ref(),
+            doc.version.as_ref(),
+            path,
+            VECTOR_FORMAT,
+        )?;
+        let at = format!("{}: field `case`", path.display());
+        let case: Case = serde_json::from_value(doc.case.unwrap_or(Value::Null))
+            .map_err(|e| Error::format(&at, e.to_string()))?;
+        case.validate()
+            .map_err(|e| Error::format(&at, e.to_string()))?;
+        Ok(case)
+    }
+
     /// The stored budgets as comparison budgets. The stored per-element tolerance is
     /// `max(analytic, allowance)`; where it exceeds the allowance it *is* the analytic
     /// bound, elsewhere the allowance decided, which is what the criterion reports.

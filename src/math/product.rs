@@ -108,7 +108,70 @@ pub fn gemm<A, B, C>(
         plain(alpha, a, b, beta, c);
         return;
     }
-    let b_packed = pack_b(b);
+    let b_packed = pack_columns(b);
+    gemm_packed(alpha, a, &b_packed, 0, beta, c);
+}
+
+/// The columns of a right-hand operand `b[k, n]`, packed once for several products
+/// ([`gemm_packed`]) that use all of them or a range of them.
+#[derive(Debug, Clone)]
+pub struct PackedColumns {
+    k: usize,
+    n: usize,
+    data: Vec<f64>,
+}
+
+impl PackedColumns {
+    /// Rows of `b` (the inner dimension of the products).
+    pub fn inner(&self) -> usize {
+        self.k
+    }
+
+    /// Columns of `b`.
+    pub fn columns(&self) -> usize {
+        self.n
+    }
+}
+
+/// `b[k, n]` packed for [`gemm_packed`].
+pub fn pack_columns<B: Data<Elem = f64>>(b: &ArrayBase<B, Ix2>) -> PackedColumns {
+    let (k, n) = b.dim();
+    PackedColumns {
+        k,
+        n,
+        data: pack_b(b),
+    }
+}
+
+/// `c = alpha · a · b[.., first..first + c.ncols()] + beta · c`, with `b` packed by
+/// [`pack_columns`]: the same bits as [`gemm`] on that range of columns.
+///
+/// Panics when the shapes do not agree (a bug in the caller).
+pub fn gemm_packed<A, C>(
+    alpha: f64,
+    a: &ArrayBase<A, Ix2>,
+    b: &PackedColumns,
+    first: usize,
+    beta: f64,
+    c: &mut ArrayBase<C, Ix2>,
+) where
+    A: Data<Elem = f64>,
+    C: DataMut<Elem = f64>,
+{
+    let (m, k) = a.dim();
+    let n = c.ncols();
+    assert!(
+        k == b.k && c.nrows() == m && first + n <= b.n,
+        "gemm_packed: a {:?} · b columns {first}..{} of {:?} into c {:?}",
+        a.dim(),
+        first + n,
+        (b.k, b.n),
+        c.dim()
+    );
+    if m == 0 || n == 0 {
+        return;
+    }
+    let work = m.saturating_mul(n).saturating_mul(k.max(1));
     let kernel = kernel();
     let rows_per_task = if work >= PARALLEL && rayon::current_num_threads() > 1 {
         // A few tasks per thread, whole tiles each, so threads finish together.
@@ -119,11 +182,20 @@ pub fn gemm<A, B, C>(
     };
     let a = a.view();
     let task = |(index, mut c_rows): (usize, ArrayViewMut2<'_, f64>)| {
-        let first = index * rows_per_task;
+        let row = index * rows_per_task;
         let rows = c_rows.nrows();
-        let a_rows = a.slice(ndarray::s![first..first + rows, ..]);
+        let a_rows = a.slice(ndarray::s![row..row + rows, ..]);
         let a_packed = pack_a(&a_rows);
-        tiles(kernel, alpha, &a_packed, &b_packed, k, beta, &mut c_rows);
+        tiles(
+            kernel,
+            alpha,
+            &a_packed,
+            &b.data,
+            k,
+            first,
+            beta,
+            &mut c_rows,
+        );
     };
     if rows_per_task < m {
         use rayon::prelude::*;
@@ -182,13 +254,20 @@ fn pack_a(a: &ndarray::ArrayView2<'_, f64>) -> Vec<f64> {
     let mut out = vec![0.0; panels * k * MR];
     for (panel, chunk) in out.chunks_exact_mut(k * MR).enumerate() {
         for i in 0..MR.min(m - panel * MR) {
-            let row = a.row(panel * MR + i);
-            for (p, &x) in row.iter().enumerate() {
-                chunk[p * MR + i] = x;
-            }
+            scatter(a.row(panel * MR + i), chunk, i, MR);
         }
     }
     out
+}
+
+/// `chunk[p·stride + offset] = line[p]`, reading `line` as a slice when it is one.
+#[inline]
+fn scatter(line: ndarray::ArrayView1<'_, f64>, chunk: &mut [f64], offset: usize, stride: usize) {
+    let targets = chunk[offset..].iter_mut().step_by(stride);
+    match line.as_slice() {
+        Some(values) => targets.zip(values).for_each(|(t, &x)| *t = x),
+        None => targets.zip(line.iter()).for_each(|(t, &x)| *t = x),
+    }
 }
 
 /// `b[k, n]` as column panels of `NR` columns, each stored `k × NR` (element `(p, j)`
@@ -197,9 +276,30 @@ fn pack_b<B: Data<Elem = f64>>(b: &ArrayBase<B, Ix2>) -> Vec<f64> {
     let (k, n) = b.dim();
     let panels = n.div_ceil(NR);
     let mut out = vec![0.0; panels * k * NR];
-    for (p, row) in b.rows().into_iter().enumerate() {
-        for (j, &x) in row.iter().enumerate() {
-            out[(j / NR) * k * NR + p * NR + j % NR] = x;
+    if k == 0 {
+        return out;
+    }
+    let b = b.view();
+    if b.strides()[1] == 1 {
+        // Row-major rows: copy NR consecutive values of each row at a time.
+        for (panel, chunk) in out.chunks_exact_mut(k * NR).enumerate() {
+            let j0 = panel * NR;
+            let width = NR.min(n - j0);
+            for (p, target) in chunk.chunks_exact_mut(NR).enumerate() {
+                let row = b.row(p);
+                let part = row.slice(ndarray::s![j0..j0 + width]);
+                match part.as_slice() {
+                    Some(values) => target[..width].copy_from_slice(values),
+                    None => target.iter_mut().zip(part).for_each(|(t, &x)| *t = x),
+                }
+            }
+        }
+    } else {
+        // Columns (a transposed row-major matrix has contiguous columns).
+        for (panel, chunk) in out.chunks_exact_mut(k * NR).enumerate() {
+            for j in 0..NR.min(n - panel * NR) {
+                scatter(b.column(panel * NR + j), chunk, j, NR);
+            }
         }
     }
     out
@@ -207,23 +307,25 @@ fn pack_b<B: Data<Elem = f64>>(b: &ArrayBase<B, Ix2>) -> Vec<f64> {
 
 /// Every tile of `c` (rows of `a_packed` × columns of `b_packed`), with the tile code
 /// compiled for `kernel`.
+#[allow(clippy::too_many_arguments)]
 fn tiles(
     kernel: Kernel,
     alpha: f64,
     a_packed: &[f64],
     b_packed: &[f64],
     k: usize,
+    first: usize,
     beta: f64,
     c: &mut ArrayViewMut2<'_, f64>,
 ) {
     match kernel {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: `kernel()` returns Avx512 only when the processor reports AVX-512F.
-        Kernel::Avx512 => unsafe { tiles_avx512(alpha, a_packed, b_packed, k, beta, c) },
+        Kernel::Avx512 => unsafe { tiles_avx512(alpha, a_packed, b_packed, k, first, beta, c) },
         #[cfg(target_arch = "x86_64")]
         // SAFETY: `kernel()` returns Avx2 only when the processor reports AVX2.
-        Kernel::Avx2 => unsafe { tiles_avx2(alpha, a_packed, b_packed, k, beta, c) },
-        _ => tiles_generic(alpha, a_packed, b_packed, k, beta, c),
+        Kernel::Avx2 => unsafe { tiles_avx2(alpha, a_packed, b_packed, k, first, beta, c) },
+        _ => tiles_generic(alpha, a_packed, b_packed, k, first, beta, c),
     }
 }
 
@@ -234,10 +336,11 @@ unsafe fn tiles_avx512(
     a_packed: &[f64],
     b_packed: &[f64],
     k: usize,
+    first: usize,
     beta: f64,
     c: &mut ArrayViewMut2<'_, f64>,
 ) {
-    tiles_generic(alpha, a_packed, b_packed, k, beta, c)
+    tiles_generic(alpha, a_packed, b_packed, k, first, beta, c)
 }
 
 #[cfg(target_arch = "x86_64")]
@@ -247,19 +350,22 @@ unsafe fn tiles_avx2(
     a_packed: &[f64],
     b_packed: &[f64],
     k: usize,
+    first: usize,
     beta: f64,
     c: &mut ArrayViewMut2<'_, f64>,
 ) {
-    tiles_generic(alpha, a_packed, b_packed, k, beta, c)
+    tiles_generic(alpha, a_packed, b_packed, k, first, beta, c)
 }
 
-/// The tile loop; inlined into each instruction-set version above.
+/// The tile loop over the packed columns `first..first + c.ncols()`; inlined into each
+/// instruction-set version above.
 #[inline(always)]
 fn tiles_generic(
     alpha: f64,
     a_packed: &[f64],
     b_packed: &[f64],
     k: usize,
+    first: usize,
     beta: f64,
     c: &mut ArrayViewMut2<'_, f64>,
 ) {
@@ -268,14 +374,24 @@ fn tiles_generic(
         c.mapv_inplace(|old| finish(alpha, 0.0, beta, old));
         return;
     }
-    for (jp, b_panel) in b_packed.chunks_exact(k * NR).enumerate() {
+    let panels = first / NR..(first + n).div_ceil(NR);
+    for (jp, b_panel) in b_packed
+        .chunks_exact(k * NR)
+        .enumerate()
+        .take(panels.end)
+        .skip(panels.start)
+    {
+        // Columns of this panel that fall in the range, and where they go in `c`.
+        let (panel_first, panel_end) = (jp * NR, jp * NR + NR);
+        let from = first.max(panel_first);
+        let to = (first + n).min(panel_end);
         for (ip, a_panel) in a_packed.chunks_exact(k * MR).enumerate() {
             let acc = tile(a_panel, b_panel);
-            let (i0, j0) = (ip * MR, jp * NR);
+            let i0 = ip * MR;
             for (i, row) in acc.iter().enumerate().take(m - i0) {
                 let mut out = c.row_mut(i0 + i);
-                for (j, &sum) in row.iter().enumerate().take(n - j0) {
-                    let x = &mut out[j0 + j];
+                for (j, &sum) in row[from - panel_first..to - panel_first].iter().enumerate() {
+                    let x = &mut out[from - first + j];
                     *x = finish(alpha, sum, beta, *x);
                 }
             }
@@ -361,6 +477,31 @@ mod tests {
         }
     }
 
+    /// A range of packed columns, aligned to a panel or not, gives the bits of the
+    /// plain loops on those columns, and so does a row-major right-hand operand.
+    #[test]
+    fn packed_column_ranges_give_the_bits_of_the_plain_loops() {
+        let mut stream = Stream::new(14);
+        let (m, k, n) = (70, 64, 300);
+        let a = random(&mut stream, m, k);
+        let bt = random(&mut stream, n, k);
+        for b in [bt.t().to_owned(), bt.t().as_standard_layout().into_owned()] {
+            let packed = pack_columns(&b);
+            for (first, width) in [(0, 300), (0, 17), (3, 40), (8, 8), (251, 49), (299, 1)] {
+                let cols = b.slice(ndarray::s![.., first..first + width]).to_owned();
+                let mut want = Array2::zeros((m, width));
+                three_loops(0.25, &a, &cols, 0.0, &mut want);
+                let mut got = Array2::zeros((m, width));
+                gemm_packed(0.25, &a, &packed, first, 0.0, &mut got);
+                let same = want
+                    .iter()
+                    .zip(got.iter())
+                    .all(|(x, y)| x.to_bits() == y.to_bits());
+                assert!(same, "columns {first}..{}", first + width);
+            }
+        }
+    }
+
     /// The companion: summing the same products in another order (pairs first) changes
     /// the bits on these inputs, so the test above would see a reordered product.
     #[test]
@@ -413,6 +554,7 @@ mod tests {
                 &a_packed,
                 &b_packed,
                 k,
+                0,
                 0.0,
                 &mut got.view_mut(),
             );
