@@ -35,12 +35,11 @@ pub struct Tensor {
 
 impl Tensor {
     /// `values` rounded to `dtype`.
-    pub fn from_f64(dtype: Dtype, values: ArrayD<f64>) -> Self {
-        let values = if dtype == Dtype::F64 {
-            values
-        } else {
-            values.mapv(|x| dtype.round(x))
-        };
+    pub fn from_f64(dtype: Dtype, mut values: ArrayD<f64>) -> Self {
+        if dtype != Dtype::F64 {
+            // In place: a large output is not held twice.
+            values.mapv_inplace(|x| dtype.round(x));
+        }
         Tensor { dtype, values }
     }
 

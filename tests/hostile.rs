@@ -555,6 +555,47 @@ fn a_zero_sized_axis_beside_a_huge_one_is_refused_everywhere() {
     assert!(matches!(&report.cases[0].verdict, Verdict::Error(e) if e.contains("too large")));
 }
 
+/// An xl_relative scores case with `H` heads and `L = M` queries, in f32.
+fn big_scores(id: &str, heads: usize, l: usize) -> Case {
+    let mut case = core("xl_relative.scores.short_memory");
+    case.id = id.into();
+    case.heads = heads;
+    case.query_len = l;
+    case.memory_len = l;
+    case.dtype = Dtype::F32;
+    case
+}
+
+/// A case whose arrays each fit in memory but which together need more memory than
+/// the machine has available is refused before anything is allocated, with a message
+/// naming the case, the memory it needs and the memory available.
+#[test]
+fn a_case_beyond_the_machines_memory_is_refused_naming_the_case_and_the_memory() {
+    let available = posconform::tensor::available_memory().bytes;
+    // Scores of about available/16 elements: each array fits (the element limit is
+    // available/8), but the case holds its outputs several times over.
+    let l = (((available / 16 / 2) as f64).sqrt() as usize).max(2);
+    let case = big_scores("huge.scores", 1, l);
+    let e = case.validate().unwrap_err().to_string();
+    assert!(
+        e.contains("case huge.scores needs about") && e.contains("GiB") && e.contains("available"),
+        "{e}"
+    );
+    assert!(case.memory_needed() > available, "{e}");
+}
+
+/// The fixed cap of 2^27 elements per array is gone: H = 8, L = M = 4096 (2^28 scores)
+/// is accepted wherever its arrays fit in memory, and otherwise refused for memory,
+/// never for a fixed element count.
+#[test]
+fn a_case_over_the_old_element_cap_is_judged_by_memory() {
+    let case = big_scores("big.scores", 8, 4096);
+    match case.validate() {
+        Ok(()) => assert!(case.memory_needed() <= posconform::tensor::available_memory().bytes),
+        Err(e) => assert!(e.to_string().contains("needs about"), "{e}"),
+    }
+}
+
 /// A vector file whose case implies an array beyond the element limit (bucketed
 /// `max_distance` 10^12 sizes `relative_positions`) is refused before anything is
 /// allocated.
