@@ -16,7 +16,7 @@ use std::path::{Path, PathBuf};
 
 use serde_json::{json, Map, Value};
 
-use crate::budget::{self, budgets, Budget};
+use crate::budget::{self, Budget};
 use crate::case::Output;
 use crate::case::{Arrays, Case};
 use crate::error::{Error, Result};
@@ -72,8 +72,8 @@ impl VectorFile {
     /// reference, budgets for the case dtype with factor `c`.
     pub fn build(case: &Case, factor: f64) -> Result<Self> {
         let inputs = case.inputs()?;
-        let expected = reference::expected(case, &inputs)?;
-        let stored = budgets(case, &inputs, &expected, case.dtype, factor)?
+        let (expected, budgets) = budget::expected_and_budgets(case, &inputs, case.dtype, factor)?;
+        let stored = budgets
             .into_iter()
             .map(|(output, b)| {
                 let tolerance = Tensor::from_f64(Dtype::F64, b.tolerance());
@@ -295,6 +295,44 @@ impl VectorFile {
             budget,
             provenance: doc.provenance.unwrap_or(Value::Null),
         })
+    }
+
+    /// Reads only the case of a vector file (its format, version and `case`, validated),
+    /// without reading its arrays: what `check --case FILE` needs, since the checker
+    /// derives inputs, expected outputs and budgets from the case itself.
+    pub fn read_case(path: &Path) -> Result<Case> {
+        #[derive(serde::Deserialize)]
+        struct CaseOnly {
+            #[serde(default)]
+            format: Option<Value>,
+            #[serde(default)]
+            version: Option<Value>,
+            #[serde(default)]
+            case: Option<Value>,
+        }
+        let bytes = crate::files::read_regular(path, vector_file_limit(), "a vector file")?;
+        let doc: CaseOnly = serde_json::from_slice(&bytes).map_err(|e| {
+            Error::format(
+                path.display(),
+                format!(
+                    "malformed JSON at line {}, column {}: {e}",
+                    e.line(),
+                    e.column()
+                ),
+            )
+        })?;
+        check_header(
+            doc.format.as_ref(),
+            doc.version.as_ref(),
+            path,
+            VECTOR_FORMAT,
+        )?;
+        let at = format!("{}: field `case`", path.display());
+        let case: Case = serde_json::from_value(doc.case.unwrap_or(Value::Null))
+            .map_err(|e| Error::format(&at, e.to_string()))?;
+        case.validate()
+            .map_err(|e| Error::format(&at, e.to_string()))?;
+        Ok(case)
     }
 
     /// The stored budgets as comparison budgets. The stored per-element tolerance is
