@@ -126,10 +126,8 @@ pub fn apply_causal_mask(scores: &mut Array3<f64>, window: Window) -> Result<()>
 /// Masked entries get probability exactly 0; a row with every entry masked gets all
 /// zeros (defined, never NaN). Errors on NaN or `+inf` scores, naming the coordinate.
 pub fn masked_softmax(scores: ArrayView3<'_, f64>) -> Result<Array3<f64>> {
-    // Standard layout, so every row is contiguous whatever the view's strides.
-    let mut probs = scores.as_standard_layout().into_owned();
-    for (h, mut head) in probs.outer_iter_mut().enumerate() {
-        for (i, mut row) in head.outer_iter_mut().enumerate() {
+    for (h, head) in scores.outer_iter().enumerate() {
+        for (i, row) in head.outer_iter().enumerate() {
             if let Some(j) = row.iter().position(|x| x.is_nan() || *x == f64::INFINITY) {
                 return Err(Error::param(
                     "scores",
@@ -137,9 +135,15 @@ pub fn masked_softmax(scores: ArrayView3<'_, f64>) -> Result<Array3<f64>> {
                     format!("{} at [head {h}, query {i}, key {j}]", row[j]),
                 ));
             }
-            softmax_row(row.as_slice_mut().expect("owned rows are contiguous"));
         }
     }
+    let mut probs = scores.as_standard_layout().into_owned();
+    // Rows are independent: they run in parallel, each in the same order as alone.
+    Zip::from(probs.lanes_mut(ndarray::Axis(2))).par_for_each(|mut row| {
+        if let Some(row) = row.as_slice_mut() {
+            softmax_row(row);
+        }
+    });
     Ok(probs)
 }
 

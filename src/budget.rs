@@ -77,13 +77,41 @@ pub fn budgets(
     dtype: Dtype,
     factor: f64,
 ) -> Result<Budgets> {
-    // The f64 baseline is the oracle itself: its error is 0 by construction.
+    let analytic = reference::analytic_bounds(case, inputs, dtype)?;
+    assemble(case, inputs, expected, analytic, dtype, factor)
+}
+
+/// The expected outputs of `case` and their budgets for a kernel computing in
+/// `dtype`, in one pass of the reference ([`reference::expected_and_bounds`]): what
+/// `check` and `emit` need, for about the cost of the expected outputs and the bounds'
+/// own products. The same values as [`reference::expected`] and [`budgets`].
+pub fn expected_and_budgets(
+    case: &Case,
+    inputs: &Arrays,
+    dtype: Dtype,
+    factor: f64,
+) -> Result<(Outputs, Budgets)> {
+    let (expected, analytic) = reference::expected_and_bounds(case, inputs, dtype)?;
+    let budgets = assemble(case, inputs, &expected, analytic, dtype, factor)?;
+    Ok((expected, budgets))
+}
+
+/// Budgets from the analytic bounds, with the baseline's error (not computed for f64).
+fn assemble(
+    case: &Case,
+    inputs: &Arrays,
+    expected: &Outputs,
+    mut analytic: Outputs,
+    dtype: Dtype,
+    factor: f64,
+) -> Result<Budgets> {
+    // The f64 baseline is the oracle itself: its error is 0 by construction, and it is
+    // never computed.
     let baseline = if dtype == Dtype::F64 {
         Outputs::new()
     } else {
         reference::baseline(case, inputs, dtype)?
     };
-    let mut analytic = reference::analytic_bounds(case, inputs, dtype)?;
     let mut out = BTreeMap::new();
     for (&output, want) in expected {
         let exact = output.is_integer();
@@ -115,10 +143,15 @@ pub fn budgets(
                 factor,
                 baseline_error,
                 floor,
-                // Flat indexing (analytic_at) needs row-major storage.
-                analytic: analytic
-                    .remove(&output)
-                    .map(|a| a.as_standard_layout().into_owned()),
+                // Flat indexing (analytic_at) needs row-major storage (copied only when
+                // the bound is not already row-major).
+                analytic: analytic.remove(&output).map(|a| {
+                    if a.is_standard_layout() {
+                        a
+                    } else {
+                        a.as_standard_layout().into_owned()
+                    }
+                }),
                 exact,
             },
         );

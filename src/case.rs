@@ -35,6 +35,10 @@ use crate::tensor::Tensor;
 
 pub use crate::shape::{Fill, InputSpec, Operation, OperationKind, Output, Shape};
 
+/// How many f64 copies of a case's outputs checking it holds at once, at most
+/// (measured: see [`Case::memory_needed`] and docs/budgets.md, "Memory").
+pub const OUTPUT_COPIES: u64 = 4;
+
 /// Named arrays: a case's inputs, expected outputs, or a kernel's results.
 pub type Arrays = BTreeMap<String, Tensor>;
 
@@ -238,7 +242,8 @@ impl Case {
         }
         self.model().validate(&self.shape())?;
         // Every array the case implies, scheme tables and relative positions included,
-        // within the element limit (checked arithmetic, nothing allocated).
+        // within the element limit (checked arithmetic, nothing allocated), and all of
+        // them together within the machine's memory.
         let shapes = self
             .input_specs()
             .into_iter()
@@ -260,7 +265,51 @@ impl Case {
                 ));
             }
         }
+        let available = crate::tensor::available_memory();
+        let needed = self.memory_needed();
+        if needed > available.bytes {
+            let outputs: Vec<String> = self
+                .output_shapes()
+                .into_iter()
+                .map(|(output, shape)| format!("`{output}` {shape:?}"))
+                .collect();
+            return Err(Error::TooLarge {
+                case: self.id.clone(),
+                needed,
+                available: available.bytes,
+                detail: format!(
+                    "outputs {}, each held as f64 about {OUTPUT_COPIES} times at once",
+                    outputs.join(", ")
+                ),
+                source_of: available.source,
+            });
+        }
         Ok(())
+    }
+
+    /// Bytes of memory checking this case needs at its peak, estimated: its inputs
+    /// (twice: as generated and as sent) and [`OUTPUT_COPIES`] f64 copies of its outputs
+    /// (the expected values, their bounds and the kernel's answer, with the
+    /// intermediates of the bounds). Shapes must have passed the element checks of
+    /// [`Case::validate`]; the arithmetic saturates.
+    pub fn memory_needed(&self) -> u64 {
+        let elements = |shape: &[usize]| {
+            shape
+                .iter()
+                .fold(1u64, |acc, &d| acc.saturating_mul(d as u64))
+        };
+        let inputs = self
+            .input_specs()
+            .iter()
+            .fold(0u64, |acc, spec| acc.saturating_add(elements(&spec.shape)));
+        let outputs = self
+            .output_shapes()
+            .iter()
+            .fold(0u64, |acc, (_, shape)| acc.saturating_add(elements(shape)));
+        inputs
+            .saturating_mul(2)
+            .saturating_add(outputs.saturating_mul(OUTPUT_COPIES))
+            .saturating_mul(8)
     }
 
     /// The inputs of this case, in generation order: name, shape and how each is

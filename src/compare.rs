@@ -358,7 +358,8 @@ pub struct OutputReport {
     pub masking: Option<Masking>,
     /// Where the errors lie (failing outputs).
     pub patterns: Vec<Pattern>,
-    /// Per-element error over tolerance, for heatmaps (`[H, L, K]` outputs only).
+    /// Per-element error over tolerance, for heatmaps (`[H, L, K]` outputs that fail;
+    /// not kept for a passing output, whose map no report shows).
     #[serde(skip)]
     pub error_map: Option<ArrayD<f64>>,
 }
@@ -824,7 +825,23 @@ pub fn compare_output(
     // positive value; compared as 2p < smallest, since half of f64's smallest
     // subnormal is itself 0.
     let smallest = smallest_positive(budget.dtype);
-    let mut error_map = vec![0.0; want_s.len()];
+    let masked = |n: usize, w: f64| key_indexed && (visibility.hidden(n) || w == f64::NEG_INFINITY);
+    // A masked entry holds what it must: a -inf score, or a finite one carrying zero
+    // probability; a zero probability.
+    let masked_ok = |n: usize, g: f64| {
+        if is_scores {
+            if g == f64::NEG_INFINITY {
+                true
+            } else if g.is_finite() {
+                let max = row_max[n / keys];
+                max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
+            } else {
+                false
+            }
+        } else {
+            g == 0.0
+        }
+    };
     let mut failing: Vec<usize> = Vec::new();
     let mut leaks = 0;
     let mut masked_non_finite = 0;
@@ -839,31 +856,39 @@ pub fn compare_output(
             .copied()
             .unwrap_or(0.0)
     };
+    // The ratio of error to tolerance (infinite for a leak or a non-finite answer), as
+    // the loop below judges each element; only failing outputs keep the map of them.
+    let ratio_at = |n: usize, w: f64, g: f64| {
+        if masked(n, w) {
+            return if masked_ok(n, g) { 0.0 } else { f64::INFINITY };
+        }
+        if !g.is_finite() {
+            return f64::INFINITY;
+        }
+        let err = (g - w).abs();
+        let tolerance = analytic_at(n).max(allowance);
+        if tolerance > 0.0 {
+            err / tolerance
+        } else if err > 0.0 {
+            f64::INFINITY
+        } else {
+            0.0
+        }
+    };
     for (n, (&w, &g)) in want_s.iter().zip(got_s).enumerate() {
         stats.elements += 1;
-        if key_indexed && (visibility.hidden(n) || w == f64::NEG_INFINITY) {
+        if masked(n, w) {
             saw_mask = true;
-            let ok = if is_scores {
-                if g == f64::NEG_INFINITY {
-                    true
-                } else if g.is_finite() {
-                    sentinel = Some(sentinel.map_or(g, |s: f64| s.max(g)));
-                    let max = row_max[n / keys];
-                    max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
-                } else {
-                    false
-                }
-            } else {
-                g == 0.0
-            };
-            if !ok {
+            if is_scores && g.is_finite() && g != f64::NEG_INFINITY {
+                sentinel = Some(sentinel.map_or(g, |s: f64| s.max(g)));
+            }
+            if !masked_ok(n, g) {
                 if g.is_nan() || g == f64::INFINITY {
                     stats.non_finite += 1;
                     masked_non_finite += 1;
                 } else {
                     leaks += 1;
                 }
-                error_map[n] = f64::INFINITY;
                 worst.offer(n, f64::INFINITY, g, w, 0.0, true);
                 failing.push(n);
             }
@@ -877,7 +902,6 @@ pub fn compare_output(
             stats.max_rel = f64::INFINITY;
             stats.max_ulp = f64::INFINITY;
             stats.non_finite += 1;
-            error_map[n] = f64::INFINITY;
             worst.offer(n, f64::INFINITY, g, w, tolerance, false);
             failing.push(n);
             continue;
@@ -898,7 +922,6 @@ pub fn compare_output(
         } else {
             0.0
         };
-        error_map[n] = ratio;
         worst.offer(n, ratio, g, w, tolerance, false);
         if err > tolerance {
             failing.push(n);
@@ -945,9 +968,15 @@ pub fn compare_output(
             Masking::NegativeInfinity
         });
     }
-    let error_map = ArrayD::from_shape_vec(ndarray::IxDyn(&shape), error_map)
-        .unwrap_or_else(|_| ArrayD::zeros(ndarray::IxDyn(&shape)));
     if !stats.passed {
+        let ratios = want_s
+            .iter()
+            .zip(got_s)
+            .enumerate()
+            .map(|(n, (&w, &g))| ratio_at(n, w, g))
+            .collect();
+        let error_map = ArrayD::from_shape_vec(ndarray::IxDyn(&shape), ratios)
+            .unwrap_or_else(|_| ArrayD::zeros(ndarray::IxDyn(&shape)));
         stats.patterns = patterns(
             case,
             output,
@@ -960,9 +989,9 @@ pub fn compare_output(
             &error_map,
             visibility,
         );
-    }
-    if key_indexed {
-        stats.error_map = Some(error_map);
+        if key_indexed {
+            stats.error_map = Some(error_map);
+        }
     }
     stats
 }

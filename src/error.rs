@@ -40,6 +40,24 @@ pub enum Error {
         /// Why it is out of range.
         reason: String,
     },
+    /// A case needs more memory than the machine has available.
+    #[error(
+        "case {case} needs about {} of memory for its arrays ({detail}), more than the {} available ({source_of})",
+        gibibytes(*.needed),
+        gibibytes(*.available)
+    )]
+    TooLarge {
+        /// The case's id.
+        case: String,
+        /// Bytes the case needs, estimated.
+        needed: u64,
+        /// Bytes available.
+        available: u64,
+        /// Its largest arrays.
+        detail: String,
+        /// Where the available memory was read.
+        source_of: &'static str,
+    },
     /// A file or message does not follow its documented format.
     #[error("{location}: {reason}")]
     Format {
@@ -238,4 +256,9 @@ pub(crate) fn expect_finite<'a>(
         }
     }
     Ok(())
+}
+
+/// Bytes as GiB with two decimals, for messages.
+fn gibibytes(bytes: u64) -> String {
+    format!("{:.2} GiB", bytes as f64 / (1u64 << 30) as f64)
 }

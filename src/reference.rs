@@ -26,7 +26,6 @@ use crate::attention::{attend, masked_softmax, window_for, Window};
 use crate::case::{Arrays, Case, Operation, Output};
 use crate::error::{Error, Result};
 use crate::math::contract::{gamma_of, R64};
-use crate::math::product::with_portable_arithmetic;
 use crate::math::{Contract, Dtype};
 use crate::recurrence::{decode_steps, segments};
 use crate::scheme::model::{finite_or_zero, InputArrays, Inputs, PairPositions};
@@ -39,7 +38,7 @@ pub type Outputs = BTreeMap<Output, ArrayD<f64>>;
 /// The f64 oracle for `case` on `inputs`, computed with portable arithmetic so the
 /// values are bit-identical on every machine.
 pub fn expected(case: &Case, inputs: &Arrays) -> Result<Outputs> {
-    with_portable_arithmetic(|| Pipeline::new(case, inputs, None)?.run())
+    Pipeline::new(case, inputs, None)?.run()
 }
 
 /// The outputs of a kernel with one mistake: the reference pipeline with `deviation`'s
@@ -62,20 +61,29 @@ pub fn variant_outputs(
 /// The same pipeline with inputs and stage tensors rounded to `dtype`, and angles
 /// formed in f32 unless `dtype` is f64 (a plain kernel at the edge of the contract).
 pub fn baseline(case: &Case, inputs: &Arrays, dtype: Dtype) -> Result<Outputs> {
-    with_portable_arithmetic(|| {
-        let run = || Pipeline::new(case, inputs, Some(dtype))?.run();
-        if dtype == Dtype::F64 {
-            run()
-        } else {
-            crate::math::angle::with_single_precision_angles(run)
-        }
-    })
+    let run = || Pipeline::new(case, inputs, Some(dtype))?.run();
+    if dtype == Dtype::F64 {
+        run()
+    } else {
+        crate::math::angle::with_single_precision_angles(run)
+    }
 }
 
 /// Analytic per-element bounds on every output, for any kernel inside the numerical
 /// contract of `dtype`.
 pub fn analytic_bounds(case: &Case, inputs: &Arrays, dtype: Dtype) -> Result<Outputs> {
-    with_portable_arithmetic(|| Pipeline::new(case, inputs, None)?.bounds(dtype))
+    Pipeline::new(case, inputs, None)?.bounds(dtype)
+}
+
+/// [`expected`] and [`analytic_bounds`] for `dtype` in one pass: the bounds reuse the
+/// scores, probabilities and outputs the oracle computes (same values, bit for bit, as
+/// the two functions called apart), so nothing of the pipeline runs twice.
+pub fn expected_and_bounds(
+    case: &Case,
+    inputs: &Arrays,
+    dtype: Dtype,
+) -> Result<(Outputs, Outputs)> {
+    Pipeline::new(case, inputs, None)?.run_with_bounds(dtype)
 }
 
 /// The reduction length behind each output element, for the baseline's floor
@@ -402,6 +410,73 @@ impl<'a> Pipeline<'a> {
         Ok(out)
     }
 
+    /// The oracle and the bounds together; see [`expected_and_bounds`].
+    fn run_with_bounds(&self, dtype: Dtype) -> Result<(Outputs, Outputs)> {
+        let case: &Case = &self.case;
+        let at = StepAt::whole_window();
+        let inputs = self.inputs();
+        let contract = Contract::for_dtype(dtype, case.dtype);
+        let mut out = Outputs::new();
+        let mut bounds = Outputs::new();
+        match &case.operation {
+            Operation::Encode => {
+                let shape = case.shape();
+                let (output, _) = self.model().encode_output(&shape);
+                let table = self.model().encode(&shape, &inputs)?;
+                let bound = self
+                    .model()
+                    .encode_bounds(&shape, &inputs, &table, &contract)?;
+                bounds.insert(output, bound);
+                out.insert(output, table);
+            }
+            Operation::Scores => {
+                let (q, k) = (inputs.get3("q")?, inputs.get3("k")?);
+                let scores = self.window_scores(q, k, case.query_start, &at)?;
+                let bound = self.score_bound_from(&scores, q, k, case.query_start, &contract)?;
+                bounds.insert(Output::Scores, bound.into_dyn());
+                out.insert(Output::Scores, scores.into_dyn());
+            }
+            Operation::Attention => {
+                let (q, k, v) = (inputs.get3("q")?, inputs.get3("k")?, inputs.get3("v")?);
+                let window = self.attend_window(q, k, v, case.query_start, &at)?;
+                let (probs_bound, output_bound) =
+                    self.bounds_from(&window, q, k, v, case.query_start, &contract)?;
+                let (_, probs, output) = window;
+                bounds.insert(Output::Probs, probs_bound.into_dyn());
+                bounds.insert(Output::Output, output_bound.into_dyn());
+                out.insert(Output::Probs, probs.into_dyn());
+                out.insert(Output::Output, output.into_dyn());
+            }
+            Operation::Stream { tokens } => {
+                let (q, k, v) = (inputs.get3("q")?, inputs.get3("k")?, inputs.get3("v")?);
+                let mut output = Array3::zeros((case.heads, *tokens, case.head_dim));
+                let mut bound = Array3::zeros((case.heads, *tokens, case.head_dim));
+                for step in segments(*tokens, case.query_len, case.memory_len) {
+                    let (q, k, v) = (
+                        q.slice(s![.., step.start..step.end, ..]),
+                        k.slice(s![.., step.first_key..step.end, ..]),
+                        v.slice(s![.., step.first_key..step.end, ..]),
+                    );
+                    let p0 = case.query_start + step.start as i64;
+                    let window = self.attend_window(q, k, v, p0, &at)?;
+                    let (_, o_bound) = self.bounds_from(&window, q, k, v, p0, &contract)?;
+                    let rows = s![.., step.start..step.end, ..];
+                    output.slice_mut(rows).assign(&window.2);
+                    bound.slice_mut(rows).assign(&o_bound);
+                }
+                bounds.insert(Output::Output, bound.into_dyn());
+                out.insert(Output::Output, output.into_dyn());
+            }
+            Operation::Decode { .. } => {
+                // The oracle runs step by step; the bound over the full causal window
+                // (see `bounds`) is a computation of its own.
+                out = self.run()?;
+                bounds = self.bounds(dtype)?;
+            }
+        }
+        Ok((out, bounds))
+    }
+
     fn bounds(&self, dtype: Dtype) -> Result<Outputs> {
         let case: &Case = &self.case;
         let inputs = self.inputs();
@@ -473,21 +548,35 @@ impl<'a> Pipeline<'a> {
         let scores = self
             .model()
             .window_scores(&self.case.shape(), &self.inputs(), q, k, p0)?;
-        let terms =
+        let bound = self.score_bound_from(&scores, q, k, p0, contract)?;
+        Ok((bound, scores))
+    }
+
+    /// The score bound of [`Self::score_bounds`] from scores already computed (hidden
+    /// keys may already be `-inf`: their bound is 0 either way).
+    fn score_bound_from(
+        &self,
+        scores: &Array3<f64>,
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        p0: i64,
+        contract: &Contract,
+    ) -> Result<Array3<f64>> {
+        let mut terms =
             self.model()
                 .score_terms(&self.case.shape(), &self.inputs(), q, k, p0, contract)?;
         let us = contract.storage;
-        let mut bound = Zip::from(&terms).and(&scores).map_collect(|&t, &s| {
-            if s.is_finite() {
-                t + 2.0 * us * s.abs() + contract.floor
+        Zip::from(&mut terms).and(scores).par_for_each(|t, &s| {
+            *t = if s.is_finite() {
+                *t + 2.0 * us * s.abs() + contract.floor
             } else {
                 0.0
             }
         });
         for &j in &self.case.hidden_keys {
-            bound.slice_mut(s![.., .., j]).fill(0.0);
+            terms.slice_mut(s![.., .., j]).fill(0.0);
         }
-        Ok((bound, scores))
+        Ok(terms)
     }
 
     /// Bounds on probabilities and outputs of one window, carried from the score
@@ -506,22 +595,26 @@ impl<'a> Pipeline<'a> {
         p0: i64,
         contract: &Contract,
     ) -> Result<(Array3<f64>, Array3<f64>)> {
+        let window = self.attend_window(q, k, v, p0, &StepAt::whole_window())?;
+        self.bounds_from(&window, q, k, v, p0, contract)
+    }
+
+    /// [`Self::window_bounds`] from the window's scores (hidden keys `-inf`),
+    /// probabilities and outputs, as [`Self::attend_window`] returns them.
+    fn bounds_from(
+        &self,
+        (scores, probs, output): &(Array3<f64>, Array3<f64>, Array3<f64>),
+        q: ArrayView3<'_, f64>,
+        k: ArrayView3<'_, f64>,
+        v: ArrayView3<'_, f64>,
+        p0: i64,
+        contract: &Contract,
+    ) -> Result<(Array3<f64>, Array3<f64>)> {
         let us = contract.storage;
         let ua = contract.accumulation;
         let window = window_for(q, k)?;
         let key_len = window.key_len();
-        let (score_bound, mut scores) = self.score_bounds(q, k, p0, contract)?;
-        for &j in &self.case.hidden_keys {
-            scores.slice_mut(s![.., .., j]).fill(f64::NEG_INFINITY);
-        }
-        let at = StepAt {
-            kind: StepKind::Window,
-            index: 0,
-            start: 0,
-            key_tokens: Vec::new(),
-            key_step_starts: Vec::new(),
-        };
-        let (_, probs, output) = self.attend_window(q, k, v, p0, &at)?;
+        let score_bound = self.score_bound_from(scores, q, k, p0, contract)?;
         let row_max_abs = scores.map_axis(Axis(2), |row| {
             row.iter()
                 .copied()
@@ -542,24 +635,27 @@ impl<'a> Pipeline<'a> {
             }
         };
         let softmax_gamma = gamma_of(ua, 2 * key_len + 4) + gamma_of(R64, key_len + 2);
-        let probs_bound = Array3::from_shape_fn(probs.raw_dim(), |(h, i, j)| {
-            let p = probs[[h, i, j]];
-            let s = finite_or_zero(scores[[h, i, j]]).abs();
-            let relative = growth(row_delta[[h, i]])
-                + softmax_gamma
-                + 2.0 * ua * (s + row_max_abs[[h, i]])
-                + us
-                + R64;
-            (p * relative).min(f64::MAX) + contract.floor
-        });
+        let row_growth = row_delta.mapv(growth);
+        let mut probs_bound = probs.clone();
+        Zip::from(probs_bound.lanes_mut(Axis(2)))
+            .and(scores.lanes(Axis(2)))
+            .and(&row_growth)
+            .and(&row_max_abs)
+            .par_for_each(|mut bounds, scores, &growth, &largest| {
+                for (bound, &s) in bounds.iter_mut().zip(scores) {
+                    let s = finite_or_zero(s).abs();
+                    let relative = growth + softmax_gamma + 2.0 * ua * (s + largest) + us + R64;
+                    *bound = (*bound * relative).min(f64::MAX) + contract.floor;
+                }
+            });
         // Σ_j δp_ij |v_jc| + (γ_K + input)·Σ_j p_ij (|v_jc| + |value embedding|).
         let va = v.mapv(f64::abs);
         let carried = self.window_output(&probs_bound, va.view(), window, true)?;
-        let magnitude = self.window_output(&probs, va.view(), window, true)?;
+        let magnitude = self.window_output(probs, va.view(), window, true)?;
         let output_gamma = gamma_of(ua, key_len) + gamma_of(R64, key_len) + contract.input;
         let output_bound = Zip::from(&carried)
             .and(&magnitude)
-            .and(&output)
+            .and(output)
             .map_collect(|&c, &m, &o| c + output_gamma * m + us * o.abs() + contract.floor);
         Ok((probs_bound, output_bound))
     }

@@ -7,6 +7,10 @@
 //! `{"dtype": ..., "shape": [...], "values": [...]}` with plain JSON numbers (and the
 //! strings `"inf"`, `"-inf"`, `"nan"`, which JSON numbers cannot express).
 //!
+//! Under the protocol's binary framing (docs/protocol.md, "Binary arrays") the object is
+//! `{"dtype": ..., "shape": [...], "block": i}`: the same bytes, sent raw as block `i`
+//! after the message line instead of as base64 text.
+//!
 //! `.npy`: format versions 1.0–3.0, C order, descr `<f8`, `<f4`, `<f2` or `<i8`
 //! (NumPy has no standard bf16 descr; bf16 arrays use the JSON encoding).
 
@@ -31,12 +35,11 @@ pub struct Tensor {
 
 impl Tensor {
     /// `values` rounded to `dtype`.
-    pub fn from_f64(dtype: Dtype, values: ArrayD<f64>) -> Self {
-        let values = if dtype == Dtype::F64 {
-            values
-        } else {
-            values.mapv(|x| dtype.round(x))
-        };
+    pub fn from_f64(dtype: Dtype, mut values: ArrayD<f64>) -> Self {
+        if dtype != Dtype::F64 {
+            // In place: a large output is not held twice.
+            values.mapv_inplace(|x| dtype.round(x));
+        }
         Tensor { dtype, values }
     }
 
@@ -63,14 +66,18 @@ impl Tensor {
     /// The little-endian bytes of the elements in row-major order.
     pub fn to_le_bytes(&self) -> Vec<u8> {
         let mut bytes = Vec::with_capacity(self.values.len() * self.dtype.size());
-        for &x in self.values.iter() {
-            match self.dtype {
-                Dtype::F64 => bytes.extend_from_slice(&x.to_le_bytes()),
-                Dtype::F32 => bytes.extend_from_slice(&(x as f32).to_le_bytes()),
-                Dtype::F16 => bytes.extend_from_slice(&f16::from_f64(x).to_le_bytes()),
-                Dtype::Bf16 => bytes.extend_from_slice(&bf16::from_f64(x).to_le_bytes()),
-                Dtype::I64 => bytes.extend_from_slice(&(x as i64).to_le_bytes()),
+        let values = self.values.iter().copied();
+        // One loop per dtype, so each compiles to a plain conversion loop.
+        match self.dtype {
+            Dtype::F64 => values.for_each(|x| bytes.extend_from_slice(&x.to_le_bytes())),
+            Dtype::F32 => values.for_each(|x| bytes.extend_from_slice(&(x as f32).to_le_bytes())),
+            Dtype::F16 => {
+                values.for_each(|x| bytes.extend_from_slice(&f16::from_f64(x).to_le_bytes()))
             }
+            Dtype::Bf16 => {
+                values.for_each(|x| bytes.extend_from_slice(&bf16::from_f64(x).to_le_bytes()))
+            }
+            Dtype::I64 => values.for_each(|x| bytes.extend_from_slice(&(x as i64).to_le_bytes())),
         }
         bytes
     }
@@ -92,20 +99,24 @@ impl Tensor {
                 ),
             ));
         }
-        let values: Vec<f64> = bytes
-            .chunks_exact(dtype.size())
-            .map(|c| match dtype {
-                Dtype::F64 => f64::from_le_bytes(le(c)),
-                Dtype::F32 => f32::from_le_bytes(le(c)) as f64,
-                Dtype::F16 => f16::from_le_bytes(le(c)).to_f64(),
-                Dtype::Bf16 => bf16::from_le_bytes(le(c)).to_f64(),
-                Dtype::I64 => i64::from_le_bytes(le(c)) as f64,
-            })
-            .collect();
+        // One loop per dtype, so each compiles to a plain conversion loop.
+        let values: Vec<f64> = match dtype {
+            Dtype::F64 => decode(bytes, f64::from_le_bytes),
+            Dtype::F32 => decode(bytes, |c| f32::from_le_bytes(c) as f64),
+            Dtype::F16 => decode(bytes, |c| f16::from_le_bytes(c).to_f64()),
+            Dtype::Bf16 => decode(bytes, |c| bf16::from_le_bytes(c).to_f64()),
+            Dtype::I64 => decode(bytes, |c| i64::from_le_bytes(c) as f64),
+        };
         Ok(Tensor {
             dtype,
             values: shaped(shape, values, location)?,
         })
+    }
+
+    /// The array object of the binary framing (`"block": index`) and the block's bytes.
+    pub fn to_block(&self, index: usize) -> (Value, Vec<u8>) {
+        let object = json!({"dtype": self.dtype, "shape": self.shape(), "block": index});
+        (object, self.to_le_bytes())
     }
 
     /// The JSON array object with base64 data.
@@ -280,15 +291,87 @@ impl NpyHeader {
 }
 
 /// The largest number of elements one array may have, whatever its origin (a case, a
-/// kernel's reply, a result or vector file). Every shape is checked against it before
-/// anything is allocated; this function is the one place the limit is decided.
+/// kernel's reply, a result or vector file): as many f64 values as the machine's
+/// available memory holds ([`available_memory`]), so an array that could not be held
+/// even once is refused before anything is allocated. Every shape is checked against
+/// it; this function is the one place the limit is decided. Whether a whole case fits
+/// is [`crate::case::Case::validate`]'s question ([`crate::case::Case::memory_needed`]).
 pub fn max_elements() -> usize {
-    MAX_ELEMENTS
+    usize::try_from(available_memory().bytes / 8).unwrap_or(usize::MAX)
 }
 
-/// The element limit of [`max_elements`] (guards memory when a peer or a file asks for
-/// absurd shapes).
-pub const MAX_ELEMENTS: usize = 1 << 27;
+/// Memory this process may still allocate, and where the figure comes from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Memory {
+    /// Bytes.
+    pub bytes: u64,
+    /// Where the figure was read (named in errors).
+    pub source: &'static str,
+}
+
+/// The memory available for new allocations, read once per process: on Linux
+/// `MemAvailable` of `/proc/meminfo`, lowered to what a cgroup v2 memory limit leaves
+/// (`/sys/fs/cgroup/memory.max` minus `memory.current`); elsewhere on Unix the physical
+/// memory (`sysconf`); 8 GiB where neither can be read.
+pub fn available_memory() -> Memory {
+    use std::sync::OnceLock;
+    static MEMORY: OnceLock<Memory> = OnceLock::new();
+    *MEMORY.get_or_init(read_available_memory)
+}
+
+fn read_available_memory() -> Memory {
+    let file = |path: &str| std::fs::read_to_string(path).ok();
+    let meminfo = file("/proc/meminfo").and_then(|text| {
+        let line = text.lines().find(|l| l.starts_with("MemAvailable:"))?;
+        let kib: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
+        Some(kib.saturating_mul(1024))
+    });
+    let cgroup = file("/sys/fs/cgroup/memory.max")
+        .and_then(|max| max.trim().parse::<u64>().ok())
+        .map(|max| {
+            let used = file("/sys/fs/cgroup/memory.current")
+                .and_then(|c| c.trim().parse::<u64>().ok())
+                .unwrap_or(0);
+            max.saturating_sub(used)
+        });
+    match (meminfo, cgroup) {
+        (Some(m), Some(c)) if c < m => Memory {
+            bytes: c,
+            source: "the cgroup memory limit, /sys/fs/cgroup/memory.max",
+        },
+        (Some(m), _) => Memory {
+            bytes: m,
+            source: "MemAvailable in /proc/meminfo",
+        },
+        (None, _) => physical_memory().unwrap_or(Memory {
+            bytes: 8 << 30,
+            source: "an assumed 8 GiB (the machine's memory could not be read)",
+        }),
+    }
+}
+
+#[cfg(unix)]
+fn physical_memory() -> Option<Memory> {
+    // SAFETY: sysconf only reads system configuration values.
+    let (pages, size) = unsafe {
+        (
+            libc::sysconf(libc::_SC_PHYS_PAGES),
+            libc::sysconf(libc::_SC_PAGESIZE),
+        )
+    };
+    let bytes = u64::try_from(pages)
+        .ok()?
+        .checked_mul(u64::try_from(size).ok()?)?;
+    Some(Memory {
+        bytes,
+        source: "the physical memory (sysconf)",
+    })
+}
+
+#[cfg(not(unix))]
+fn physical_memory() -> Option<Memory> {
+    None
+}
 
 /// The number of elements of `shape`, checked: no overflow, and at most
 /// [`max_elements`] counting every zero-length axis as one (so `[0, 2^63]` is refused
@@ -331,13 +414,11 @@ fn shaped(shape: &[usize], values: Vec<f64>, location: &dyn fmt::Display) -> Res
         .map_err(|e| Error::format(location, format!("shape {shape:?}: {e}")))
 }
 
-/// The first `N` bytes of a chunk of exactly `N` (as `chunks_exact` yields).
-fn le<const N: usize>(chunk: &[u8]) -> [u8; N] {
-    let mut out = [0u8; N];
-    for (o, c) in out.iter_mut().zip(chunk) {
-        *o = *c;
-    }
-    out
+/// `bytes` as elements of `N` bytes each, converted by `convert` (a trailing partial
+/// element, which the callers' length checks exclude, is ignored).
+fn decode<const N: usize>(bytes: &[u8], convert: impl Fn([u8; N]) -> f64) -> Vec<f64> {
+    let (elements, _) = bytes.as_chunks::<N>();
+    elements.iter().map(|&c| convert(c)).collect()
 }
 
 fn npy_descr(dtype: Dtype) -> Option<&'static str> {
@@ -384,6 +465,7 @@ pub struct WireArray {
     data: Option<Option<String>>,
     values: Option<Option<Values>>,
     npy: Option<Option<String>>,
+    block: Option<Option<usize>>,
     unknown: Option<String>,
 }
 
@@ -409,6 +491,20 @@ impl WireArray {
     /// Validates and decodes the array; `location` names the file and field (or the
     /// reply and field) in every error.
     pub fn into_tensor(self, location: &dyn fmt::Display) -> Result<Tensor> {
+        self.into_tensor_from(&mut [], location)
+    }
+
+    /// [`into_tensor`](Self::into_tensor) for a message of the binary framing, whose
+    /// blocks are `blocks` (an array naming block `i` takes it, so its bytes are freed as
+    /// soon as they are decoded).
+    pub fn into_tensor_from(
+        mut self,
+        blocks: &mut [Option<Vec<u8>>],
+        location: &dyn fmt::Display,
+    ) -> Result<Tensor> {
+        if let Some(block) = self.block.take() {
+            return self.decode_block(block, blocks, location);
+        }
         if self.not_object {
             return Err(Error::format(
                 location,
@@ -482,6 +578,67 @@ impl WireArray {
             (Some(_), Some(_)) => Err(Error::format(location, "give `data` or `values`, not both")),
             (None, None) => Err(Error::format(location, "missing `data` (or `values`)")),
         }
+    }
+}
+
+impl WireArray {
+    fn decode_block(
+        self,
+        block: Option<usize>,
+        blocks: &mut [Option<Vec<u8>>],
+        location: &dyn fmt::Display,
+    ) -> Result<Tensor> {
+        if self.not_object || self.data.is_some() || self.values.is_some() || self.npy.is_some() {
+            return Err(Error::format(
+                location,
+                "give `block` alone, without `data`, `values` or `npy`",
+            ));
+        }
+        if let Some(unknown) = &self.unknown {
+            return Err(Error::format(
+                location,
+                format!("unknown field `{}`", unknown.escape_debug()),
+            ));
+        }
+        let index = block.ok_or_else(|| {
+            Error::format(location, "`block` must be the index of a binary block")
+        })?;
+        let count = blocks.len();
+        let bytes = match blocks.get_mut(index) {
+            Some(slot) => slot.take().ok_or_else(|| {
+                Error::format(location, format!("block {index} is used by two arrays"))
+            })?,
+            None if count == 0 => {
+                return Err(Error::format(
+                    location,
+                    "`block` names a binary block, but no blocks came with this message",
+                ))
+            }
+            None => {
+                return Err(Error::format(
+                    location,
+                    format!("block {index} does not exist (the message has {count} blocks)"),
+                ))
+            }
+        };
+        let dtype = match self.dtype {
+            Some(Some(text)) => text
+                .parse::<Dtype>()
+                .map_err(|e| Error::format(location, e.to_string()))?,
+            Some(None) => return Err(Error::format(location, "`dtype` must be a string")),
+            None => return Err(Error::format(location, "missing `dtype`")),
+        };
+        let shape = match self.shape {
+            Some(Some(shape)) => shape,
+            Some(None) => {
+                return Err(Error::format(
+                    location,
+                    "`shape` must be an array of non-negative integers",
+                ))
+            }
+            None => return Err(Error::format(location, "missing `shape`")),
+        };
+        Tensor::from_le_bytes(dtype, &shape, &bytes, location)
     }
 }
 
@@ -576,6 +733,7 @@ impl<'de> Visitor<'de> for WireVisitor {
                 "data" => wire.data = Some(map.next_value::<Text>()?.0),
                 "values" => wire.values = Some(map.next_value::<ValueList>()?.0),
                 "npy" => wire.npy = Some(map.next_value::<Text>()?.0),
+                "block" => wire.block = Some(map.next_value::<Dimension>()?.0),
                 other => {
                     if wire.unknown.is_none() {
                         wire.unknown = Some(other.chars().take(64).collect());

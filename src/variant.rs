@@ -46,6 +46,20 @@ pub struct StepAt {
     pub key_step_starts: Vec<usize>,
 }
 
+impl StepAt {
+    /// One whole window with no key bookkeeping: what the reference's own paths
+    /// (expected outputs, bounds) pass, since no deviation reads it there.
+    pub fn whole_window() -> Self {
+        StepAt {
+            kind: StepKind::Window,
+            index: 0,
+            start: 0,
+            key_tokens: Vec::new(),
+            key_step_starts: Vec::new(),
+        }
+    }
+}
+
 /// What a deviation sees of the window being scored.
 #[derive(Debug, Clone, Copy)]
 pub struct WindowCtx<'a, 'd> {

@@ -16,7 +16,7 @@ use std::path::{Path, PathBuf};
 
 use serde_json::{json, Map, Value};
 
-use crate::budget::{self, budgets, Budget};
+use crate::budget::{self, Budget};
 use crate::case::Output;
 use crate::case::{Arrays, Case};
 use crate::error::{Error, Result};
@@ -72,8 +72,8 @@ impl VectorFile {
     /// reference, budgets for the case dtype with factor `c`.
     pub fn build(case: &Case, factor: f64) -> Result<Self> {
         let inputs = case.inputs()?;
-        let expected = reference::expected(case, &inputs)?;
-        let stored = budgets(case, &inputs, &expected, case.dtype, factor)?
+        let (expected, budgets) = budget::expected_and_budgets(case, &inputs, case.dtype, factor)?;
+        let stored = budgets
             .into_iter()
             .map(|(output, b)| {
                 let tolerance = Tensor::from_f64(Dtype::F64, b.tolerance());

@@ -442,6 +442,54 @@ fn a_huge_reply_under_a_memory_limit_costs_the_case_not_the_run() {
     );
 }
 
+/// A reply cut off in the middle of its line (the kernel exited while writing it) is
+/// said to be cut off, with the bytes that arrived, not called a reply that is not JSON.
+#[test]
+fn a_reply_cut_short_is_reported_as_cut_short() {
+    let case = core("alibi.encode.h6");
+    let inputs = case.inputs().unwrap();
+    let mut k = kernel("half-reply", None, 60.0);
+    k.describe().unwrap();
+    let result = k.run(&case, Dtype::F64, &inputs);
+    assert_eq!(kind_of(&result), KernelErrorKind::Exited);
+    let e = result.unwrap_err().to_string();
+    assert!(
+        e.contains("bytes of a reply, before it ended") && !e.contains("not a JSON-RPC"),
+        "{e}"
+    );
+}
+
+/// Under the binary framing, blocks announced beyond the case's limit are refused
+/// before a byte of them is read.
+#[test]
+fn announced_blocks_over_the_limit_are_refused_unread() {
+    let case = core("alibi.encode.h6");
+    let inputs = case.inputs().unwrap();
+    let mut k = kernel("blocks-huge", None, 60.0);
+    k.describe().unwrap();
+    let result = k.run(&case, Dtype::F64, &inputs);
+    assert_eq!(kind_of(&result), KernelErrorKind::Garbage);
+    let e = result.unwrap_err().to_string();
+    assert!(
+        e.contains("over the limit") && e.contains("1099511627"),
+        "{e}"
+    );
+}
+
+/// Under the binary framing, a block cut short by the kernel's exit is reported with
+/// the bytes that arrived.
+#[test]
+fn a_block_cut_short_is_reported_as_cut_short() {
+    let case = core("alibi.encode.h6");
+    let inputs = case.inputs().unwrap();
+    let mut k = kernel("blocks-short", None, 60.0);
+    k.describe().unwrap();
+    let result = k.run(&case, Dtype::F64, &inputs);
+    assert_eq!(kind_of(&result), KernelErrorKind::Exited);
+    let e = result.unwrap_err().to_string();
+    assert!(e.contains("bytes of a reply, before it ended"), "{e}");
+}
+
 /// Stderr is drained to the end whatever it holds: invalid UTF-8 and a progress bar
 /// redrawn with `\r` do not stop the reader, so the kernel never dies of a closed pipe.
 #[test]
@@ -505,6 +553,47 @@ fn a_zero_sized_axis_beside_a_huge_one_is_refused_everywhere() {
         posconform::verify::verify(vectors.path(), results.path(), &CompareOptions::default())
             .unwrap();
     assert!(matches!(&report.cases[0].verdict, Verdict::Error(e) if e.contains("too large")));
+}
+
+/// An xl_relative scores case with `H` heads and `L = M` queries, in f32.
+fn big_scores(id: &str, heads: usize, l: usize) -> Case {
+    let mut case = core("xl_relative.scores.short_memory");
+    case.id = id.into();
+    case.heads = heads;
+    case.query_len = l;
+    case.memory_len = l;
+    case.dtype = Dtype::F32;
+    case
+}
+
+/// A case whose arrays each fit in memory but which together need more memory than
+/// the machine has available is refused before anything is allocated, with a message
+/// naming the case, the memory it needs and the memory available.
+#[test]
+fn a_case_beyond_the_machines_memory_is_refused_naming_the_case_and_the_memory() {
+    let available = posconform::tensor::available_memory().bytes;
+    // Scores of about available/16 elements: each array fits (the element limit is
+    // available/8), but the case holds its outputs several times over.
+    let l = (((available / 16 / 2) as f64).sqrt() as usize).max(2);
+    let case = big_scores("huge.scores", 1, l);
+    let e = case.validate().unwrap_err().to_string();
+    assert!(
+        e.contains("case huge.scores needs about") && e.contains("GiB") && e.contains("available"),
+        "{e}"
+    );
+    assert!(case.memory_needed() > available, "{e}");
+}
+
+/// The fixed cap of 2^27 elements per array is gone: H = 8, L = M = 4096 (2^28 scores)
+/// is accepted wherever its arrays fit in memory, and otherwise refused for memory,
+/// never for a fixed element count.
+#[test]
+fn a_case_over_the_old_element_cap_is_judged_by_memory() {
+    let case = big_scores("big.scores", 8, 4096);
+    match case.validate() {
+        Ok(()) => assert!(case.memory_needed() <= posconform::tensor::available_memory().bytes),
+        Err(e) => assert!(e.to_string().contains("needs about"), "{e}"),
+    }
 }
 
 /// A vector file whose case implies an array beyond the element limit (bucketed

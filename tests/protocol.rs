@@ -10,7 +10,8 @@ use posconform::check::{check, CheckOptions, CheckOutcome};
 use posconform::compare::Verdict;
 use posconform::demo::TernKernel;
 use posconform::kernel::stdio::{split_command, StdioKernel};
-use posconform::kernel::{Kernel, ReferenceKernel};
+use posconform::kernel::{Answer, Kernel, ReferenceKernel};
+use posconform::math::Dtype;
 use posconform::report::{EXIT_CONFORMING, EXIT_COULD_NOT_RUN, EXIT_NONCONFORMING};
 use posconform::suite::suite;
 use posconform::vector::VectorFile;
@@ -386,4 +387,63 @@ fn served_reference_rejects_inputs_that_disagree_with_the_case() {
         message.contains("input `k`") && message.contains("shape [2, 2, 64]"),
         "{message}"
     );
+}
+
+/// The harness offers the binary framing; a kernel that declares it (Rust's `serve`,
+/// here the served reference) then gets its inputs and sends its outputs as raw blocks,
+/// and the answer is the reference's own, bit for bit.
+#[test]
+fn the_binary_framing_carries_arrays_both_ways_when_declared() {
+    let dir = tempfile::tempdir().unwrap();
+    let trace = dir.path().join("trace.txt");
+    let mut k = stdio(&[&binary(), "__reference-kernel"], 60.0)
+        .with_trace(&trace)
+        .unwrap();
+    k.describe().unwrap();
+    let case = suite("core")
+        .unwrap()
+        .into_iter()
+        .find(|c| c.id == "xl_relative.scores.short_memory")
+        .unwrap();
+    let inputs = case.inputs().unwrap();
+    let Answer::Outputs { outputs, .. } = k.run(&case, Dtype::F64, &inputs).unwrap() else {
+        panic!("the reference declined")
+    };
+    let expected = posconform::reference::expected(&case, &inputs).unwrap();
+    for (output, want) in &expected {
+        assert_eq!(outputs[output.name()].view(), want.view(), "{output}");
+    }
+    drop(k);
+    let text = std::fs::read_to_string(&trace).unwrap();
+    assert!(text.contains(r#""framing":["binary"]"#), "{text}");
+    assert!(text.contains(r#""framing":"binary""#), "{text}");
+    assert!(
+        text.contains(r#""block":0"#) && text.contains(r#""blocks":["#),
+        "{text}"
+    );
+    assert!(text.contains("-> [") && text.contains("<- ["), "{text}");
+    assert!(!text.contains(r#""data":"#), "{text}");
+}
+
+/// A kernel that does not declare the binary framing gets base64 text, as before.
+#[test]
+fn a_kernel_without_the_binary_framing_keeps_base64() {
+    let dir = tempfile::tempdir().unwrap();
+    let trace = dir.path().join("trace.txt");
+    let mut k = misbehaving("unsupported", &[], 60.0)
+        .with_trace(&trace)
+        .unwrap();
+    k.describe().unwrap();
+    let case = suite("core")
+        .unwrap()
+        .into_iter()
+        .find(|c| c.id == "xl_relative.scores.short_memory")
+        .unwrap();
+    let inputs = case.inputs().unwrap();
+    let answer = k.run(&case, Dtype::F64, &inputs).unwrap();
+    assert!(matches!(answer, Answer::Unsupported(_)));
+    drop(k);
+    let text = std::fs::read_to_string(&trace).unwrap();
+    assert!(text.contains(r#""data":""#), "{text}");
+    assert!(!text.contains(r#""blocks""#), "{text}");
 }

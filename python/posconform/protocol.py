@@ -61,6 +61,13 @@ Timing
     handler: its round trip is the protocol's own cost. For a GPU kernel, synchronise
     before returning so that ``elapsed_ms`` covers the computation.
 
+Binary arrays
+    When the harness offers it, the handshake declares the binary framing
+    (docs/protocol.md, "Binary arrays"): arrays then travel as raw bytes after the
+    message line instead of base64 text, which a large case needs (a reply of several
+    gigabytes) and every case profits from. ``serve(..., binary=False)`` keeps
+    base64 text.
+
 stdout belongs to the protocol: while :func:`serve` runs, ``print`` and anything a
 native library writes to file descriptor 1 are sent to stderr instead.
 """
@@ -88,6 +95,7 @@ __all__ = [
 ]
 
 PROTOCOL = 1
+BINARY_FRAMING = "binary"
 
 UNSUPPORTED = -32001
 KERNEL_FAILED = -32000
@@ -136,13 +144,15 @@ def _f32_to_bf16_bits(x: np.ndarray) -> np.ndarray:
     return np.where(np.isnan(x), np.uint16(0x7FC0), rounded)
 
 
-def decode_array(obj: Mapping[str, Any], base_dir: str | None = None) -> np.ndarray:
+def decode_array(obj: Mapping[str, Any], base_dir: str | None = None,
+                 blocks: list | None = None) -> np.ndarray:
     """A protocol array object as a numpy array.
 
     Accepts ``{"dtype", "shape", "data": base64}`` (little-endian, row-major),
-    ``{"dtype", "shape", "values": [...]}`` (numbers or "inf"/"-inf"/"nan") and, for
-    vector files, ``{"npy": file}`` relative to ``base_dir``. bf16 becomes float32
-    (exact), i64 int64, f16 float16, f32 float32, f64 float64.
+    ``{"dtype", "shape", "values": [...]}`` (numbers or "inf"/"-inf"/"nan"),
+    ``{"dtype", "shape", "block": i}`` (the binary framing: the bytes are
+    ``blocks[i]``) and, for vector files, ``{"npy": file}`` relative to ``base_dir``.
+    bf16 becomes float32 (exact), i64 int64, f16 float16, f32 float32, f64 float64.
     """
     if not isinstance(obj, Mapping):
         raise ValueError("an array must be a JSON object")
@@ -155,10 +165,20 @@ def decode_array(obj: Mapping[str, Any], base_dir: str | None = None) -> np.ndar
     if not isinstance(shape, list) or not all(isinstance(n, int) and n >= 0 for n in shape):
         raise ValueError(f"array shape {shape!r} is not a list of non-negative integers")
     count = int(np.prod(shape, dtype=np.int64))
-    if ("data" in obj) == ("values" in obj):
+    if "block" in obj:
+        index = obj["block"]
+        if "data" in obj or "values" in obj:
+            raise ValueError("an array gives `block` alone, without `data` or `values`")
+        if not isinstance(index, int) or isinstance(index, bool) or not (
+                0 <= index < len(blocks or [])):
+            raise ValueError(f"array block {index!r} is not one of the message's "
+                             f"{len(blocks or [])} blocks")
+        raw = blocks[index]
+    elif ("data" in obj) == ("values" in obj):
         raise ValueError("an array needs exactly one of `data` and `values`")
-    if "data" in obj:
-        raw = base64.b64decode(obj["data"], validate=True)
+    if "block" in obj or "data" in obj:
+        if "data" in obj:
+            raw = base64.b64decode(obj["data"], validate=True)
         width = np.dtype(_WIRE[dtype]).itemsize
         if len(raw) != count * width:
             raise ValueError(
@@ -195,21 +215,27 @@ def _dtype_of(arr: np.ndarray) -> str:
     raise ValueError(f"cannot send an array of numpy dtype {arr.dtype}")
 
 
-def encode_array(arr: Any, dtype: str | None = None) -> dict:
+def encode_array(arr: Any, dtype: str | None = None, blocks: list | None = None) -> dict:
     """A numpy array (or anything ``np.asarray`` takes) as a protocol array object.
 
     ``dtype`` defaults to the array's own (integers as i64). bf16 is rounded from
-    float32 to nearest even; other conversions are numpy casts.
+    float32 to nearest even; other conversions are numpy casts. With ``blocks`` (a
+    list) the bytes are appended to it and the object names their block (the binary
+    framing); otherwise they are base64 text.
     """
     arr = np.asarray(arr)
     dtype = dtype or _dtype_of(arr)
     if dtype == "bf16":
         payload = _f32_to_bf16_bits(arr.astype(np.float32))
     elif dtype in _WIRE:
-        payload = arr.astype(_WIRE[dtype])
+        payload = arr.astype(_WIRE[dtype], copy=False)
     else:
         raise ValueError(f"unknown dtype {dtype!r}")
-    data = base64.b64encode(np.ascontiguousarray(payload).tobytes()).decode("ascii")
+    payload = np.ascontiguousarray(payload)
+    if blocks is not None:
+        blocks.append(memoryview(payload).cast("B"))
+        return {"dtype": dtype, "shape": list(arr.shape), "block": len(blocks) - 1}
+    data = base64.b64encode(payload.tobytes()).decode("ascii")
     return {"dtype": dtype, "shape": list(arr.shape), "data": data}
 
 
@@ -249,16 +275,16 @@ def call_handler(handler: Any, case: dict, dtype: str, inputs: dict) -> dict:
     return table[key](case, dtype, inputs)
 
 
-def _encode_outputs(outputs: Any) -> dict:
+def _encode_outputs(outputs: Any, blocks: list | None = None) -> dict:
     if not isinstance(outputs, Mapping):
         raise TypeError(f"a handler must return a dict of arrays, not {type(outputs).__name__}")
     encoded = {}
     for name, value in outputs.items():
         if isinstance(value, tuple):
             array, dtype = value
-            encoded[name] = encode_array(array, dtype)
+            encoded[name] = encode_array(array, dtype, blocks)
         else:
-            encoded[name] = encode_array(value)
+            encoded[name] = encode_array(value, None, blocks)
     return encoded
 
 
@@ -282,7 +308,8 @@ def _entries(supports, parameters) -> list:
 
 
 class _Server:
-    def __init__(self, name, version, supports, dtypes, handler, parameters=None):
+    def __init__(self, name, version, supports, dtypes, handler, parameters=None,
+                 binary=True):
         table = _flatten_handlers(handler)
         if supports is None:
             if table is None:
@@ -303,10 +330,21 @@ class _Server:
         self.dtypes = list(dtypes) + [d for e in entries for d in e.get("dtypes", [])
                                       if d not in dtypes]
         self.handler = handler
+        self.allow_binary = binary
+        # Set by the handshake: whether arrays travel as binary blocks from then on.
+        self.binary = False
+        # The blocks of the request being served, and of its reply.
+        self.blocks: list = []
+        self.reply_blocks: list = []
 
     def handshake(self, params):
         if isinstance(params, Mapping) and params.get("protocol", PROTOCOL) != PROTOCOL:
             _log(f"harness speaks protocol {params.get('protocol')}; this kernel speaks {PROTOCOL}")
+        offered = params.get("framing") if isinstance(params, Mapping) else None
+        self.binary = self.allow_binary and isinstance(offered, list) and \
+            BINARY_FRAMING in offered
+        if self.binary:
+            return {**self.description, "framing": BINARY_FRAMING}
         return self.description
 
     def run(self, params):
@@ -324,13 +362,16 @@ class _Server:
         if dtype not in self.dtypes:
             raise Unsupported(f"dtype {dtype!r} is not one this kernel declared ({self.dtypes})")
         try:
-            inputs = {name: decode_array(obj) for name, obj in wire.items()}
+            inputs = {name: decode_array(obj, blocks=self.blocks) for name, obj in wire.items()}
         except (ValueError, TypeError, KeyError) as e:
             raise _RpcError(INVALID_PARAMS, f"run: bad input array: {e}")
         start = time.perf_counter()
         outputs = call_handler(self.handler, dict(case), dtype, inputs)
         elapsed_ms = (time.perf_counter() - start) * 1e3
-        return {"outputs": _encode_outputs(outputs), "elapsed_ms": elapsed_ms}
+        blocks = [] if self.binary else None
+        encoded = _encode_outputs(outputs, blocks)
+        self.reply_blocks = blocks or []
+        return {"outputs": encoded, "elapsed_ms": elapsed_ms}
 
     def dry_run(self, params):
         """Reads a request as ``run`` does and answers zeros of the requested outputs.
@@ -345,16 +386,24 @@ class _Server:
             raise _RpcError(INVALID_PARAMS, "dry_run: params need `inputs` and `outputs` objects")
         try:
             for obj in wire.values():
-                decode_array(obj)
+                decode_array(obj, blocks=self.blocks)
+            blocks = [] if self.binary else None
             zeros = {name: encode_array(np.zeros(spec["shape"], numpy_dtype(spec["dtype"])),
-                                        spec["dtype"])
+                                        spec["dtype"], blocks)
                      for name, spec in requested.items()}
+            self.reply_blocks = blocks or []
         except (ValueError, TypeError, KeyError) as e:
             raise _RpcError(INVALID_PARAMS, f"dry_run: bad array: {e}")
         return {"outputs": zeros}
 
-    def respond(self, line: bytes) -> tuple[dict | None, bool]:
-        """The response to one request line (None for a notification) and whether to stop."""
+    def respond(self, line: bytes, blocks: list | None = None) -> tuple[dict | None, bool]:
+        """The response to one request line (None for a notification) and whether to stop.
+
+        ``blocks`` are the binary blocks that came after the line; the reply's own are
+        left in ``self.reply_blocks``.
+        """
+        self.blocks = blocks or []
+        self.reply_blocks = []
         try:
             message = json.loads(line)
         except (ValueError, UnicodeDecodeError) as e:
@@ -420,10 +469,35 @@ def _protocol_streams():
     return reader, writer
 
 
+def _block_lengths(line: bytes) -> list:
+    """The lengths of the blocks announced by a message line (its ``blocks`` member)."""
+    if b'"blocks"' not in line:
+        return []
+    try:
+        message = json.loads(line)
+    except (ValueError, UnicodeDecodeError):
+        return []
+    lengths = message.get("blocks") if isinstance(message, dict) else None
+    if isinstance(lengths, list) and all(isinstance(n, int) and n >= 0 for n in lengths):
+        return lengths
+    return []
+
+
+def _read_exactly(reader, count: int) -> bytes:
+    chunks, left = [], count
+    while left > 0:
+        chunk = reader.read(left)
+        if not chunk:
+            raise EOFError(f"input ended {left} bytes before the end of a binary block")
+        chunks.append(chunk)
+        left -= len(chunk)
+    return b"".join(chunks)
+
+
 def serve(name: str, version: str, supports: Mapping[str, list] | list | None,
           dtypes: list[str], handler: Callable | Mapping, *,
           parameters: Mapping[str, Mapping[str, list]] | None = None,
-          reader=None, writer=None) -> None:
+          reader=None, writer=None, binary: bool = True) -> None:
     """Answers requests until a ``shutdown`` notification or end of input.
 
     ``supports`` maps scheme names to operation names, e.g. ``{"rotary": ["encode",
@@ -431,9 +505,10 @@ def serve(name: str, version: str, supports: Mapping[str, list] | list | None,
     protocol's list of ``supports`` entries. ``dtypes`` lists what the kernel computes
     in, preferred first. ``parameters`` maps a scheme to the parameter values it
     accepts, e.g. ``{"rotary": {"pairing": ["half_split"]}}``. ``reader``/``writer``
-    (binary file objects) default to stdin/stdout.
+    (binary file objects) default to stdin/stdout. ``binary=False`` never declares
+    the binary framing (arrays stay base64 text).
     """
-    server = _Server(name, version, supports, dtypes, handler, parameters)
+    server = _Server(name, version, supports, dtypes, handler, parameters, binary)
     if reader is None or writer is None:
         default_reader, default_writer = _protocol_streams()
         reader = reader or default_reader
@@ -447,15 +522,28 @@ def serve(name: str, version: str, supports: Mapping[str, list] | list | None,
             return
         if not line.strip():
             continue
-        response, stop = server.respond(line)
+        try:
+            blocks = [_read_exactly(reader, n) for n in _block_lengths(line)]
+        except EOFError as e:
+            _log(str(e))
+            return
+        response, stop = server.respond(line, blocks)
         if response is not None:
+            reply_blocks = server.reply_blocks
+            if reply_blocks and "result" in response:
+                response = {**response, "blocks": [len(b) for b in reply_blocks]}
+            else:
+                reply_blocks = []
             try:
                 text = json.dumps(response, separators=(",", ":"), allow_nan=False)
             except ValueError as e:
+                reply_blocks = []
                 text = json.dumps(_error(response.get("id"), KERNEL_FAILED,
                                          f"result not serialisable: {e}"))
             try:
                 writer.write(text.encode("utf-8") + b"\n")
+                for block in reply_blocks:
+                    writer.write(block)
                 writer.flush()
             except BrokenPipeError:
                 return

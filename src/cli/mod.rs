@@ -500,7 +500,7 @@ fn check(args: CheckArgs) -> anyhow::Result<u8> {
     } else {
         args.case
             .iter()
-            .map(|p| posconform::vector::VectorFile::read(p).map(|v| v.case))
+            .map(|p| posconform::vector::VectorFile::read_case(p))
             .collect::<Result<Vec<_>, _>>()?
     };
     let fuzz_cases = args

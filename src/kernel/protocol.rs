@@ -12,7 +12,7 @@ use crate::case::{Arrays, Case};
 use crate::error::{Error, KernelErrorKind, Result};
 use crate::kernel::{Answer, Kernel, KernelInfo};
 use crate::math::precision::Dtype;
-use crate::tensor::{Tensor, WireArray};
+use crate::tensor::WireArray;
 
 /// The protocol version this build speaks.
 pub const PROTOCOL_VERSION: u64 = 1;
@@ -27,30 +27,127 @@ pub const METHOD_NOT_FOUND: i64 = -32601;
 /// JSON-RPC standard code: bad parameters.
 pub const INVALID_PARAMS: i64 = -32602;
 
+/// The framing a kernel declares in its handshake (`"framing": "binary"`) to move
+/// arrays as raw bytes after the message line instead of base64 text (docs/protocol.md,
+/// "Binary arrays"). The harness offers it in its handshake request.
+pub const BINARY_FRAMING: &str = "binary";
+
 /// A request line.
 pub fn request(id: u64, method: &str, params: Value) -> String {
     json!({"jsonrpc": "2.0", "id": id, "method": method, "params": params}).to_string()
 }
 
-/// The parameters of a `run` request.
-pub fn run_params(case: &Case, dtype: Dtype, inputs: &Arrays) -> Value {
-    let inputs: Map<String, Value> = inputs
-        .iter()
-        .map(|(n, t)| (n.clone(), t.to_json()))
-        .collect();
-    json!({"case": case, "dtype": dtype, "inputs": inputs})
+/// One message of the protocol: a JSON line and, under the binary framing, the blocks
+/// that follow it (their lengths are the line's `blocks` member).
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Message {
+    /// The JSON text, without its line feed.
+    pub line: String,
+    /// Raw blocks sent after the line, in order.
+    pub blocks: Vec<Vec<u8>>,
 }
 
-/// The parameters of a `dry_run` request: those of `run`, and the arrays to answer.
-pub fn dry_run_params(
+impl Message {
+    /// The bytes on the wire: the line, a line feed, then each block.
+    pub fn len(&self) -> usize {
+        self.line.len() + 1 + self.blocks.iter().map(Vec::len).sum::<usize>()
+    }
+
+    /// Whether the message is empty (never: a line feed is always sent).
+    pub fn is_empty(&self) -> bool {
+        false
+    }
+}
+
+/// Arrays as JSON array objects: base64 text, or under the binary framing `"block"`
+/// references whose bytes go to `blocks`.
+fn encode_arrays(arrays: &Arrays, blocks: Option<&mut Vec<Vec<u8>>>) -> Map<String, Value> {
+    match blocks {
+        None => arrays
+            .iter()
+            .map(|(n, t)| (n.clone(), t.to_json()))
+            .collect(),
+        Some(blocks) => arrays
+            .iter()
+            .map(|(n, t)| {
+                let (object, bytes) = t.to_block(blocks.len());
+                blocks.push(bytes);
+                (n.clone(), object)
+            })
+            .collect(),
+    }
+}
+
+/// `message` with a `blocks` member listing the lengths of `blocks` (none when empty),
+/// as one line.
+fn framed(mut message: Value, blocks: Vec<Vec<u8>>) -> Message {
+    if !blocks.is_empty() {
+        let lengths: Vec<usize> = blocks.iter().map(Vec::len).collect();
+        message["blocks"] = json!(lengths);
+    }
+    Message {
+        line: message.to_string(),
+        blocks,
+    }
+}
+
+/// The `run` request for `case`, its arrays as base64 text or, with `binary`, as
+/// blocks after the line.
+pub fn run_request(id: u64, case: &Case, dtype: Dtype, inputs: &Arrays, binary: bool) -> Message {
+    case_request(id, "run", case, dtype, inputs, None, binary)
+}
+
+/// A `run` request, or with `outputs` (the arrays to answer) a `dry_run` request, its
+/// arrays as base64 text or, with `binary`, as blocks after the line.
+pub fn case_request(
+    id: u64,
+    method: &str,
     case: &Case,
     dtype: Dtype,
     inputs: &Arrays,
-    outputs: &BTreeMap<String, crate::kernel::ArraySpec>,
-) -> Value {
-    let mut params = run_params(case, dtype, inputs);
-    params["outputs"] = json!(outputs);
+    outputs: Option<&BTreeMap<String, crate::kernel::ArraySpec>>,
+    binary: bool,
+) -> Message {
+    let mut blocks = Vec::new();
+    let inputs = encode_arrays(inputs, binary.then_some(&mut blocks));
+    let mut params = json!({"case": case, "dtype": dtype, "inputs": inputs});
+    if let Some(outputs) = outputs {
+        params["outputs"] = json!(outputs);
+    }
+    framed(
+        json!({"jsonrpc": "2.0", "id": id, "method": method, "params": params}),
+        blocks,
+    )
+}
+
+/// The lengths of the blocks that follow `line` (its top-level `blocks` member), or
+/// `None` when it has none or is not a JSON object.
+pub fn block_lengths(line: &[u8]) -> Option<Vec<u64>> {
+    #[derive(serde::Deserialize)]
+    struct Framing {
+        #[serde(default)]
+        blocks: Option<Vec<u64>>,
+    }
+    serde_json::from_slice::<Framing>(line).ok()?.blocks
+}
+
+/// Whether a handshake result declares the binary framing.
+pub fn declares_binary(result: &Value) -> bool {
+    result.get("framing").and_then(Value::as_str) == Some(BINARY_FRAMING)
+}
+
+/// Whether a handshake request offers the binary framing (`"framing"` lists it).
+pub fn offers_binary(params: &Value) -> bool {
     params
+        .get("framing")
+        .and_then(Value::as_array)
+        .is_some_and(|f| f.iter().any(|x| x.as_str() == Some(BINARY_FRAMING)))
+}
+
+/// The parameters of a `run` request (arrays as base64 text).
+pub fn run_params(case: &Case, dtype: Dtype, inputs: &Arrays) -> Value {
+    let inputs = encode_arrays(inputs, None);
+    json!({"case": case, "dtype": dtype, "inputs": inputs})
 }
 
 /// The handshake result a kernel sends.
@@ -219,7 +316,7 @@ struct RunResult {
     elapsed_ms: Option<Value>,
 }
 
-fn outputs_of(result: RunResult, who: &str) -> Result<Answer> {
+fn outputs_of(result: RunResult, blocks: &mut [Option<Vec<u8>>], who: &str) -> Result<Answer> {
     let malformed = |reason: String| Error::kernel(KernelErrorKind::MalformedResult, who, reason);
     let object = result
         .outputs
@@ -227,7 +324,7 @@ fn outputs_of(result: RunResult, who: &str) -> Result<Answer> {
     let mut outputs = Arrays::new();
     for (name, wire) in object {
         let tensor = wire
-            .into_tensor(&format!("kernel reply, field `outputs.{name}`"))
+            .into_tensor_from(blocks, &format!("kernel reply, field `outputs.{name}`"))
             .map_err(|e| malformed(format!("malformed reply: {e}")))?;
         outputs.insert(name, tensor);
     }
@@ -240,6 +337,11 @@ fn outputs_of(result: RunResult, who: &str) -> Result<Answer> {
 /// Parses a `run` result (the raw `result` text of a reply) into outputs; `who` names
 /// the kernel in errors.
 pub fn parse_run_result(result: &RawValue, who: &str) -> Result<Answer> {
+    parse_run_result_from(result, Vec::new(), who)
+}
+
+/// [`parse_run_result`] for a reply that came with binary blocks.
+pub fn parse_run_result_from(result: &RawValue, blocks: Vec<Vec<u8>>, who: &str) -> Result<Answer> {
     let parsed: RunResult = serde_json::from_str(result.get()).map_err(|e| {
         Error::kernel(
             KernelErrorKind::MalformedResult,
@@ -247,7 +349,8 @@ pub fn parse_run_result(result: &RawValue, who: &str) -> Result<Answer> {
             format!("malformed run result: {e}"),
         )
     })?;
-    outputs_of(parsed, who)
+    let mut blocks: Vec<Option<Vec<u8>>> = blocks.into_iter().map(Some).collect();
+    outputs_of(parsed, &mut blocks, who)
 }
 
 /// Parses a `run` result into outputs; `who` names the kernel in errors.
@@ -259,25 +362,27 @@ pub fn parse_outputs(result: &Value, who: &str) -> Result<Answer> {
             format!("malformed run result: {e}"),
         )
     })?;
-    outputs_of(parsed, who)
+    outputs_of(parsed, &mut [], who)
 }
 
-fn response(id: &Value, outcome: std::result::Result<Value, (i64, String)>) -> String {
+fn response(id: &Value, outcome: std::result::Result<Value, (i64, String)>) -> Value {
     match outcome {
-        Ok(result) => json!({"jsonrpc": "2.0", "id": id, "result": result}).to_string(),
+        Ok(result) => json!({"jsonrpc": "2.0", "id": id, "result": result}),
         Err((code, message)) => {
             json!({"jsonrpc": "2.0", "id": id, "error": {"code": code, "message": message}})
-                .to_string()
         }
     }
 }
 
 /// Serves `kernel` over the protocol: reads requests from `input`, writes one response
-/// line per request to `output`, returns on `shutdown` or end of input.
+/// line per request to `output`, returns on `shutdown` or end of input. When the
+/// harness offers the binary framing the handshake declares it, and arrays then move
+/// as blocks both ways.
 pub fn serve(kernel: &mut dyn Kernel, input: impl BufRead, mut output: impl Write) -> Result<()> {
     let io = |e| Error::io("write", std::path::Path::new("<stdout>"), e);
     let mut input = input;
     let mut bytes = Vec::new();
+    let mut binary = false;
     loop {
         bytes.clear();
         let read = input
@@ -288,6 +393,14 @@ pub fn serve(kernel: &mut dyn Kernel, input: impl BufRead, mut output: impl Writ
         }
         if bytes.iter().all(u8::is_ascii_whitespace) {
             continue;
+        }
+        let mut blocks = Vec::new();
+        for length in block_lengths(&bytes).unwrap_or_default() {
+            let mut block = vec![0u8; usize::try_from(length).unwrap_or(usize::MAX)];
+            input
+                .read_exact(&mut block)
+                .map_err(|e| Error::io("read", std::path::Path::new("<stdin>"), e))?;
+            blocks.push(Some(block));
         }
         let message: Value = match serde_json::from_slice(&bytes) {
             Ok(m) => m,
@@ -310,16 +423,35 @@ pub fn serve(kernel: &mut dyn Kernel, input: impl BufRead, mut output: impl Writ
             continue;
         };
         let params = message.get("params").cloned().unwrap_or(Value::Null);
+        let mut reply_blocks = Vec::new();
         let outcome = match method {
-            "handshake" => kernel
-                .describe()
-                .map(|info| handshake_result(&info))
-                .map_err(|e| (KERNEL_FAILED, e.to_string())),
-            "run" => serve_run(kernel, &params),
-            "dry_run" => serve_dry_run(&params),
+            "handshake" => {
+                binary = offers_binary(&params);
+                kernel
+                    .describe()
+                    .map(|info| {
+                        let mut result = handshake_result(&info);
+                        if binary {
+                            result["framing"] = json!(BINARY_FRAMING);
+                        }
+                        result
+                    })
+                    .map_err(|e| (KERNEL_FAILED, e.to_string()))
+            }
+            "run" => serve_run(
+                kernel,
+                &params,
+                &mut blocks,
+                binary.then_some(&mut reply_blocks),
+            ),
+            "dry_run" => serve_dry_run(&params, &mut blocks, binary.then_some(&mut reply_blocks)),
             other => Err((METHOD_NOT_FOUND, format!("unknown method `{other}`"))),
         };
-        writeln!(output, "{}", response(&id, outcome)).map_err(io)?;
+        let reply = framed(response(&id, outcome), reply_blocks);
+        writeln!(output, "{}", reply.line).map_err(io)?;
+        for block in &reply.blocks {
+            output.write_all(block).map_err(io)?;
+        }
         output.flush().map_err(io)?;
     }
     Ok(())
@@ -327,14 +459,18 @@ pub fn serve(kernel: &mut dyn Kernel, input: impl BufRead, mut output: impl Writ
 
 /// Answers a `dry_run`: reads the request as `run` does, then answers zeros of the
 /// requested dtypes and shapes without asking the kernel.
-fn serve_dry_run(params: &Value) -> std::result::Result<Value, (i64, String)> {
+fn serve_dry_run(
+    params: &Value,
+    blocks: &mut [Option<Vec<u8>>],
+    reply_blocks: Option<&mut Vec<Vec<u8>>>,
+) -> std::result::Result<Value, (i64, String)> {
     let invalid = |m: String| (INVALID_PARAMS, m);
-    read_run_params(params)?;
+    read_run_params(params, blocks)?;
     let requested = params
         .get("outputs")
         .and_then(Value::as_object)
         .ok_or_else(|| invalid("`outputs` must be an object of {dtype, shape}".into()))?;
-    let mut object = Map::new();
+    let mut zeros = Arrays::new();
     for (name, spec) in requested {
         let dtype: Dtype =
             serde_json::from_value(spec.get("dtype").cloned().unwrap_or(Value::Null))
@@ -344,15 +480,18 @@ fn serve_dry_run(params: &Value) -> std::result::Result<Value, (i64, String)> {
                 .map_err(|e| invalid(format!("`outputs.{name}.shape`: {e}")))?;
         crate::tensor::element_count(&shape, &format!("`outputs.{name}.shape`"))
             .map_err(|e| invalid(e.to_string()))?;
-        let zeros = ndarray::ArrayD::<f64>::zeros(shape);
-        object.insert(name.clone(), Tensor::from_f64(dtype, zeros).to_json());
+        let zero = ndarray::ArrayD::<f64>::zeros(shape);
+        zeros.insert(name.clone(), crate::tensor::Tensor::from_f64(dtype, zero));
     }
-    Ok(json!({ "outputs": object }))
+    Ok(json!({ "outputs": encode_arrays(&zeros, reply_blocks) }))
 }
 
 type RunParams = (Case, Dtype, Arrays);
 
-fn read_run_params(params: &Value) -> std::result::Result<RunParams, (i64, String)> {
+fn read_run_params(
+    params: &Value,
+    blocks: &mut [Option<Vec<u8>>],
+) -> std::result::Result<RunParams, (i64, String)> {
     let invalid = |m: String| (INVALID_PARAMS, m);
     let case: Case = serde_json::from_value(params.get("case").cloned().unwrap_or(Value::Null))
         .map_err(|e| invalid(format!("`case`: {e}")))?;
@@ -361,26 +500,33 @@ fn read_run_params(params: &Value) -> std::result::Result<RunParams, (i64, Strin
     let mut inputs = Arrays::new();
     if let Some(object) = params.get("inputs").and_then(Value::as_object) {
         for (name, v) in object {
-            let t = Tensor::from_json(v, &format!("inputs.{name}"))
-                .map_err(|e| invalid(e.to_string()))?;
+            let t = WireArray::deserialize(v)
+                .map_err(|e| e.to_string())
+                .and_then(|wire| {
+                    wire.into_tensor_from(blocks, &format!("inputs.{name}"))
+                        .map_err(|e| e.to_string())
+                })
+                .map_err(invalid)?;
             inputs.insert(name.clone(), t);
         }
     }
     Ok((case, dtype, inputs))
 }
 
-fn serve_run(kernel: &mut dyn Kernel, params: &Value) -> std::result::Result<Value, (i64, String)> {
-    let (case, dtype, inputs) = read_run_params(params)?;
+fn serve_run(
+    kernel: &mut dyn Kernel,
+    params: &Value,
+    blocks: &mut [Option<Vec<u8>>],
+    reply_blocks: Option<&mut Vec<Vec<u8>>>,
+) -> std::result::Result<Value, (i64, String)> {
+    let (case, dtype, inputs) = read_run_params(params, blocks)?;
     let started = std::time::Instant::now();
     match kernel.run(&case, dtype, &inputs) {
         Ok(Answer::Outputs {
             outputs,
             elapsed_ms,
         }) => {
-            let object: Map<String, Value> = outputs
-                .iter()
-                .map(|(n, t)| (n.clone(), t.to_json()))
-                .collect();
+            let object = encode_arrays(&outputs, reply_blocks);
             let elapsed = elapsed_ms.unwrap_or(started.elapsed().as_secs_f64() * 1e3);
             Ok(json!({"outputs": object, "elapsed_ms": elapsed}))
         }

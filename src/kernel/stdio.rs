@@ -24,7 +24,7 @@ use std::collections::VecDeque;
 use std::io::{BufRead, BufReader, Read, Write};
 use std::path::{Path, PathBuf};
 use std::process::{Child, ChildStdin, Command, ExitStatus, Stdio};
-use std::sync::atomic::{AtomicI32, AtomicUsize, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicI32, AtomicUsize, Ordering};
 use std::sync::mpsc::{self, Receiver, RecvTimeoutError, Sender, SyncSender};
 use std::sync::{Arc, Condvar, Mutex};
 use std::time::{Duration, Instant};
@@ -172,8 +172,10 @@ enum Event {
     Written(u64),
     /// Writing the request with this id failed (the kernel closed its stdin or exited).
     WriteFailed(u64, std::io::Error),
-    /// A stdout line, without its line feed.
-    Line(Vec<u8>),
+    /// A stdout line, without its line feed, and the binary blocks that followed it.
+    Line(Vec<u8>, Vec<Vec<u8>>),
+    /// Stdout ended in the middle of a message; how many of its bytes had arrived.
+    Cut(usize),
     /// A stdout line over the limit, dropped while it was read; its length.
     Oversized(usize),
     /// Stdout ended.
@@ -282,14 +284,17 @@ struct Log {
     problem: Option<String>,
 }
 
-/// A request for the writer thread: its id and its bytes.
-type Request = (u64, Vec<u8>);
+/// A request for the writer thread: its id and its bytes (the line, then any blocks).
+type Request = (u64, Vec<Vec<u8>>);
 
 fn spawn_writer(mut stdin: ChildStdin, events: SyncSender<Event>) -> Sender<Request> {
     let (requests, pending) = mpsc::channel::<Request>();
     std::thread::spawn(move || {
-        for (id, bytes) in pending {
-            let outcome = stdin.write_all(&bytes).and_then(|_| stdin.flush());
+        for (id, parts) in pending {
+            let outcome = parts
+                .iter()
+                .try_for_each(|part| stdin.write_all(part))
+                .and_then(|_| stdin.flush());
             let failed = outcome.is_err();
             let event = match outcome {
                 Ok(()) => Event::Written(id),
@@ -304,9 +309,46 @@ fn spawn_writer(mut stdin: ChildStdin, events: SyncSender<Event>) -> Sender<Requ
     requests
 }
 
+/// Reads the blocks announced by a line of the binary framing, within `room` bytes in
+/// all: `Ok(blocks)`, or `Err(event)` for a message over the limit (announced: nothing
+/// of the blocks is read) or cut short by the end of stdout.
+fn read_blocks(
+    reader: &mut impl Read,
+    lengths: &[u64],
+    line_len: usize,
+    room: usize,
+) -> std::result::Result<Vec<Vec<u8>>, Event> {
+    let total = lengths
+        .iter()
+        .try_fold(0u64, |a, &n| a.checked_add(n))
+        .and_then(|n| usize::try_from(n).ok());
+    if total.is_none_or(|n| n > room) {
+        let announced = total.map_or(usize::MAX, |n| n.saturating_add(line_len + 1));
+        return Err(Event::Oversized(announced));
+    }
+    let mut blocks = Vec::with_capacity(lengths.len());
+    let mut received = line_len + 1;
+    for &length in lengths {
+        let mut block = vec![0u8; length as usize];
+        let mut filled = 0;
+        while filled < block.len() {
+            match reader.read(&mut block[filled..]) {
+                Ok(0) => return Err(Event::Cut(received + filled)),
+                Ok(n) => filled += n,
+                Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+                Err(e) => return Err(Event::ReadFailed(e)),
+            }
+        }
+        received += filled;
+        blocks.push(block);
+    }
+    Ok(blocks)
+}
+
 fn spawn_stdout_reader(
     stdout: std::process::ChildStdout,
     limit: Arc<AtomicUsize>,
+    binary: Arc<AtomicBool>,
     events: SyncSender<Event>,
 ) {
     std::thread::spawn(move || {
@@ -343,7 +385,26 @@ fn spawn_stdout_reader(
                 let event = if dropped > 0 {
                     Event::Oversized(std::mem::take(&mut dropped))
                 } else {
-                    Event::Line(std::mem::take(&mut line))
+                    let line = std::mem::take(&mut line);
+                    let lengths = binary
+                        .load(Ordering::SeqCst)
+                        .then(|| protocol::block_lengths(&line))
+                        .flatten()
+                        .unwrap_or_default();
+                    if lengths.is_empty() {
+                        Event::Line(line, Vec::new())
+                    } else {
+                        let room = cap.saturating_sub(line.len());
+                        match read_blocks(&mut reader, &lengths, line.len(), room) {
+                            Ok(blocks) => Event::Line(line, blocks),
+                            Err(event) => {
+                                // The rest of this stdout is not read: the process is
+                                // given up.
+                                let _ = events.send(event);
+                                return;
+                            }
+                        }
+                    }
                 };
                 if events.send(event).is_err() {
                     return;
@@ -353,7 +414,15 @@ fn spawn_stdout_reader(
         if dropped > 0 {
             let _ = events.send(Event::Oversized(dropped));
         } else if !line.is_empty() {
-            let _ = events.send(Event::Line(line));
+            // A last line without its line feed still counts when it is complete JSON;
+            // otherwise the kernel stopped writing in the middle of it, which is said
+            // as such rather than as a reply that is not JSON.
+            let event = if serde_json::from_slice::<serde::de::IgnoredAny>(&line).is_ok() {
+                Event::Line(line, Vec::new())
+            } else {
+                Event::Cut(line.len())
+            };
+            let _ = events.send(event);
         }
         let _ = events.send(Event::Eof);
     });
@@ -455,6 +524,8 @@ struct Running {
     requests: Option<Sender<Request>>,
     events: Receiver<Event>,
     line_limit: Arc<AtomicUsize>,
+    /// Whether this process declared the binary framing in its handshake.
+    binary: Arc<AtomicBool>,
     shared: Arc<Shared>,
     exited: Option<ExitStatus>,
 }
@@ -519,10 +590,11 @@ pub fn split_command(command: &str) -> Result<Vec<String>> {
     Ok(argv)
 }
 
-/// What [`StdioKernel::exchange`] hands back: the reply line, and the stderr mark of
-/// the request (lines after it were printed while it was pending).
+/// What [`StdioKernel::exchange`] hands back: the reply line and its blocks, and the
+/// stderr mark of the request (lines after it were printed while it was pending).
 struct Exchanged {
     line: Vec<u8>,
+    blocks: Vec<Vec<u8>>,
     since: u64,
 }
 
@@ -553,6 +625,14 @@ impl StdioKernel {
     pub fn with_trace(mut self, path: &Path) -> Result<Self> {
         self.trace = Some(crate::files::create_streamed(path)?);
         Ok(self)
+    }
+
+    fn record_blocks(&mut self, direction: &str, blocks: &[Vec<u8>]) {
+        if self.trace.is_some() && !blocks.is_empty() {
+            let bytes: usize = blocks.iter().map(Vec::len).sum();
+            let note = format!("[{} binary blocks, {bytes} bytes]", blocks.len());
+            self.record(direction, note.as_bytes());
+        }
     }
 
     fn record(&mut self, direction: &str, line: &[u8]) {
@@ -684,12 +764,18 @@ impl StdioKernel {
         // not buffered here without limit.
         let (sender, events) = mpsc::sync_channel(EVENT_QUEUE);
         let line_limit = Arc::new(AtomicUsize::new(MAX_HANDSHAKE_LINE));
+        let binary = Arc::new(AtomicBool::new(false));
         let shared = Arc::new(Shared {
             tail: Mutex::new(Tail::default()),
             changed: Condvar::new(),
         });
         let requests = spawn_writer(stdin, sender.clone());
-        spawn_stdout_reader(stdout, Arc::clone(&line_limit), sender.clone());
+        spawn_stdout_reader(
+            stdout,
+            Arc::clone(&line_limit),
+            Arc::clone(&binary),
+            sender.clone(),
+        );
         spawn_stderr_reader(stderr, Arc::clone(&shared), self.log.clone());
         let child = Arc::new(Mutex::new(child));
         spawn_waiter(Arc::clone(&child), sender);
@@ -699,6 +785,7 @@ impl StdioKernel {
             requests: Some(requests),
             events,
             line_limit,
+            binary,
             shared,
             exited: None,
         });
@@ -711,12 +798,12 @@ impl StdioKernel {
         &mut self,
         method: &str,
         id: u64,
-        params: Value,
+        message: protocol::Message,
         limit: usize,
         timeout: Duration,
     ) -> Result<Exchanged> {
-        let line = protocol::request(id, method, params);
-        self.record("->", line.as_bytes());
+        self.record("->", message.line.as_bytes());
+        self.record_blocks("->", &message.blocks);
         let Some(running) = self.running.as_mut() else {
             return Err(Error::kernel(
                 KernelErrorKind::Exited,
@@ -731,13 +818,15 @@ impl StdioKernel {
             running.shared.count()
         };
         running.line_limit.store(limit, Ordering::SeqCst);
-        let size = line.len() + 1;
-        let mut bytes = line.into_bytes();
-        bytes.push(b'\n');
+        let size = message.len();
+        let mut line = message.line.into_bytes();
+        line.push(b'\n');
+        let mut parts = vec![line];
+        parts.extend(message.blocks);
         let sent = running
             .requests
             .as_ref()
-            .is_some_and(|r| r.send((id, bytes)).is_ok());
+            .is_some_and(|r| r.send((id, parts)).is_ok());
         if !sent {
             return Err(self.fail(
                 KernelErrorKind::Exited,
@@ -752,6 +841,7 @@ impl StdioKernel {
         let mut write_failed: Option<std::io::Error> = None;
         let mut stdout_ended = false;
         let mut read_failed: Option<std::io::Error> = None;
+        let mut cut: Option<usize> = None;
         // After the process ended (or stdout closed), what is left in the pipe arrives
         // at once; this bounds the wait for it.
         let mut drain_until: Option<Instant> = None;
@@ -783,22 +873,34 @@ impl StdioKernel {
                     write_failed = Some(e);
                     drain_until.get_or_insert(Instant::now() + DRAIN);
                 }
-                Ok(Event::Line(text)) => {
+                Ok(Event::Line(text, blocks)) => {
                     self.record("<-", &text);
+                    self.record_blocks("<-", &blocks);
                     if text.iter().all(u8::is_ascii_whitespace) {
                         continue;
                     }
-                    return Ok(Exchanged { line: text, since });
+                    return Ok(Exchanged {
+                        line: text,
+                        blocks,
+                        since,
+                    });
+                }
+                Ok(Event::Cut(received)) => {
+                    self.record(
+                        "<-",
+                        format!("[{received} bytes of a reply that never ended]").as_bytes(),
+                    );
+                    cut = Some(received);
                 }
                 Ok(Event::Oversized(length)) => {
                     self.record(
                         "<-",
-                        format!("[a line of {length} bytes, dropped: over the limit]").as_bytes(),
+                        format!("[a reply of {length} bytes, dropped: over the limit]").as_bytes(),
                     );
                     return Err(self.fail(
                         KernelErrorKind::Garbage,
                         format!(
-                            "answered `{method}` with a line of {length} bytes, over the limit of {limit} bytes for this request (the line was dropped unread)"
+                            "answered `{method}` with a reply of {length} bytes, over the limit of {limit} bytes for this request (dropped unread)"
                         ),
                         since,
                     ));
@@ -828,6 +930,9 @@ impl StdioKernel {
             Some(Err(e)) => Some(format!("status unknown: {e}")),
             None => None,
         };
+        let cut_note = cut.map_or(String::new(), |n| {
+            format!(" (after {n} bytes of a reply, before it ended)")
+        });
         let (kind, why) = match (status, write_failed, stdout_ended) {
             (Some(s), _, _) if !written => (
                 KernelErrorKind::Exited,
@@ -835,7 +940,7 @@ impl StdioKernel {
             ),
             (Some(s), _, _) => (
                 KernelErrorKind::Exited,
-                format!("exited ({s}) while answering `{method}`"),
+                format!("exited ({s}) while answering `{method}`{cut_note}"),
             ),
             (None, Some(e), _) => (
                 KernelErrorKind::Exited,
@@ -847,7 +952,7 @@ impl StdioKernel {
                     Some(e) => {
                         format!("reading its stdout failed while it answered `{method}`: {e}")
                     }
-                    None => format!("closed its stdout while answering `{method}`"),
+                    None => format!("closed its stdout while answering `{method}`{cut_note}"),
                 },
             ),
             (None, None, false) if !written => (
@@ -879,7 +984,7 @@ impl StdioKernel {
             let _ = writeln!(f, "-> {note}");
         }
         if let Some(requests) = r.requests.take() {
-            let _ = requests.send((u64::MAX, format!("{note}\n").into_bytes()));
+            let _ = requests.send((u64::MAX, vec![format!("{note}\n").into_bytes()]));
             // Dropping the sender ends the writer, which closes the kernel's stdin.
         }
         let deadline = Instant::now() + GRACE;
@@ -902,11 +1007,19 @@ impl Kernel for StdioKernel {
         }
         let id = self.next_id;
         self.next_id += 1;
-        let params = json!({"protocol": protocol::PROTOCOL_VERSION, "harness": format!("posconform {}", env!("CARGO_PKG_VERSION"))});
+        let params = json!({
+            "protocol": protocol::PROTOCOL_VERSION,
+            "harness": format!("posconform {}", env!("CARGO_PKG_VERSION")),
+            "framing": [protocol::BINARY_FRAMING],
+        });
+        let message = protocol::Message {
+            line: protocol::request(id, "handshake", params),
+            blocks: Vec::new(),
+        };
         let reply = self.exchange(
             "handshake",
             id,
-            params,
+            message,
             MAX_HANDSHAKE_LINE,
             self.startup_timeout,
         )?;
@@ -917,7 +1030,10 @@ impl Kernel for StdioKernel {
                     .map_err(|e| {
                         Error::kernel(KernelErrorKind::Handshake, &who, format!("handshake: {e}"))
                     })
-                    .and_then(|v| protocol::parse_handshake(&v, &who)),
+                    .and_then(|v| {
+                        let info = protocol::parse_handshake(&v, &who)?;
+                        Ok((info, protocol::declares_binary(&v)))
+                    }),
                 Reply::Error { code, message } => Err(Error::kernel(
                     KernelErrorKind::Handshake,
                     &who,
@@ -925,7 +1041,12 @@ impl Kernel for StdioKernel {
                 )),
             });
         match parsed {
-            Ok(info) => Ok(info),
+            Ok((info, binary)) => {
+                if let Some(r) = self.running.as_ref() {
+                    r.binary.store(binary, Ordering::SeqCst);
+                }
+                Ok(info)
+            }
             Err(e) => {
                 let kind = e.kernel_kind().unwrap_or(KernelErrorKind::Handshake);
                 let reason = match e {
@@ -938,7 +1059,7 @@ impl Kernel for StdioKernel {
     }
 
     fn run(&mut self, case: &Case, dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
-        self.answer("run", case, protocol::run_params(case, dtype, inputs))
+        self.answer("run", case, dtype, inputs, None)
     }
 
     fn restart(&mut self) -> Result<()> {
@@ -957,8 +1078,7 @@ impl Kernel for StdioKernel {
         inputs: &Arrays,
         outputs: &std::collections::BTreeMap<String, crate::kernel::ArraySpec>,
     ) -> Result<Option<Answer>> {
-        let params = protocol::dry_run_params(case, dtype, inputs, outputs);
-        match self.answer("dry_run", case, params) {
+        match self.answer("dry_run", case, dtype, inputs, Some(outputs)) {
             Ok(Answer::Outputs { outputs, .. }) => Ok(Some(Answer::Outputs {
                 outputs,
                 elapsed_ms: None,
@@ -974,17 +1094,39 @@ impl Kernel for StdioKernel {
 impl StdioKernel {
     /// Sends a `run` (or `dry_run`) request for `case` and reads the outputs from the
     /// reply.
-    fn answer(&mut self, method: &str, case: &Case, params: Value) -> Result<Answer> {
+    fn answer(
+        &mut self,
+        method: &str,
+        case: &Case,
+        dtype: Dtype,
+        inputs: &Arrays,
+        outputs: Option<&std::collections::BTreeMap<String, crate::kernel::ArraySpec>>,
+    ) -> Result<Answer> {
         if self.running.is_none() {
             self.start()?;
             self.describe()?;
         }
         let id = self.next_id;
         self.next_id += 1;
-        let reply = self.exchange(method, id, params, reply_limit(case), self.timeout)?;
+        let binary = self
+            .running
+            .as_ref()
+            .is_some_and(|r| r.binary.load(Ordering::SeqCst));
+        let reply = self.exchange(
+            method,
+            id,
+            protocol::case_request(id, method, case, dtype, inputs, outputs, binary),
+            reply_limit(case),
+            self.timeout,
+        )?;
         let who = self.who();
-        let parsed = protocol::parse_reply(&reply.line, id, method, &who).and_then(|r| match r {
-            Reply::Result(raw) => protocol::parse_run_result(raw, &who),
+        let Exchanged {
+            line,
+            blocks,
+            since,
+        } = reply;
+        let parsed = protocol::parse_reply(&line, id, method, &who).and_then(|r| match r {
+            Reply::Result(raw) => protocol::parse_run_result_from(raw, blocks, &who),
             Reply::Error {
                 code: UNSUPPORTED,
                 message,
@@ -998,9 +1140,9 @@ impl StdioKernel {
         match parsed {
             Ok(answer) => Ok(answer),
             Err(Error::Kernel { kind, reason, .. }) if kind.needs_restart() => {
-                Err(self.fail(kind, reason, reply.since))
+                Err(self.fail(kind, reason, since))
             }
-            Err(Error::Kernel { kind, reason, .. }) => Err(self.soft(kind, reason, reply.since)),
+            Err(Error::Kernel { kind, reason, .. }) => Err(self.soft(kind, reason, since)),
             Err(other) => Err(other),
         }
     }

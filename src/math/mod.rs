@@ -10,5 +10,4 @@ pub mod stream;
 
 pub use contract::{AngleScaling, Contract};
 pub use precision::{ulp_distance, Dtype};
-pub use product::with_portable_arithmetic;
 pub use stream::Stream;

@@ -13,12 +13,14 @@
 use std::path::PathBuf;
 use std::time::Duration;
 
+use crate::budget;
 use crate::case::{Arrays, Case};
-use crate::compare::{compare, CaseReport, CaseTime, CompareOptions, Verdict, Warning};
+use crate::compare::{
+    compare_with_budgets, CaseReport, CaseTime, CompareOptions, Verdict, Warning,
+};
 use crate::error::{KernelErrorKind, Result};
 use crate::kernel::{Answer, Kernel, KernelInfo};
 use crate::math::precision::Dtype;
-use crate::reference;
 use crate::report::{FuzzSummary, MinimalFailure, Report};
 
 use super::fuzz::fuzz_and_shrink;
@@ -103,15 +105,19 @@ pub fn run_case(
             )
         }
     };
-    let expected = match reference::expected(case, &inputs) {
-        Ok(e) => e,
-        Err(e) => {
-            return (
-                CaseReport::error(case, format!("reference failed: {e}")),
-                None,
-            )
-        }
-    };
+    // Expected outputs and the budgets of the dtype the kernel is judged in, in one
+    // pass of the reference; budgets for any other dtype are derived on demand.
+    let budget_dtype = options.budget_dtype.unwrap_or(dtype);
+    let (expected, budgets) =
+        match budget::expected_and_budgets(case, &inputs, budget_dtype, options.factor) {
+            Ok(e) => e,
+            Err(e) => {
+                return (
+                    CaseReport::error(case, format!("reference failed: {e}")),
+                    None,
+                )
+            }
+        };
     let sent: Arrays = inputs
         .iter()
         .map(|(n, t)| {
@@ -143,7 +149,19 @@ pub fn run_case(
                 declared: Some(dtype),
                 ..*options
             };
-            let mut report = match compare(case, &inputs, &expected, &outputs, &options) {
+            let mut ready = Some(budgets);
+            let mut source = |wanted: Dtype| match ready.take_if(|_| wanted == budget_dtype) {
+                Some(b) => Ok(b),
+                None => budget::budgets(case, &inputs, &expected, wanted, options.factor),
+            };
+            let mut report = match compare_with_budgets(
+                case,
+                &inputs,
+                &expected,
+                &outputs,
+                &options,
+                &mut source,
+            ) {
                 Ok(r) => r,
                 Err(e) => {
                     return (

@@ -211,7 +211,7 @@ fn random_case_where(
         let head_dim = 2 * range(stream, 1, 8);
         let far = stream.below(2) == 0;
         let query_start = if far {
-            range(stream, 100, 100_000) as i64
+            range(stream, 100, scheme.max_random_start()) as i64
         } else {
             range(stream, 0, 40) as i64
         };

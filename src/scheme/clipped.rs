@@ -440,10 +440,9 @@ impl SchemeModel for ClippedSpec {
             scale: Scale::Fixed(factor),
         };
         let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));
-        Ok(
-            scores(qa.view(), ka.view(), w.view(), &params)?.mapv(finite_or_zero)
-                * (gamma + contract.storage + 2.0 * contract.input),
-        )
+        let mut magnitude = scores(qa.view(), ka.view(), w.view(), &params)?;
+        magnitude.mapv_inplace(finite_or_zero);
+        Ok(magnitude * (gamma + contract.storage + 2.0 * contract.input))
     }
 
     fn encode_bounds(

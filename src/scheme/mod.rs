@@ -74,6 +74,11 @@ macro_rules! registry {
                 match self { $(Scheme::$variant => <$spec as SchemeKind>::MAX_RANDOM_HEADS,)* }
             }
 
+            /// The largest start position `p0` a random case of this scheme draws.
+            pub fn max_random_start(self) -> usize {
+                match self { $(Scheme::$variant => <$spec as SchemeKind>::MAX_RANDOM_START,)* }
+            }
+
             /// Random parameters for a random case of `shape`.
             pub fn random_spec(self, stream: &mut Stream, shape: &Shape<'_>) -> SchemeSpec {
                 match self {

@@ -288,6 +288,10 @@ pub trait SchemeKind: SchemeModel + Sized {
     /// non-power-of-two slope rule).
     const MAX_RANDOM_HEADS: usize = 3;
 
+    /// The largest start position `p0` a random case draws when it draws one far from
+    /// 0 (a learned table needs a row for every position up to the last one used).
+    const MAX_RANDOM_START: usize = 100_000;
+
     /// Random parameters for a random case of `shape` (docs/conventions.md, "Random
     /// cases", lists the distributions).
     fn random(stream: &mut Stream, shape: &Shape<'_>) -> Self;

@@ -25,7 +25,7 @@ use ndarray::{s, Array2, Array3, ArrayD, ArrayView1, ArrayView2, ArrayView3, Axi
 use crate::attention::{expect_per_head, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
 use crate::math::contract::{gamma_of, R64};
-use crate::math::product::{gemm, matmul};
+use crate::math::product::{gemm, gemm_packed, matmul, pack_columns};
 use crate::math::{Contract, Stream};
 use crate::scheme::model::{
     finite_or_zero, range, Inputs, PairPositions, Parameter, ParameterKind, SchemeKind, SchemeModel,
@@ -280,55 +280,91 @@ fn add_bias(q: ArrayView2<'_, f64>, bias: ArrayView1<'_, f64>) -> Array2<f64> {
 /// Visible entries equal [`scores_naive`] up to floating-point summation order;
 /// hidden entries are `-inf`.
 pub fn scores(inputs: &RelativeInputs<'_>, params: &RelativeParams) -> Result<Array3<f64>> {
-    let Checked {
-        window,
-        heads,
-        scale,
-        ..
-    } = check(inputs, params)?;
-    let (l, key_len, m) = (window.query_len(), window.key_len(), window.memory_len());
-    // Zeroed allocation maps pages lazily; every entry is then written exactly once:
-    // by the product (visible part of each block) or by the -inf fill (hidden tail).
-    let mut out = Array3::zeros((heads, l, key_len));
-    let mut bd = Array2::zeros((QUERY_BLOCK.min(l), key_len));
-    for h in 0..heads {
-        let q = inputs.q.index_axis(Axis(0), h);
-        let k = inputs.k.index_axis(Axis(0), h);
-        let qu = add_bias(q, inputs.u.row(h));
-        let qv = add_bias(q, inputs.v.row(h));
-        let r_desc = descending(inputs.r.index_axis(Axis(0), h), key_len, params.clamp_len);
-        let mut head = out.index_axis_mut(Axis(0), h);
-        // Query rows in blocks: rows i0..i1 see keys 0..M+i1 at most, and their shifted
-        // BD reads start at column L-i1, so each block multiplies only the M+i1
-        // columns it can use (3/4 of the full products when M = L).
-        for i0 in (0..l).step_by(QUERY_BLOCK) {
-            let i1 = (i0 + QUERY_BLOCK).min(l);
-            let width = m + i1;
-            let mut bd = bd.slice_mut(s![..i1 - i0, ..width]);
-            let (qu, qv) = (qu.slice(s![i0..i1, ..]), qv.slice(s![i0..i1, ..]));
-            gemm(
-                scale,
-                &qu,
-                &k.slice(s![..width, ..]).t(),
-                0.0,
-                &mut head.slice_mut(s![i0..i1, ..width]),
-            );
-            let r_block = r_desc.slice(s![l - i1.., ..]);
-            gemm(scale, &qv, &r_block.t(), 0.0, &mut bd);
-            // Shift as a remap (see `rel_shift`): y[i][j] = BD[i][L-1-i+j] for j <= M+i.
-            // `bd` starts at column L-i1, so BD[i][L-1-i+j] is bd[i-i0][i1-1-i+j].
-            for i in i0..i1 {
-                let visible = m + i + 1;
-                let mut row = head.row_mut(i);
-                let shifted = bd.slice(s![i - i0, i1 - 1 - i..i1 - 1 - i + visible]);
-                Zip::from(row.slice_mut(s![..visible]))
-                    .and(&shifted)
-                    .for_each(|a, &b| *a += b);
-                row.slice_mut(s![visible..]).fill(f64::NEG_INFINITY);
-            }
-        }
-    }
+    let checked = check(inputs, params)?;
+    let window = checked.window;
+    // Zeroed allocation maps pages lazily; every entry is then written exactly once.
+    let mut out = Array3::zeros((checked.heads, window.query_len(), window.key_len()));
+    fill_scores(inputs, params, &checked, &mut out);
     Ok(out)
+}
+
+/// [`scores`] written into `out` (`[H, L, M+L]`), so repeated calls reuse one buffer
+/// instead of faulting in a fresh one each time. Every entry of `out` is overwritten.
+pub fn scores_into(
+    inputs: &RelativeInputs<'_>,
+    params: &RelativeParams,
+    out: &mut Array3<f64>,
+) -> Result<()> {
+    let checked = check(inputs, params)?;
+    let window = checked.window;
+    expect_shape(
+        "out",
+        &["H", "L", "M+L"],
+        &[checked.heads, window.query_len(), window.key_len()],
+        out.shape(),
+    )?;
+    fill_scores(inputs, params, &checked, out);
+    Ok(())
+}
+
+/// The work of [`scores`]: heads and blocks of query rows run in parallel (each entry
+/// is computed the same way whichever thread computes it); each head packs `kᵀ` and
+/// the descending `rᵀ` once for all its blocks.
+fn fill_scores(
+    inputs: &RelativeInputs<'_>,
+    params: &RelativeParams,
+    checked: &Checked,
+    out: &mut Array3<f64>,
+) {
+    use rayon::prelude::*;
+    let window = checked.window;
+    let (l, key_len, m) = (window.query_len(), window.key_len(), window.memory_len());
+    let scale = checked.scale;
+    out.axis_iter_mut(Axis(0))
+        .into_par_iter()
+        .enumerate()
+        .for_each(|(h, mut head)| {
+            let q = inputs.q.index_axis(Axis(0), h);
+            let qu = add_bias(q, inputs.u.row(h));
+            let qv = add_bias(q, inputs.v.row(h));
+            let r_desc = descending(inputs.r.index_axis(Axis(0), h), key_len, params.clamp_len);
+            let keys = pack_columns(&inputs.k.index_axis(Axis(0), h).t());
+            let relative = pack_columns(&r_desc.t());
+            // Query rows in blocks: rows i0..i1 see keys 0..M+i1 at most, and their
+            // shifted BD reads start at column L-i1, so each block multiplies only the
+            // M+i1 columns it can use (3/4 of the full products when M = L).
+            head.axis_chunks_iter_mut(Axis(0), QUERY_BLOCK)
+                .into_par_iter()
+                .enumerate()
+                .for_each(|(block, mut rows)| {
+                    let i0 = block * QUERY_BLOCK;
+                    let i1 = i0 + rows.nrows();
+                    let width = m + i1;
+                    let (qu, qv) = (qu.slice(s![i0..i1, ..]), qv.slice(s![i0..i1, ..]));
+                    gemm_packed(
+                        scale,
+                        &qu,
+                        &keys,
+                        0,
+                        0.0,
+                        &mut rows.slice_mut(s![.., ..width]),
+                    );
+                    let mut bd = Array2::zeros((i1 - i0, width));
+                    gemm_packed(scale, &qv, &relative, l - i1, 0.0, &mut bd);
+                    // Shift as a remap (see `rel_shift`): y[i][j] = BD[i][L-1-i+j] for
+                    // j <= M+i. `bd` starts at column L-i1, so BD[i][L-1-i+j] is
+                    // bd[i-i0][i1-1-i+j].
+                    for i in i0..i1 {
+                        let visible = m + i + 1;
+                        let mut row = rows.row_mut(i - i0);
+                        let shifted = bd.slice(s![i - i0, i1 - 1 - i..i1 - 1 - i + visible]);
+                        Zip::from(row.slice_mut(s![..visible]))
+                            .and(&shifted)
+                            .for_each(|a, &b| *a += b);
+                        row.slice_mut(s![visible..]).fill(f64::NEG_INFINITY);
+                    }
+                });
+        });
 }
 
 /// Query rows per block in [`scores`]: large enough for efficient matrix products,
@@ -594,7 +630,8 @@ impl SchemeModel for XlRelativeSpec {
         };
         // Σ(|q|+|u|)|k| + Σ(|q|+|v|)|r_Δ|: the four dot products (or q+u and q+v formed
         // first) and their sum add 3u_s; the inputs' rounding 2·input.
-        let magnitude = scores(&magnitude_inputs, &params)?.mapv(finite_or_zero);
+        let mut magnitude = scores(&magnitude_inputs, &params)?;
+        magnitude.mapv_inplace(finite_or_zero);
         Ok(magnitude * (gamma + 3.0 * contract.storage + 2.0 * contract.input + 4.0 * R64))
     }
 
