@@ -136,17 +136,28 @@ pub fn plant(
     let mut kernel = PlantedKernel::new(fault);
     let outcome = check(&mut kernel, cases, options, &mut |_, _, _| {})?;
     let report = &outcome.report;
+    // Suite cases by id; random cases as the report lists them (shrinking steps and
+    // the re-run of a minimal case are neither).
+    let in_suite = |id: &str| cases.iter().any(|c| c.id == id);
     let failed = |random: bool| {
         report
             .cases
             .iter()
-            .filter(|c| c.verdict == Verdict::Fail && report.random.contains(&c.case) == random)
+            .filter(|c| c.verdict == Verdict::Fail)
+            .filter(|c| {
+                if random {
+                    let step = c.case.contains(".shrink") || c.case.ends_with(".minimal");
+                    report.random.contains(&c.case) && !step
+                } else {
+                    in_suite(&c.case)
+                }
+            })
             .count()
     };
     let detected_by = report
         .cases
         .iter()
-        .find(|c| c.verdict == Verdict::Fail && !report.random.contains(&c.case))
+        .find(|c| c.verdict == Verdict::Fail && in_suite(&c.case))
         .map(|c| c.case.clone())
         .or_else(|| outcome.minimal.first().map(|m| m.case.id.clone()));
     let named = report
