@@ -4,7 +4,7 @@
 //! captioning model with Transformer-XL relative attention and segment memory, to their
 //! own runtime, Tern. Their fused attention kernel builds the causal mask the way a
 //! plain decoder does, `j <= i`, instead of offsetting it by the memory length,
-//! `j <= M + i` (docs/faults.md, fault class 8). On the first segment there is no memory,
+//! `j <= M + i` (docs/faults.md, `mask-not-offset-by-memory`). On the first segment there is no memory,
 //! `M = 0`, and the two masks agree: every single-segment test they wrote passes. From
 //! the second segment on, each query sees only the oldest `i + 1` memory rows and none
 //! of its own segment. The model still trains; it is just worse.

@@ -1,5 +1,5 @@
 //! Precision study: rotary angles formed in f16 or bf16 versus f32 (the phase error of
-//! angles grows with position, docs/budgets.md; fault class 19 of docs/faults.md).
+//! angles grows with position, docs/budgets.md; `angles-in-half-precision` in docs/faults.md).
 //!
 //! "Formed in dtype T" means exactly this, for position `p` and `θ_j = 10000^(-2j/d)`:
 //! 1. `p` is rounded to T;

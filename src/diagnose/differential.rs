@@ -227,6 +227,14 @@ impl<'a> Tolerances<'a> {
             // The reference's largest relative tolerance along the row, applied to the
             // variant's values: a softmax row with large scores allows a larger
             // relative error wherever the variant moves the probability.
+            // Only values within a factor 100 of the row's largest count: the bound of a
+            // tiny value is mostly its absolute floor, not a relative error. Capped at
+            // 10%, where a variant would stop being told apart from its neighbours.
+            let row_max = chunk
+                .iter()
+                .enumerate()
+                .filter(|&(c, w)| !hidden(r * row + c) && w.is_finite())
+                .fold(0.0f64, |m, (_, w)| m.max(w.abs()));
             let mut rel = 0.0f64;
             let mut largest = 0.0f64;
             for (c, w) in chunk.iter().enumerate() {
@@ -236,11 +244,18 @@ impl<'a> Tolerances<'a> {
                 }
                 let bound = budget.analytic_at(n);
                 largest = largest.max(bound.max(allowance));
-                if w.abs() > allowance {
+                if w.abs() > allowance && w.abs() >= 0.01 * row_max {
                     rel = rel.max(bound / w.abs());
                 }
             }
-            relative.push(slack.max(rel.min(0.01)));
+            // A fully masked row has no tolerance of its own to borrow: a variant that
+            // uncovers keys there is matched at the cap (the reference's row is all
+            // zeros, so anything the kernel shows there is the variant's or nobody's).
+            let visible = (0..chunk.len()).any(|c| !hidden(r * row + c) && chunk[c].is_finite());
+            if !visible {
+                rel = 0.1;
+            }
+            relative.push(slack.max(rel.min(0.1)));
             row_largest.push(largest);
         }
         Tolerances {
@@ -353,6 +368,32 @@ fn agreement(
     Some(total)
 }
 
+/// Whether the comparison itself fails a kernel answering `variant` (in the evidence's
+/// dtype) on this case: the question a passing case asks of a fault, answered by the
+/// same rules the kernel passed by (a finite sentinel carrying zero probability is a
+/// valid mask, for one).
+fn comparison_fails(evidence: &CaseEvidence<'_>, variant: Outputs) -> bool {
+    let got = crate::kernel::outputs_in(variant, evidence.dtype);
+    let options = crate::compare::CompareOptions {
+        factor: evidence.budgets.values().next().map_or(2.0, |b| b.factor),
+        budget_dtype: None,
+        declared: Some(evidence.dtype),
+        diagnose: false,
+    };
+    let mut source = |_: Dtype| Ok(evidence.budgets.clone());
+    crate::compare::compare_with_budgets(
+        evidence.case,
+        evidence.inputs,
+        evidence.expected,
+        &got,
+        &options,
+        &mut source,
+    )
+    .map_or(true, |report| {
+        report.verdict != crate::compare::Verdict::Pass
+    })
+}
+
 /// Whether a variant's outputs differ from the reference anywhere beyond budget.
 fn changes_case(evidence: &CaseEvidence<'_>, variant: &Outputs) -> bool {
     evidence.expected.iter().any(|(output, want)| {
@@ -447,6 +488,45 @@ fn outputs_of(got: &Arrays) -> BTreeMap<Output, ArrayD<f64>> {
         .collect()
 }
 
+/// Whether `got` is within the budgets a correct kernel computing in `dtype` gets on
+/// this case (what a kernel that silently computes in `dtype` must satisfy).
+fn within_budgets_of(
+    evidence: &CaseEvidence<'_>,
+    got: &BTreeMap<Output, ArrayD<f64>>,
+    dtype: Dtype,
+) -> bool {
+    let factor = evidence.budgets.values().next().map_or(1.0, |b| b.factor);
+    let Ok(budgets) = crate::budget::budgets(
+        evidence.case,
+        evidence.inputs,
+        evidence.expected,
+        dtype,
+        factor,
+    ) else {
+        return false;
+    };
+    let narrow = CaseEvidence {
+        budgets: &budgets,
+        dtype,
+        ..*evidence
+    };
+    evidence.expected.iter().all(|(output, want)| {
+        let (Some(g), Some(budget)) = (got.get(output), budgets.get(output)) else {
+            return false;
+        };
+        if g.shape() != want.shape() {
+            return false;
+        }
+        let tolerances = Tolerances::new(&narrow, *output, want, budget);
+        let (want_s, g_s) = (want.as_standard_layout(), g.as_standard_layout());
+        want_s
+            .iter()
+            .zip(g_s.iter())
+            .enumerate()
+            .all(|(n, (&w, &g))| agrees(w, g, tolerances.reference(n)))
+    })
+}
+
 /// Diagnoses one case the kernel failed: which catalogued faults reproduce `got`.
 pub fn diagnose_case(evidence: &CaseEvidence<'_>, got: &Arrays) -> CaseDiagnosis {
     let got = outputs_of(got);
@@ -470,7 +550,12 @@ pub fn diagnose_case(evidence: &CaseEvidence<'_>, got: &Arrays) -> CaseDiagnosis
         let Some(a) = agreement(evidence, &got, &outputs) else {
             continue;
         };
-        let c = candidate(fault, &a);
+        let mut c = candidate(fault, &a);
+        if c.explains && !c.reproduced.eq(&1.0) {
+            if let Some(narrow) = fault.variant.computes_in(evidence.case, evidence.dtype) {
+                c.explains = within_budgets_of(evidence, &got, narrow);
+            }
+        }
         if !c.explains && c.reproduced > 0.0 && fault.matching == Matching::Values {
             partial.push(fault);
         }
@@ -568,12 +653,34 @@ pub struct RunDiagnosis {
 }
 
 impl RunDiagnosis {
-    /// The best candidate when it explains every diagnosed failure and no passing
-    /// case contradicts it.
+    /// Every candidate that explains every diagnosed failure with no passing case
+    /// against it.
+    pub fn complete(&self) -> Vec<&RunCandidate> {
+        self.ranked
+            .iter()
+            .filter(|c| {
+                c.misses.is_empty() && c.contradicted_by.is_empty() && !c.explains.is_empty()
+            })
+            .collect()
+    }
+
+    /// The one candidate that explains every diagnosed failure with no passing case
+    /// against it; `None` when there is none, or more than one (see [`Self::tied`]).
     pub fn conclusive(&self) -> Option<&RunCandidate> {
-        self.ranked.first().filter(|c| {
-            c.misses.is_empty() && c.contradicted_by.is_empty() && !c.explains.is_empty()
-        })
+        match self.complete().as_slice() {
+            [only] => Some(only),
+            _ => None,
+        }
+    }
+
+    /// Two or more faults that each explain every diagnosed failure with no passing
+    /// case against them: the evidence cannot tell them apart (empty otherwise).
+    pub fn tied(&self) -> Vec<&'static str> {
+        let complete = self.complete();
+        if complete.len() < 2 {
+            return Vec::new();
+        }
+        complete.iter().map(|c| c.fault).collect()
     }
 }
 
@@ -639,7 +746,7 @@ impl RunDiagnosis {
                 evidence.dtype,
                 fault.variant,
             ) {
-                if changes_case(evidence, &outputs) {
+                if comparison_fails(evidence, outputs) {
                     candidate.contradicted_by.push(evidence.case.id.clone());
                 }
             }

@@ -16,6 +16,7 @@ mod example;
 mod faults;
 
 use crate::case::Case;
+use crate::math::Dtype;
 use crate::variant::Deviation;
 
 pub use differential::{
@@ -53,6 +54,14 @@ pub enum Matching {
 pub trait FaultVariant: Deviation {
     /// Whether the mistake can show on `case` at all (its scheme and operation).
     fn applies(&self, case: &Case) -> bool;
+
+    /// For a precision fault that makes a kernel of `dtype` compute in a narrower
+    /// dtype: that dtype. A kernel with this fault is a correct kernel of that dtype,
+    /// so its outputs are within that dtype's budgets; outputs outside them are not
+    /// this fault, whatever the size of their error.
+    fn computes_in(&self, _case: &Case, _dtype: Dtype) -> Option<Dtype> {
+        None
+    }
 }
 
 /// One catalogued mistake.

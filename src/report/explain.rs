@@ -210,12 +210,15 @@ is concerned and differ only in what a case pins down."
         s,
         "- **Values**: every element of every output agrees with the variant within the \
 case's tolerance, widened to the variant's magnitude (the reference's relative \
-tolerance along the same row, and the kernel dtype's rounding of a reduction); masked \
+tolerance along the same row, up to 10%, taken over the values within a factor 100 \
+of the row's largest, and the kernel dtype's rounding of a reduction); masked \
 probabilities must be exactly 0 as in the comparison itself.\n\
 - **Error size** (precision mistakes): every kernel rounds differently, so the error \
 must instead have the variant's size (within a factor of 4 of its largest error), \
 spread over as many elements (within a factor of 2), and grow where the variant's \
-grows (correlation of the two error sizes at least 0.5).\n\
+grows (correlation of the two error sizes at least 0.5); a kernel that computes in a \
+narrower dtype is a correct kernel of that dtype, so its outputs must also be within \
+the budgets of that dtype.\n\
 - A variant that changes nothing on a case (within its budget) is not a candidate \
 there; when no single fault explains a case, pairs of the closest partial matches are \
 tried together."
@@ -258,7 +261,8 @@ tried together."
 (stages rounded to the case's dtype, angles in f32), then checked like any kernel: the \
 core suite plus the fixed fuzz budget below. *Caught by* is the first suite case that \
 failed (or the shrunk random case); *named* is the run's best candidate, and *conclusive* \
-whether it explains every diagnosed failure with no passing case against it. Produced \
+whether it alone (no tie) explains every diagnosed failure with no passing case against \
+it. Produced \
 by `{command}`.\n"
     );
     let _ = writeln!(s, "| fault | caught by | failing suite cases | failing random cases | named | top-1 | conclusive |");
@@ -293,9 +297,10 @@ conclusive.",
         s,
         "\nThe planted kernels are the variants themselves, so this table measures the \
 suite's power and the diagnosis's ability to tell the catalogued faults apart; it does \
-not show that a variant matches how a real kernel makes the mistake. \
-tests/diagnosis checks the variants against independently written faulty kernels for \
-that."
+not show that a variant matches how a real kernel makes the mistake. For that, \
+tests/zoo_bugs runs kernels with one mistake each, written from the conventions alone \
+without the catalogue's code, and scores how often the report names the mistake and \
+whether it ever misleads."
     );
     s
 }

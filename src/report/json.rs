@@ -6,7 +6,7 @@
 //! ```json
 //! {
 //!   "format": "posconform.report",
-//!   "version": 1,
+//!   "version": 2,
 //!   "mode": "verify",
 //!   "subject": "vectors/core",
 //!   "exit_code": 1,
@@ -18,7 +18,7 @@
 //!       "id": "xl_relative.scores.short_memory",
 //!       "scheme": "xl_relative",
 //!       "operation": "scores",
-//!       "faults": [1, 2],
+//!       "faults": ["rel-shift-off-by-one", "memory-keys-masked"],
 //!       "memory_len": 4,
 //!       "query_len": 9,
 //!       "random": false,
@@ -36,11 +36,35 @@
 //!           "masking": { "kind": "negative_infinity" },
 //!           "patterns": [{ "kind": "memory_columns_only" }]
 //!         }
-//!       ]
+//!       ],
+//!       "diagnosis": {
+//!         "finding": { "kind": "explained", "faults": ["memory-keys-masked"] },
+//!         "tried": 23,
+//!         "candidates": [{ "fault": "memory-keys-masked", "explains": true,
+//!                          "reproduced": 1.0, "contradicted": 0.0, "distance": 0.0 }]
+//!       }
 //!     }
-//!   ]
+//!   ],
+//!   "diagnosis": {
+//!     "conclusive": "memory-keys-masked", "tied": [], "diagnosed": 1,
+//!     "ranked": [{ "fault": "memory-keys-masked", "explains": ["xl_relative.scores.short_memory"],
+//!                  "misses": [], "contradicted_by": [] }]
+//!   }
 //! }
 //! ```
+//!
+//! Version 2 (from version 1): `faults` lists fault ids (words, `posconform explain ID`)
+//! instead of numbers; `diagnosis` blocks were added, per case (failing cases that were
+//! diagnosed; absent otherwise) and per run (absent when no failing case was diagnosed).
+//! A case's `finding.kind` is `explained` (`faults`: each reproduces every element
+//! alone), `combined` (`faults`: two that reproduce it together), `partial` (`faults`:
+//! the closest, none complete) or `unexplained`; candidates are ranked best first, with
+//! `reproduced` the share of over-budget elements the fault reproduces, `contradicted`
+//! the share of within-budget elements it gets wrong, `distance` how far the kernel is
+//! from it relative to the reference. The run's `conclusive` is the one fault that
+//! explains every diagnosed failing case with no passing case against it (`null`
+//! otherwise); `tied` lists the faults when several do equally (the evidence cannot
+//! tell them apart). docs/faults.md says how a fault is matched.
 //!
 //! `never_exercised` lists what no compared case covered in a `check` run (schemes,
 //! operations, parameter values, dtypes), each marked whether the kernel declared it
@@ -347,6 +371,7 @@ struct CandidateDocument {
 #[derive(Serialize)]
 struct RunDiagnosisDocument<'a> {
     conclusive: Option<&'static str>,
+    tied: Vec<&'static str>,
     diagnosed: usize,
     ranked: &'a [crate::diagnose::RunCandidate],
 }
@@ -355,6 +380,7 @@ impl<'a> From<&'a crate::diagnose::RunDiagnosis> for RunDiagnosisDocument<'a> {
     fn from(d: &'a crate::diagnose::RunDiagnosis) -> Self {
         RunDiagnosisDocument {
             conclusive: d.conclusive().map(|c| c.fault),
+            tied: d.tied(),
             diagnosed: d.diagnosed,
             ranked: &d.ranked,
         }

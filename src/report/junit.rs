@@ -72,12 +72,18 @@ pub fn render(report: &Report) -> String {
         "      <property name=\"exit_code\" value=\"{}\"/>",
         report.exit_code()
     );
-    if let Some(best) = report.diagnosis.as_ref().and_then(|d| d.conclusive()) {
-        let _ = writeln!(
-            xml,
-            "      <property name=\"diagnosis\" value=\"{}\"/>",
-            escape(best.fault)
-        );
+    if let Some(d) = &report.diagnosis {
+        let named = match d.conclusive() {
+            Some(best) => best.fault.to_string(),
+            None => d.tied().join(" or "),
+        };
+        if !named.is_empty() {
+            let _ = writeln!(
+                xml,
+                "      <property name=\"diagnosis\" value=\"{}\"/>",
+                escape(&named)
+            );
+        }
     }
     let _ = writeln!(xml, "    </properties>");
     for case in &report.cases {

@@ -6,7 +6,7 @@ use std::fmt::Write as _;
 
 use crate::case::{OperationKind, Output};
 use crate::compare::{CaseReport, Criterion, Masking, OutputReport, Pattern, Verdict};
-use crate::diagnose::{self, FaultKind, Finding};
+use crate::diagnose::{self, FaultKind, Finding, Matching};
 use crate::report::{printable, Report};
 
 /// Each line of `text` made printable (kernel messages, stderr lines).
@@ -579,13 +579,20 @@ fn case_diagnosis(s: &mut String, case: &CaseReport, indent: &str) {
         Finding::Explained { faults } => {
             let first = faults.first().and_then(|id| diagnose::fault(id));
             if let (1, Some(f)) = (faults.len(), first) {
-                let line = match f.kind {
-                    FaultKind::Bug => format!(
+                let line = match (f.kind, f.matching) {
+                    (FaultKind::Bug, Matching::ErrorSize) => format!(
+                        "the errors are consistent with `{}`: they have the size and spread of \
+                         its rounding, and the outputs are within the budgets of a correct kernel \
+                         of that precision ({})",
+                        f.id,
+                        diagnose::explain_command(f.id)
+                    ),
+                    (FaultKind::Bug, Matching::Values) => format!(
                         "`{}` reproduces every output element within budget ({})",
                         f.id,
                         diagnose::explain_command(f.id)
                     ),
-                    FaultKind::Convention => format!(
+                    (FaultKind::Convention, _) => format!(
                         "matches `{}`, an equivalent convention rather than a broken model ({})",
                         f.id,
                         diagnose::explain_command(f.id)
@@ -598,10 +605,17 @@ fn case_diagnosis(s: &mut String, case: &CaseReport, indent: &str) {
                     &format!("{indent}diagnosis:"),
                     &more,
                     &format!(
-                        "{} each reproduce every output element within budget; this case cannot \
-                         tell them apart (the run's diagnosis weighs every case). Details: \
-                         posconform explain ID",
-                        quoted(faults)
+                        "{} each match these outputs{}; this case cannot tell them apart (the \
+                         run's diagnosis weighs every case). Details: posconform explain ID",
+                        quoted(faults),
+                        if faults.iter().any(|id| {
+                            diagnose::fault(id).is_some_and(|f| f.matching == Matching::ErrorSize)
+                        }) {
+                            " (precision faults by the size of the error, the others element by \
+                             element)"
+                        } else {
+                            " element by element within budget"
+                        }
                     ),
                 );
             }
@@ -699,6 +713,33 @@ fn run_diagnosis(s: &mut String, report: &Report) {
         wrapped(s, "    mistake:", "      ", f.mistake);
         wrapped(s, "    fix:", "      ", f.fix);
         let _ = writeln!(s, "    details: {}", diagnose::explain_command(f.id));
+        return;
+    }
+    let tied = d.tied();
+    if !tied.is_empty() {
+        wrapped(
+            s,
+            "  ",
+            "  ",
+            &format!(
+                "{} catalogued faults each reproduce {} diagnosed failing {}, and no case \
+                 that passed tells them apart; the bug is likely one of them:",
+                tied.len(),
+                if d.diagnosed == 1 {
+                    "the".to_string()
+                } else {
+                    format!("all {}", d.diagnosed)
+                },
+                cases(d.diagnosed)
+            ),
+        );
+        for id in tied {
+            let Some(f) = diagnose::fault(id) else {
+                continue;
+            };
+            wrapped(s, &format!("  - `{id}`:"), "      ", f.mistake);
+            let _ = writeln!(s, "      details: {}", diagnose::explain_command(id));
+        }
         return;
     }
     if d.ranked.is_empty() {

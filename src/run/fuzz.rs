@@ -246,6 +246,13 @@ fn random_case_where(
             operation: &operation,
         };
         let spec = scheme.random_spec(stream, &shape);
+        let dtype = if floats.is_empty() {
+            Dtype::F64
+        } else {
+            pick(stream, &floats)
+        };
+        let hidden_keys = random_hidden_keys(stream, &operation, memory_len, query_len);
+        let input_scale = random_input_scale(stream, &operation, dtype);
         let case = Case {
             id: format!("fuzz.{n:04}.{}.{}", scheme.name(), operation.name()),
             scheme: spec,
@@ -255,13 +262,9 @@ fn random_case_where(
             memory_len,
             head_dim,
             query_start,
-            hidden_keys: Vec::new(),
-            input_scale: 1.0,
-            dtype: if floats.is_empty() {
-                Dtype::F64
-            } else {
-                pick(stream, &floats)
-            },
+            hidden_keys,
+            input_scale,
+            dtype,
             seed: stream.below(u64::MAX),
             faults: Vec::new(),
             purpose: "random case from the fuzzer".into(),
@@ -271,4 +274,43 @@ fn random_case_where(
         }
     }
     None
+}
+
+/// Hidden (padding) keys for a `scores` or `attention` case, one case in four: half
+/// of those hide a prefix of at least `M + 1` keys, so the first queries see no key at
+/// all (a fully masked row, which must come out as zeros), the others hide each key
+/// with probability 1/3. Other operations have none.
+fn random_hidden_keys(
+    stream: &mut Stream,
+    operation: &Operation,
+    memory_len: usize,
+    query_len: usize,
+) -> Vec<usize> {
+    if !matches!(operation, Operation::Scores | Operation::Attention) || stream.below(4) != 0 {
+        return Vec::new();
+    }
+    let keys = memory_len + query_len;
+    if stream.below(2) == 0 {
+        let end = range(stream, memory_len + 1, keys);
+        (0..end).collect()
+    } else {
+        (0..keys).filter(|_| stream.below(3) == 0).collect()
+    }
+}
+
+/// The input amplitude: 1, or for one `scores`, `attention`, `stream` or `decode`
+/// case in four a factor that makes the scores large enough to overflow a softmax
+/// computed without subtracting the row maximum in the case's dtype (`exp` overflows
+/// past about 11 in f16, 89 in f32 and bf16, 710 in f64): uniform in 3..=5 for f16,
+/// 10..=14 for f32 and bf16, 30..=50 for f64.
+fn random_input_scale(stream: &mut Stream, operation: &Operation, dtype: Dtype) -> f64 {
+    if matches!(operation, Operation::Encode) || stream.below(4) != 0 {
+        return 1.0;
+    }
+    let (low, high) = match dtype {
+        Dtype::F16 => (3, 5),
+        Dtype::F32 | Dtype::Bf16 => (10, 14),
+        _ => (30, 50),
+    };
+    range(stream, low, high) as f64
 }

@@ -1,4 +1,5 @@
-//! Offline verification: compare a results directory with a vectors directory.
+//! Offline verification: compare a results directory with a vectors directory; failing
+//! cases are diagnosed, and the faults named are checked against the cases that passed.
 //!
 //! Every vector file is one case. A missing, malformed or mis-shaped result makes that
 //! case an error naming the file and field; the other cases still run. A selection
@@ -100,6 +101,8 @@ pub fn verify_selected(
     if !selection.is_everything() {
         report.notes.push(selected.note("vector files", selection));
     }
+    // Cases the results passed: evidence for or against the faults named for the others.
+    let mut passed: Vec<(Case, crate::math::Dtype)> = Vec::new();
     for (file, _) in &selected.items {
         let stem = stem_of(file);
         let vector = match VectorFile::read(file) {
@@ -113,7 +116,15 @@ pub fn verify_selected(
             }
         };
         known.insert(vector.case.id.clone());
-        report.cases.push(verify_one(&vector, results, options));
+        let case_report = verify_one(&vector, results, options);
+        if case_report.verdict == crate::compare::Verdict::Pass {
+            let dtype = options.declared.unwrap_or(vector.case.dtype);
+            passed.push((vector.case.clone(), dtype));
+        }
+        report.cases.push(case_report);
+    }
+    if options.diagnose {
+        report.diagnosis = super::diagnosis::run_diagnosis(&report, &passed, options);
     }
     if let Ok(entries) = std::fs::read_dir(results) {
         let mut strays: Vec<String> = entries

@@ -421,9 +421,15 @@ impl SchemeKind for AlibiSpec {
 
     const MAX_RANDOM_HEADS: usize = 12;
 
-    fn random(_stream: &mut Stream, _shape: &Shape<'_>) -> Self {
+    fn random(stream: &mut Stream, _shape: &Shape<'_>) -> Self {
         AlibiSpec {
-            scale: Scale::InverseSqrtDim,
+            // A fixed scale one case in three: the scale multiplies q·k only, never the
+            // bias, which only a scale other than 1/√d of an unscaled kernel shows.
+            scale: if stream.below(3) == 0 {
+                Scale::Fixed(0.25)
+            } else {
+                Scale::InverseSqrtDim
+            },
         }
     }
 }

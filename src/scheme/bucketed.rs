@@ -527,7 +527,12 @@ impl SchemeKind for BucketedSpec {
             num_buckets,
             max_distance: num_buckets * range(stream, 1, 4),
             bidirectional: stream.below(2) == 0,
-            scale: Scale::Fixed(1.0),
+            // T5 itself does not scale q·k (1); 1/√d one case in three.
+            scale: if stream.below(3) == 0 {
+                Scale::InverseSqrtDim
+            } else {
+                Scale::Fixed(1.0)
+            },
         }
     }
 }

@@ -467,7 +467,11 @@ impl SchemeKind for ClippedSpec {
     fn random(stream: &mut Stream, _shape: &Shape<'_>) -> Self {
         ClippedSpec {
             clip_distance: range(stream, 1, 8),
-            scale: Scale::InverseSqrtDim,
+            scale: if stream.below(3) == 0 {
+                Scale::Fixed(0.25)
+            } else {
+                Scale::InverseSqrtDim
+            },
         }
     }
 }

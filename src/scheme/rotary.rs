@@ -12,7 +12,7 @@
 //! - [`Pairing::Adjacent`]: `(a, b) = (2j, 2j+1)`, the paper's eq. 34;
 //! - [`Pairing::HalfSplit`]: `(a, b) = (j, j + d_rot/2)`, the "rotate half" layout many
 //!   implementations use. The two are different functions with the same properties, so
-//!   only golden values tell them apart (docs/faults.md, fault class 17).
+//!   only golden values tell them apart (docs/faults.md, `rotary-pairing-swapped`).
 //!
 //! Dimensions `d_rot..d` (partial rotary) pass through bit-exactly. Positions are any
 //! `i64` with `|p| <= 2^53`, so that `p` converts to `f64` exactly; offsets for cached

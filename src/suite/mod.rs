@@ -6,7 +6,7 @@
 //! - `core`: small (committed under `vectors/core`, runs in seconds); every scheme with
 //!   every operation, every value of every enumerated parameter (docs/protocol.md,
 //!   "Capabilities") in an operation that attends, rotary attention with memory in f32
-//!   in both pairings, and together every fault class of docs/faults.md, with positions
+//!   in both pairings, and together every catalogued fault of docs/faults.md, with positions
 //!   far from 0, odd L, M = 0, M < L, M > L, L = 1, head widths 64, 80 and 96, scales
 //!   other than the default, non-power-of-two head counts and fully masked rows.
 //! - `long`: long positions (up to 10^6), L and M up to 2048, half-precision dtypes;

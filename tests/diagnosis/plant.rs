@@ -74,8 +74,11 @@ fn print_run_diagnosis() {
     use posconform::run::plant::PlantedKernel;
     let cases = suite("core").unwrap();
     let options = CheckOptions {
-        fuzz_cases: 0,
-        ..CheckOptions::default()
+        fuzz_cases: std::env::var("PLANT_FUZZ")
+            .ok()
+            .and_then(|f| f.parse().ok())
+            .unwrap_or(0),
+        ..posconform::run::plant::options(0, 0x5eed)
     };
     for id in std::env::var("PLANT").unwrap_or_default().split(',') {
         let Some(fault) = posconform::diagnose::fault(id) else {
@@ -85,6 +88,31 @@ fn print_run_diagnosis() {
         let outcome = check(&mut kernel, &cases, &options, &mut |_, _, _| {}).unwrap();
         println!("{id}: {:#?}", outcome.report.diagnosis);
         if let Ok(case) = std::env::var("PLANT_CASE") {
+            for m in outcome.minimal.iter().filter(|m| m.case.id == case) {
+                println!("{}", serde_json::to_string(&m.case).unwrap());
+                let inputs = m.case.inputs().unwrap();
+                let dtype = m.case.dtype;
+                let v =
+                    posconform::reference::variant_outputs(&m.case, &inputs, dtype, fault.variant)
+                        .unwrap();
+                let e = posconform::reference::expected(&m.case, &inputs).unwrap();
+                let mut k = PlantedKernel::new(fault);
+                use posconform::kernel::Kernel;
+                if let posconform::kernel::Answer::Outputs { outputs, .. } =
+                    k.run(&m.case, dtype, &inputs).unwrap()
+                {
+                    for (o, want) in &e {
+                        let got = outputs[o.name()].view().to_owned();
+                        for ((idx, w), (g, vv)) in
+                            want.indexed_iter().zip(got.iter().zip(v[o].iter()))
+                        {
+                            if (g - w).abs() > 1e-6 || (g - vv).abs() > 1e-6 {
+                                println!("{o} {idx:?} want {w} got {g} variant {vv}");
+                            }
+                        }
+                    }
+                }
+            }
             for c in outcome.report.cases.iter().filter(|c| c.case == case) {
                 println!("{:#?}", c.diagnosis);
                 for o in &c.outputs {

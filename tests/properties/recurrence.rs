@@ -133,7 +133,7 @@ proptest! {
     }
 }
 
-/// Planted bug (fault class 11): the memory update keeps the oldest rows instead of the
+/// Planted bug (`memory-keeps-oldest`): the memory update keeps the oldest rows instead of the
 /// newest. The one-shot comparison must catch it once the memory has to drop rows.
 #[test]
 fn planted_memory_keeping_oldest_rows_is_caught() {

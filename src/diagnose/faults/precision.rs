@@ -66,6 +66,10 @@ impl FaultVariant for ComputesIn {
     fn applies(&self, _case: &Case) -> bool {
         true
     }
+
+    fn computes_in(&self, _case: &Case, dtype: Dtype) -> Option<Dtype> {
+        (self.0.unit_roundoff() > dtype.unit_roundoff()).then_some(self.0)
+    }
 }
 
 pub(super) const COMPUTES_IN_HALF_PRECISION: Fault = Fault {
