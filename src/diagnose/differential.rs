@@ -135,24 +135,35 @@ struct Agreement {
     /// Sums for the correlation of `x = ln(1 + |kernel - reference| / tol)` and
     /// `y = ln(1 + |variant - reference| / tol)`: n, Σx, Σy, Σxx, Σyy, Σxy.
     moments: [f64; 6],
+    /// The same sums for the signed errors `(kernel - reference) / tol` and
+    /// `(variant - reference) / tol`.
+    signed: [f64; 6],
+}
+
+fn pearson([n, sx, sy, sxx, syy, sxy]: [f64; 6]) -> f64 {
+    if n < 2.0 {
+        return 0.0;
+    }
+    let cov = sxy - sx * sy / n;
+    let vx = sxx - sx * sx / n;
+    let vy = syy - sy * sy / n;
+    if vx <= 0.0 || vy <= 0.0 {
+        0.0
+    } else {
+        cov / (vx * vy).sqrt()
+    }
 }
 
 impl Agreement {
+    /// Pearson correlation of the kernel's and the variant's signed errors.
+    fn signed_correlation(&self) -> f64 {
+        pearson(self.signed)
+    }
+
     /// Pearson correlation of the kernel's and the variant's error sizes, element by
     /// element (0 when either is constant).
     fn correlation(&self) -> f64 {
-        let [n, sx, sy, sxx, syy, sxy] = self.moments;
-        if n < 2.0 {
-            return 0.0;
-        }
-        let cov = sxy - sx * sy / n;
-        let vx = sxx - sx * sx / n;
-        let vy = syy - sy * sy / n;
-        if vx <= 0.0 || vy <= 0.0 {
-            0.0
-        } else {
-            cov / (vx * vy).sqrt()
-        }
+        pearson(self.moments)
     }
 }
 
@@ -350,6 +361,16 @@ fn agreement(
                 total.kernel_error = total.kernel_error.max(ek);
                 total.variant_error = total.variant_error.max(ev);
                 let (x, y) = (ek.ln_1p(), ev.ln_1p());
+                let (sx, sy) = ((g - w) / unit(tol), (v - w) / unit(tol));
+                if sx.is_finite() && sy.is_finite() {
+                    let m = &mut total.signed;
+                    m[0] += 1.0;
+                    m[1] += sx;
+                    m[2] += sy;
+                    m[3] += sx * sx;
+                    m[4] += sy * sy;
+                    m[5] += sx * sy;
+                }
                 if x.is_finite() && y.is_finite() {
                     let m = &mut total.moments;
                     m[0] += 1.0;
@@ -554,6 +575,10 @@ pub fn diagnose_case(evidence: &CaseEvidence<'_>, got: &Arrays) -> CaseDiagnosis
         if c.explains && !c.reproduced.eq(&1.0) {
             if let Some(narrow) = fault.variant.computes_in(evidence.case, evidence.dtype) {
                 c.explains = within_budgets_of(evidence, &got, narrow);
+            } else if fault.variant.deterministic_error() {
+                // The same rounding of the same quantities: the errors agree in sign too,
+                // which a structured mistake of the same size does not.
+                c.explains = a.signed_correlation() >= 0.5;
             }
         }
         if !c.explains && c.reproduced > 0.0 && fault.matching == Matching::Values {

@@ -62,6 +62,13 @@ pub trait FaultVariant: Deviation {
     fn computes_in(&self, _case: &Case, _dtype: Dtype) -> Option<Dtype> {
         None
     }
+
+    /// For a precision fault whose error comes from rounding the same few quantities
+    /// (angles formed in half precision): any kernel with it makes nearly the same
+    /// error, element by element, so the signs of its errors follow the variant's.
+    fn deterministic_error(&self) -> bool {
+        false
+    }
 }
 
 /// One catalogued mistake.

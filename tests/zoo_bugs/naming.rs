@@ -1,10 +1,11 @@
 //! Every specimen through the checker and scored (score.rs); the table printed; the
 //! rates asserted at what was measured.
 //!
-//! Measured with `FUZZ_CASES = 200`, `FUZZ_SEED = 0xb06` (score.rs) on 51 specimens:
-//! all caught; 48 named (94%), 29 of them as the full explanation (57%); 9 misleading,
-//! every one listed in [`KNOWN_MISSES`] with what the report says and what is true. The
-//! team's aim is a named rate of at least 80%.
+//! Measured with `FUZZ_CASES = 200`, `FUZZ_SEED = 0xb06` (score.rs) on 54 specimens:
+//! all caught; 52 named (96%), 30 of them as the full explanation (56%); 1 misleading,
+//! listed in [`KNOWN_MISSES`] with what the report says and what is true (first
+//! measurement, before the diagnosis fixes it prompted: 51 specimens, 3 never caught,
+//! 48 named, 9 misleading). The team's aim is a named rate of at least 80%.
 
 use std::collections::BTreeSet;
 
@@ -14,31 +15,25 @@ use crate::kernel::Mistake;
 use crate::score::{self, Score};
 use crate::specimens::{self, Expected, Specimen};
 
-/// Named rate floor: 48 of 51 measured (see the module docs).
-const NAMED_FLOOR: f64 = 0.94;
-/// Rate of specimens whose expected fault is stated as the full explanation: 29 of 51
+/// Named rate floor: 52 of 54 measured (see the module docs).
+const NAMED_FLOOR: f64 = 0.96;
+/// Rate of specimens whose expected fault is stated as the full explanation: 30 of 54
 /// measured.
-const NAMED_FULLY_FLOOR: f64 = 0.56;
+const NAMED_FULLY_FLOOR: f64 = 0.55;
 
 /// Specimens the diagnosis misleads on or does not name, as measured. Each is a
 /// finding for the diagnosis (never fixed here by changing `src/`); the test fails when
 /// one of them is named without misleading (remove it from this list) or when any other
 /// specimen starts to mislead or goes unnamed.
 const KNOWN_MISSES: &[(&str, &str)] = &[
-    // Run level. The one diagnosed failing case (xl_relative.attention.padded_rows, run
-    // in f16) says masked-row-nan, mask-sentinel-overflows-in-half and
-    // softmax-without-max-subtraction each reproduce it and it cannot tell them apart;
-    // the run then states masked-row-nan as the likely bug. The truth: a -1e9 sentinel
-    // that is -inf in f16.
+    // Not named first. The one diagnosed failing case (xl_relative.attention.padded_rows,
+    // run in f16) is reproduced alike by masked-row-nan, mask-sentinel-overflows-in-half
+    // and softmax-without-max-subtraction; the run now reports the three-way tie (no
+    // fault stated as the explanation, so not misleading), with masked-row-nan listed
+    // first. The truth: a -1e9 sentinel that is -inf in f16.
     (
         "xl-f16-only-mask-sentinel",
-        "run: masked-row-nan stated from a three-way tie",
-    ),
-    // Run level, the same tie on alibi.attention.padded_f16 (the only ALiBi case with a
-    // fully masked row; written for f16, so this f32+f16 kernel runs it in f16).
-    (
-        "alibi-mask-sentinel",
-        "run: masked-row-nan stated from a three-way tie",
+        "not named first: a three-way tie, reported as one",
     ),
     // Not named: positions (and so the T5 distances) of this kernel follow the cache
     // length, as in kernels that derive them from it; both decode cases say "no
@@ -49,36 +44,12 @@ const KNOWN_MISSES: &[(&str, &str)] = &[
         "bucketed-cache-not-appended",
         "not named: no catalogued fault",
     ),
-    // Case level, below: a failing case's diagnosis says only precision faults
-    // reproduce it, though the kernel computes in f64 (or, for rotary-computes-in-f16,
-    // in f16 and not bf16). The run-level diagnosis is right in each.
+    // Case level: on rotary.attention.f32 the error of this f64 kernel's wrong scale is
+    // within the bf16 budgets and has bf16's size and spread, so the case says it is
+    // consistent with computes-in-bfloat16. The run-level diagnosis names no fault.
     (
         "rotary-scale-model-width",
-        "case: rotary.attention.f32, rotary.attention.half_split_f32, rotary.attention.ntk_aware_partial",
-    ),
-    (
-        "rotary-computes-in-f16",
-        "case: fuzz.0004.rotary.scores.minimal says computes-in-bfloat16",
-    ),
-    (
-        "sinusoid-query-start-ignored",
-        "case: sinusoidal.encode.far_f32 says computes-in-bfloat16",
-    ),
-    (
-        "rotary-keys-not-offset",
-        "case: rotary.attention.f32, rotary.attention.half_split_f32, rotary.attention.ntk_aware_partial, fuzz.0001.rotary.attention.minimal",
-    ),
-    (
-        "sinusoid-frequencies-d-minus-2",
-        "case: sinusoidal.attention.offset says computes-in-bfloat16",
-    ),
-    (
-        "sinusoid-inputs-scaled",
-        "case: sinusoidal.attention.offset says computes-in-bfloat16",
-    ),
-    (
-        "rotary-partial-frequencies-over-d",
-        "case: rotary.attention.ntk_aware_partial says three precision faults",
+        "case: rotary.attention.f32 consistent with computes-in-bfloat16",
     ),
 ];
 

@@ -27,6 +27,10 @@ impl Deviation for HalfAngles {
 }
 
 impl FaultVariant for HalfAngles {
+    fn deterministic_error(&self) -> bool {
+        true
+    }
+
     fn applies(&self, case: &Case) -> bool {
         scheme_in(case, &[Scheme::Sinusoidal, Scheme::Rotary])
             || (scheme_in(case, &[Scheme::XlRelative]) && op_in(case, &[OperationKind::Encode]))
