@@ -3,5 +3,6 @@
 //! what the data supports and nothing more.
 
 mod docs_page;
+mod patterns;
 mod plant;
 mod variants;
