@@ -251,17 +251,18 @@ impl<'a> Pipeline<'a> {
     }
 
     /// Outputs of one window from its probabilities, with the scheme's value-side
-    /// terms; with `absolute`, their magnitudes (for error bounds).
+    /// terms for queries and keys at `positions`; with `absolute`, their magnitudes (for
+    /// error bounds).
     fn window_output(
         &self,
         probs: &Array3<f64>,
         v: ArrayView3<'_, f64>,
-        window: Window,
+        positions: &PairPositions,
         absolute: bool,
     ) -> Result<Array3<f64>> {
         let mut out = attend(probs.view(), v)?;
         self.model()
-            .add_value_terms(&self.inputs(), probs, &mut out, window, absolute)?;
+            .add_value_terms(&self.inputs(), probs, &mut out, positions, absolute)?;
         Ok(out)
     }
 
@@ -276,14 +277,17 @@ impl<'a> Pipeline<'a> {
     ) -> Result<(Array3<f64>, Array3<f64>, Array3<f64>)> {
         let window = window_for(q, k)?;
         let scores = self.round(self.window_scores(q, k, p0, at)?);
+        let mut positions = PairPositions::standard(window, p0);
         let Some((deviation, dtype)) = self.deviation else {
             let probs = self.round(masked_softmax(scores.view())?);
-            let output = self.round(self.window_output(&probs, v, window, false)?);
+            let output = self.round(self.window_output(&probs, v, &positions, false)?);
             return Ok((scores, probs, output));
         };
         let ctx = self.ctx(dtype, window, at);
+        // The value side reads the positions the variant's scores read.
+        deviation.positions(&ctx, &mut positions);
         let probs = self.round(deviation.softmax(&ctx, &scores)?);
-        let output = self.window_output(&probs, v, window, false)?;
+        let output = self.window_output(&probs, v, &positions, false)?;
         let output = self.round(deviation.output(&ctx, output)?);
         Ok((scores, probs, output))
     }
@@ -650,8 +654,9 @@ impl<'a> Pipeline<'a> {
             });
         // Σ_j δp_ij |v_jc| + (γ_K + input)·Σ_j p_ij (|v_jc| + |value embedding|).
         let va = v.mapv(f64::abs);
-        let carried = self.window_output(&probs_bound, va.view(), window, true)?;
-        let magnitude = self.window_output(probs, va.view(), window, true)?;
+        let positions = PairPositions::standard(window, p0);
+        let carried = self.window_output(&probs_bound, va.view(), &positions, true)?;
+        let magnitude = self.window_output(probs, va.view(), &positions, true)?;
         let output_gamma = gamma_of(ua, key_len) + gamma_of(R64, key_len) + contract.input;
         let output_bound = Zip::from(&carried)
             .and(&magnitude)

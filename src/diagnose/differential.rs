@@ -13,8 +13,8 @@
 //!
 //! Variants that change nothing on the case (within its budgets) are not candidates.
 //! Precision faults ([`Matching::ErrorSize`]) are matched by the size of the error
-//! only. When no single fault explains a case, pairs of the best partial matches are
-//! tried together.
+//! only, and only while the variant's own error is small beside the values. When no
+//! single fault explains a case, pairs of the best partial matches are tried together.
 
 use std::collections::BTreeMap;
 
@@ -132,6 +132,9 @@ struct Agreement {
     variant_failing: usize,
     /// Elements compared.
     elements: usize,
+    /// Σ (variant - reference)² and Σ reference² over finite elements: how large the
+    /// variant's own error is beside the values.
+    variant_power: [f64; 2],
     /// Sums for the correlation of `x = ln(1 + |kernel - reference| / tol)` and
     /// `y = ln(1 + |variant - reference| / tol)`: n, Σx, Σy, Σxx, Σyy, Σxy.
     moments: [f64; 6],
@@ -360,6 +363,8 @@ fn agreement(
                 let (ek, ev) = ((g - w).abs() / unit(tol), (v - w).abs() / unit(tol));
                 total.kernel_error = total.kernel_error.max(ek);
                 total.variant_error = total.variant_error.max(ev);
+                total.variant_power[0] += (v - w).powi(2);
+                total.variant_power[1] += w.powi(2);
                 let (x, y) = (ek.ln_1p(), ev.ln_1p());
                 let (sx, sy) = ((g - w) / unit(tol), (v - w) / unit(tol));
                 if sx.is_finite() && sy.is_finite() {
@@ -435,6 +440,10 @@ fn changes_case(evidence: &CaseEvidence<'_>, variant: &Outputs) -> bool {
     })
 }
 
+/// A precision variant is evidence by its error size only while its error is small
+/// beside the values: root-mean-square under a tenth of theirs (squared here).
+const VARIANT_POWER_RATIO: f64 = 0.01;
+
 fn candidate(fault: &'static Fault, a: &Agreement) -> Candidate {
     let share = |part: usize, whole: usize| {
         if whole == 0 {
@@ -457,10 +466,16 @@ fn candidate(fault: &'static Fault, a: &Agreement) -> Candidate {
             Matching::ErrorSize => {
                 // The error must have the variant's size, over as many elements, and grow
                 // where the variant's grows: a rounding error is everywhere, a structured
-                // mistake of the same size is not.
+                // mistake of the same size is not. And the variant must still resemble
+                // the reference (its root-mean-square error under a tenth of the values'):
+                // one that scrambles the outputs (angles of far positions in bf16) has
+                // the size of any mistake that moves values as far, such as swapped
+                // heads, so its size is no evidence.
                 let size = a.kernel_error / a.variant_error;
                 let spread = a.failing as f64 / a.variant_failing.max(1) as f64;
+                let [off, power] = a.variant_power;
                 a.failing > 0
+                    && off < VARIANT_POWER_RATIO * power
                     && a.variant_error > 1.0
                     && (0.25..=4.0).contains(&size)
                     && (0.5..=2.0).contains(&spread)

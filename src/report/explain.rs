@@ -168,7 +168,8 @@ pub fn explain_text(fault: &Fault, example: Option<&Example>, tagged: &[&str]) -
             "",
             "A kernel is said to have this mistake when its error has the size and spread of \
              the variant's (every kernel rounds differently, so element-by-element agreement \
-             cannot be expected).",
+             cannot be expected), and only while the variant's own error is small beside the \
+             values.",
             92,
         );
     }
@@ -216,9 +217,14 @@ probabilities must be exactly 0 as in the comparison itself.\n\
 - **Error size** (precision mistakes): every kernel rounds differently, so the error \
 must instead have the variant's size (within a factor of 4 of its largest error), \
 spread over as many elements (within a factor of 2), and grow where the variant's \
-grows (correlation of the two error sizes at least 0.5); a kernel that computes in a \
-narrower dtype is a correct kernel of that dtype, so its outputs must also be within \
-the budgets of that dtype.\n\
+grows (correlation of the two error sizes at least 0.5), and only while the variant's \
+own error is small beside the values (root-mean-square under a tenth of theirs): a \
+variant that scrambles the outputs has the size of any mistake that moves values as \
+far (swapped heads, a transposed output), so its size is no evidence. A kernel that \
+computes in a narrower dtype is a correct kernel of that dtype, so its outputs must \
+also be within the budgets of that dtype; angles formed in half precision are the \
+same rounding of the same quantities in any kernel, so their errors must also agree \
+in sign (correlation at least 0.5).\n\
 - A variant that changes nothing on a case (within its budget) is not a candidate \
 there; when no single fault explains a case, pairs of the closest partial matches are \
 tried together."

@@ -154,7 +154,14 @@ fn describe_masking(m: &Masking) -> String {
         Masking::Sentinel { value } => format!(
             "masked entries hold a finite sentinel ({value:e}) that carries zero probability"
         ),
-        Masking::Leak { count } => format!("{count} masked entries carry probability (leak)"),
+        Masking::Leak { count } => format!(
+            "{count} masked {} probability (leak)",
+            if *count == 1 {
+                "entry carries"
+            } else {
+                "entries carry"
+            }
+        ),
         Masking::NonFinite { count } => format!(
             "{count} masked {} NaN or +inf where zero (or -inf) is expected",
             if *count == 1 {
@@ -426,8 +433,10 @@ fn format_ratio(ratio: f64) -> String {
     }
 }
 
-/// `got` and `expected` with as many significant digits as it takes to tell them apart,
-/// up to what the dtype resolves (17 for f64, 9 for f32, 5 for f16, 4 for bf16).
+/// `got` and `expected` with as many significant digits as it takes to tell them apart:
+/// at most what the dtype resolves (17 for f64, 9 for f32, 5 for f16, 4 for bf16) when
+/// that suffices, up to 17 when it does not (an f32 kernel judged at the f64 budget can
+/// fail by less than f32's digits show), so two different values never print alike.
 pub fn format_pair(
     got: f64,
     expected: f64,
@@ -448,7 +457,7 @@ pub fn format_pair(
         }
     };
     let mut digits = 7.min(most);
-    while digits < most && show(got, digits) == show(expected, digits) {
+    while digits < 17 && show(got, digits) == show(expected, digits) {
         digits += 1;
     }
     (show(got, digits), show(expected, digits))

@@ -402,7 +402,7 @@ impl SchemeModel for ClippedSpec {
         inputs: &Inputs<'_, '_>,
         probs: &Array3<f64>,
         out: &mut Array3<f64>,
-        window: Window,
+        positions: &PairPositions,
         absolute: bool,
     ) -> Result<()> {
         let w_value = inputs.get3("w_value")?;
@@ -413,7 +413,7 @@ impl SchemeModel for ClippedSpec {
         };
         for ((h, i, j), &p) in probs.indexed_iter() {
             if p != 0.0 {
-                let relative = j as i64 - (window.memory_len() + i) as i64;
+                let relative = -positions.distance(i, j);
                 let row = embedding_index(relative, self.clip_distance);
                 let mut o = out.slice_mut(s![h, i, ..]);
                 o.scaled_add(p, &w_value.slice(s![h, row, ..]));

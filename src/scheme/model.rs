@@ -183,13 +183,15 @@ pub trait SchemeModel: fmt::Debug + Send + Sync {
     ) -> Result<Array3<f64>>;
 
     /// Adds what the scheme puts on the value side to `out[H,L,d]` from `probs[H,L,K]`
-    /// (Shaw's value embeddings); with `absolute`, their magnitudes (for error bounds).
+    /// (Shaw's value embeddings) for queries and keys at `positions` (the standard ones
+    /// for the reference; a faulty variant's own, so that its value side reads the
+    /// distances its scores read); with `absolute`, their magnitudes (for error bounds).
     fn add_value_terms(
         &self,
         _inputs: &Inputs<'_, '_>,
         _probs: &Array3<f64>,
         _out: &mut Array3<f64>,
-        _window: Window,
+        _positions: &PairPositions,
         _absolute: bool,
     ) -> Result<()> {
         Ok(())

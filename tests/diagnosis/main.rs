@@ -3,5 +3,7 @@
 //! what the data supports and nothing more.
 
 mod docs_page;
+mod independent;
+mod patterns;
 mod plant;
 mod variants;
