@@ -295,12 +295,16 @@ pub fn all() -> Vec<Specimen> {
             F64,
             Fault("query-start-ignored"),
         ),
+        // Positions follow the cache's length here, so the chunks sit right after the
+        // prefill. Labelled decode-cache-not-appended when first scored (then a known
+        // miss: that fault's variant tracks positions apart from the cache); the
+        // catalogue has since gained the form this kernel has.
         s(
             "bucketed-cache-not-appended",
             M::DecodeCacheNotAppended,
             &[Bucketed],
             F64,
-            Fault("decode-cache-not-appended"),
+            Fault("decode-cache-not-appended-stale-positions"),
         ),
         s(
             "bucketed-cache-not-appended-tracked",

@@ -195,3 +195,65 @@ pub(super) const DECODE_CACHE_NOT_APPENDED: Fault = Fault {
     matching: Matching::Values,
     variant: &CacheNotAppended,
 };
+
+/// [`CacheNotAppended`] in a kernel that takes positions from the cache's length: the
+/// cache never grows past the prefill, so every chunk's tokens sit at the positions
+/// right after the prefill.
+pub(super) struct CacheNotAppendedStalePositions;
+
+impl Deviation for CacheNotAppendedStalePositions {
+    fn positions(&self, ctx: &WindowCtx<'_, '_>, positions: &mut PairPositions) {
+        if ctx.at.kind != StepKind::Decode {
+            return;
+        }
+        let crate::case::Operation::Decode { prefill, .. } = ctx.case.operation else {
+            return;
+        };
+        let p0 = ctx.case.query_start;
+        // The chunk's tokens at p0 + prefill + (t - start); the prefill's keys where they were.
+        for (i, p) in positions.queries.iter_mut().enumerate() {
+            *p = p0 + (prefill + i) as i64;
+        }
+        for (j, p) in positions.keys.iter_mut().enumerate() {
+            let token = ctx.at.key_tokens[j];
+            *p = if token >= ctx.at.start {
+                p0 + (prefill + token - ctx.at.start) as i64
+            } else {
+                p0 + token as i64
+            };
+        }
+    }
+
+    fn visible(
+        &self,
+        ctx: &WindowCtx<'_, '_>,
+        i: usize,
+        j: usize,
+        causal: bool,
+        hidden: bool,
+    ) -> bool {
+        CacheNotAppended.visible(ctx, i, j, causal, hidden)
+    }
+}
+
+impl FaultVariant for CacheNotAppendedStalePositions {
+    fn applies(&self, case: &Case) -> bool {
+        op_in(case, &[OperationKind::Decode])
+    }
+}
+
+pub(super) const DECODE_CACHE_NOT_APPENDED_STALE_POSITIONS: Fault = Fault {
+    id: "decode-cache-not-appended-stale-positions",
+    mistake: "Decoded chunks are never appended to the cache, and positions are taken from the \
+              cache's length: each chunk sees the prefill and itself, and every chunk's tokens \
+              sit at the positions right after the prefill.",
+    arises: "A cache updated on a copy (or only in the prefill path) in a model that derives \
+             the next positions from the number of cached tokens, as most decoding loops do.",
+    exposes: "decode cases with at least two chunks after the prefill, from the second chunk on \
+              (every scheme: the distances to the prefill's keys shrink).",
+    fix: "Append every step's keys and values to the cache before the next step; the positions \
+          then follow.",
+    kind: FaultKind::Bug,
+    matching: Matching::Values,
+    variant: &CacheNotAppendedStalePositions,
+};

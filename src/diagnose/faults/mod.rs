@@ -51,6 +51,7 @@ pub(super) static CATALOGUE: &[Fault] = &[
     memory::MEMORY_ORDER_REVERSED,
     memory::MEMORY_PLACED_AFTER_SEGMENT,
     memory::DECODE_CACHE_NOT_APPENDED,
+    memory::DECODE_CACHE_NOT_APPENDED_STALE_POSITIONS,
     // Precision.
     precision::ANGLES_IN_HALF_PRECISION,
     precision::COMPUTES_IN_HALF_PRECISION,
