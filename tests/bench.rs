@@ -82,13 +82,6 @@ fn bench_kernel_as(format: &str, times: usize, extra: &[&str]) -> Run {
         "f64",
         "--repeat",
         "31",
-        // Twice the default threshold: a planted twofold slowdown (+100%) is still far
-        // beyond it, while a loaded runner can move a kernel's floors by more than 25%
-        // (measured once at +57% for the same kernel, with two builds running beside
-        // it on this 2-core machine: the kernel runs in another process than the
-        // calibration, so load does not cancel in its ratio).
-        "--threshold",
-        "50%",
     ];
     args.extend_from_slice(extra);
     posconform(&args)
