@@ -27,9 +27,13 @@ class CaseResult:
     random: bool
     """Drawn by the fuzzer (or a shrinking step the kernel could not answer)."""
     faults: list = field(default_factory=list)
+    """Ids of the catalogued faults the case is built to expose (``posconform explain ID``)."""
     outputs: list = field(default_factory=list)
     """Per output: name, shape, dtype, passed, decided_by, worst, patterns, ..."""
     warnings: list = field(default_factory=list)
+    diagnosis: dict | None = None
+    """For a failing case that was diagnosed: which catalogued faults reproduce the
+    kernel's outputs (``finding``, ``candidates``; the JSON report's ``diagnosis``)."""
 
 
 @dataclass(frozen=True)
@@ -62,11 +66,14 @@ class Report:
         self.counts: dict = document["counts"]
         self.notes: list = document["notes"]
         self.never_exercised: list = document["never_exercised"]
+        self.diagnosis: dict | None = document.get("diagnosis")
+        """The run's diagnosis (``conclusive``, ``tied``, ``ranked``), or None when no
+        failing case was diagnosed."""
         self.cases: list[CaseResult] = [
             CaseResult(id=c["id"], scheme=c["scheme"], operation=c["operation"],
                        verdict=c["verdict"]["kind"], reason=c["verdict"].get("reason"),
                        random=c["random"], faults=c["faults"], outputs=c["outputs"],
-                       warnings=c["warnings"])
+                       warnings=c["warnings"], diagnosis=c.get("diagnosis"))
             for c in document["cases"]]
         self.minimal: list[MinimalCase] = [MinimalCase(**m) for m in outcome.minimal()]
         self.fuzz: dict | None = outcome.fuzz()

@@ -88,6 +88,12 @@ def test_a_planted_bug_is_found_shrunk_saved_and_replayed(tmp_path):
     assert verdicts(report, ALIBI_ENCODE) == {
         "alibi.encode.h8": "pass", "alibi.encode.h12": "fail", "alibi.encode.h6": "fail"}
     assert report.verdict == "nonconforming" and report.exit_code == 1
+    # The diagnosis names the mistake on the failing case, and only there.
+    h12 = report.case("alibi.encode.h12")
+    assert h12.diagnosis is not None, report.text
+    assert "alibi-power-of-two-rule-for-all-heads" in h12.diagnosis["finding"].get("faults", [])
+    assert report.case("alibi.encode.h8").diagnosis is None
+    assert report.diagnosis is not None and report.diagnosis["ranked"], report.text
     assert len(report.minimal) == 1
     minimal = report.minimal[0]
     heads = minimal.case["heads"]

@@ -335,8 +335,19 @@ impl std::str::FromStr for Format {
 /// Parses, runs, and maps the outcome to an exit code; errors print with their causes.
 pub fn run() -> ExitCode {
     let cli = Cli::parse();
+    // Listings piped into `head` and the like: a reader that stops early is no error.
+    let listing = matches!(cli.command, Command::List { .. } | Command::Explain { .. });
     match dispatch(cli.command) {
         Ok(code) => ExitCode::from(code),
+        Err(e)
+            if listing
+                && e.chain().any(|c| {
+                    c.downcast_ref::<std::io::Error>()
+                        .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+                }) =>
+        {
+            ExitCode::SUCCESS
+        }
         Err(e) => {
             eprintln!("posconform: error: {e:#}");
             ExitCode::from(EXIT_COULD_NOT_RUN)

@@ -531,7 +531,7 @@ fn within_budgets_of(
     got: &BTreeMap<Output, ArrayD<f64>>,
     dtype: Dtype,
 ) -> bool {
-    let factor = evidence.budgets.values().next().map_or(1.0, |b| b.factor);
+    let factor = evidence.budgets.values().next().map_or(2.0, |b| b.factor);
     let Ok(budgets) = crate::budget::budgets(
         evidence.case,
         evidence.inputs,
