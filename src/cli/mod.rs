@@ -740,8 +740,9 @@ fn demo(fuzz: usize, seed: u64) -> anyhow::Result<u8> {
         "\nWhat this shows: cases without memory (M = 0) pass and every case with memory fails; in the\n\
          stream the errors begin at the second segment, and the minimal case needs just one memory key.\n\
          The kernel's causal mask is not offset by the memory length M (`posconform explain\n\
-         mask-not-offset-by-memory`): it lets query i see keys j <= i instead of j <= M + i. A real `posconform check` would exit\n\
-         {code} here; the demo exits 0 because it found the bug it was built to show."
+         mask-not-offset-by-memory`): it lets query i see keys j <= i instead of j <= M + i.\n\
+         A real `posconform check` would exit {code} here; the demo exits 0 because it found the\n\
+         bug it was built to show."
     )?;
     Ok(if code == report::EXIT_NONCONFORMING {
         0
