@@ -77,6 +77,13 @@ impl Contract {
         gamma_of(self.accumulation, n)
     }
 
+    /// Relative error of a scaled dot product of length `d` (the scores of every
+    /// scheme): `γ_d` of the kernel's accumulation, one rounding of the scale product,
+    /// and the reference's own f64 `γ_d`.
+    pub fn dot_gamma(&self, d: usize) -> f64 {
+        self.gamma(d) + self.accumulation + gamma_of(R64, d)
+    }
+
     /// Bound on the error of an angle `θ = p'·ω` formed at the angle precision, from
     /// the position `p`, the true `θ` and `ω`, and how positions are scaled
     /// (docs/budgets.md, "Angles"):

@@ -5,7 +5,7 @@ use ndarray::{Array2, Array3, ArrayView3};
 
 use crate::attention::{dot_scores, window_for, Scale};
 use crate::error::Result;
-use crate::math::contract::{gamma_of, R64};
+use crate::math::contract::R64;
 use crate::math::Contract;
 use crate::scheme::model::{head_products, Inputs, PairPositions, SchemeModel};
 use crate::scheme::xl_relative::standard_positions;
@@ -81,7 +81,7 @@ pub(crate) fn score_terms(
     let (qp, kp) = standard_positions(window, p0);
     let d = shape.head_dim;
     let factor = scale.factor(d).abs();
-    let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+    let gamma = contract.dot_gamma(d);
     let rounding = contract.storage + R64;
     let errors =
         |x: ArrayView3<'_, f64>, positions: &[i64]| -> Result<(Array2<f64>, Array3<f64>)> {

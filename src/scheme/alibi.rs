@@ -39,7 +39,7 @@ use ndarray::{s, Array1, Array3, ArrayD, ArrayView3, ArrayViewMut2, Axis, Zip};
 
 use crate::attention::{attend, masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
-use crate::math::contract::{gamma_of, R64};
+use crate::math::contract::R64;
 use crate::math::{Contract, Stream};
 use crate::scheme::model::{
     finite_or_zero, head_products, Inputs, PairPositions, Parameter, SchemeKind, SchemeModel,
@@ -389,7 +389,7 @@ impl SchemeModel for AlibiSpec {
     ) -> Result<Array3<f64>> {
         let d = shape.head_dim;
         let factor = self.scale.factor(d).abs();
-        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let gamma = contract.dot_gamma(d);
         let window = window_for(q, k)?;
         let bias = bias(&slopes(shape.heads)?, window, BiasForm::Distance, p0)?;
         let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));

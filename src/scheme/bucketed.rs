@@ -40,7 +40,6 @@ use ndarray::{s, Array1, Array3, ArrayD, ArrayView2, ArrayView3, Axis, Zip};
 
 use crate::attention::{attend, masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
-use crate::math::contract::{gamma_of, R64};
 use crate::math::{Contract, Stream};
 use crate::scheme::alibi::expect_values;
 use crate::scheme::model::{
@@ -490,7 +489,7 @@ impl SchemeModel for BucketedSpec {
     ) -> Result<Array3<f64>> {
         let d = shape.head_dim;
         let factor = self.scale.factor(d).abs();
-        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let gamma = contract.dot_gamma(d);
         let window = window_for(q, k)?;
         let bias = bias(inputs.get2("bias_table")?, window, &self.rule()?)?;
         let (qa, ka) = (q.mapv(f64::abs), k.mapv(f64::abs));

@@ -44,7 +44,6 @@ use ndarray::{s, Array1, Array2, Array3, ArrayD, ArrayView2, ArrayView3, Axis};
 
 use crate::attention::{masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
-use crate::math::contract::{gamma_of, R64};
 use crate::math::{Contract, Stream};
 use crate::scheme::alibi::expect_values;
 use crate::scheme::model::{
@@ -433,7 +432,7 @@ impl SchemeModel for ClippedSpec {
     ) -> Result<Array3<f64>> {
         let d = shape.head_dim;
         let factor = self.scale.factor(d).abs();
-        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let gamma = contract.dot_gamma(d);
         let w = inputs.get3("w_key")?.mapv(f64::abs);
         let params = ClippedParams {
             clip_distance: self.clip_distance,

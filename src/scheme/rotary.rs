@@ -32,7 +32,6 @@ use ndarray::{s, Array2, Array3, ArrayD, ArrayView3, Axis};
 use crate::attention::{attend, dot_scores, masked_softmax, window_for, Scale, Window};
 use crate::error::{expect_finite, expect_shape, Error, Result};
 use crate::math::angle::{self, DoubleDouble};
-use crate::math::contract::{gamma_of, R64};
 use crate::math::product::gemm;
 use crate::math::{AngleScaling, Contract, Stream};
 use crate::scheme::model::{
@@ -675,7 +674,7 @@ impl SchemeModel for RotarySpec {
         let pairs = params.rotary_dim / 2;
         let d = shape.head_dim;
         let factor = self.scale.factor(d).abs();
-        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let gamma = contract.dot_gamma(d);
         let e = contract.rotated_component_error();
         let per_pair = 4.0 * e + 4.0 * e * e + gamma;
         let scaling = self.angle_scaling();

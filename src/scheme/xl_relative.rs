@@ -610,7 +610,7 @@ impl SchemeModel for XlRelativeSpec {
     ) -> Result<Array3<f64>> {
         let d = shape.head_dim;
         let factor = self.scale.factor(d).abs();
-        let gamma = contract.gamma(d) + contract.accumulation + gamma_of(R64, d);
+        let gamma = contract.dot_gamma(d);
         let (r, u, v) = (
             inputs.get3("r")?.mapv(f64::abs),
             inputs.get2("content_bias")?.mapv(f64::abs),
