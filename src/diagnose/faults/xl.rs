@@ -108,9 +108,16 @@ fn efficient(
     Ok(out)
 }
 
-pub(super) struct ShiftOffByOne;
+/// A kernel with its own pad-and-reshape relative shift: the sequence laid out in
+/// `order`, the zero column on `pad`'s side, and (with `unmasked`) no causal mask over
+/// the entries the shift fills with garbage.
+pub(super) struct EfficientShift {
+    order: Order,
+    pad: Pad,
+    unmasked: bool,
+}
 
-impl Deviation for ShiftOffByOne {
+impl Deviation for EfficientShift {
     fn scores(
         &self,
         ctx: &WindowCtx<'_, '_>,
@@ -119,11 +126,22 @@ impl Deviation for ShiftOffByOne {
         _: &PairPositions,
         _: Array3<f64>,
     ) -> Result<Array3<f64>> {
-        efficient(ctx, q, k, Order::Descending, Pad::Right)
+        efficient(ctx, q, k, self.order, self.pad)
+    }
+
+    fn visible(
+        &self,
+        _: &WindowCtx<'_, '_>,
+        _: usize,
+        _: usize,
+        causal: bool,
+        hidden: bool,
+    ) -> bool {
+        (causal || self.unmasked) && !hidden
     }
 }
 
-impl FaultVariant for ShiftOffByOne {
+impl FaultVariant for EfficientShift {
     fn applies(&self, case: &Case) -> bool {
         is_xl(case) && op_in(case, ATTENDING)
     }
@@ -142,40 +160,12 @@ pub(super) const REL_SHIFT_OFF_BY_ONE: Fault = Fault {
           (or index r by Δ = M + i - j directly).",
     kind: FaultKind::Bug,
     matching: Matching::Values,
-    variant: &ShiftOffByOne,
+    variant: &EfficientShift {
+        order: Order::Descending,
+        pad: Pad::Right,
+        unmasked: false,
+    },
 };
-
-pub(super) struct GarbageUnmasked;
-
-impl Deviation for GarbageUnmasked {
-    fn scores(
-        &self,
-        ctx: &WindowCtx<'_, '_>,
-        q: ArrayView3<'_, f64>,
-        k: ArrayView3<'_, f64>,
-        _: &PairPositions,
-        _: Array3<f64>,
-    ) -> Result<Array3<f64>> {
-        efficient(ctx, q, k, Order::Descending, Pad::Left)
-    }
-
-    fn visible(
-        &self,
-        _: &WindowCtx<'_, '_>,
-        _: usize,
-        _: usize,
-        _causal: bool,
-        hidden: bool,
-    ) -> bool {
-        !hidden
-    }
-}
-
-impl FaultVariant for GarbageUnmasked {
-    fn applies(&self, case: &Case) -> bool {
-        is_xl(case) && op_in(case, ATTENDING)
-    }
-}
 
 pub(super) const REL_SHIFT_GARBAGE_UNMASKED: Fault = Fault {
     id: "rel-shift-garbage-unmasked",
@@ -188,29 +178,12 @@ pub(super) const REL_SHIFT_GARBAGE_UNMASKED: Fault = Fault {
           query i iff j <= M + i.",
     kind: FaultKind::Bug,
     matching: Matching::Values,
-    variant: &GarbageUnmasked,
+    variant: &EfficientShift {
+        order: Order::Descending,
+        pad: Pad::Left,
+        unmasked: true,
+    },
 };
-
-pub(super) struct Ascending;
-
-impl Deviation for Ascending {
-    fn scores(
-        &self,
-        ctx: &WindowCtx<'_, '_>,
-        q: ArrayView3<'_, f64>,
-        k: ArrayView3<'_, f64>,
-        _: &PairPositions,
-        _: Array3<f64>,
-    ) -> Result<Array3<f64>> {
-        efficient(ctx, q, k, Order::Ascending, Pad::Left)
-    }
-}
-
-impl FaultVariant for Ascending {
-    fn applies(&self, case: &Case) -> bool {
-        is_xl(case) && op_in(case, ATTENDING)
-    }
-}
 
 pub(super) const RELATIVE_SEQUENCE_ASCENDING: Fault = Fault {
     id: "relative-sequence-ascending",
@@ -224,7 +197,11 @@ pub(super) const RELATIVE_SEQUENCE_ASCENDING: Fault = Fault {
           read distance M + i - j.",
     kind: FaultKind::Bug,
     matching: Matching::Values,
-    variant: &Ascending,
+    variant: &EfficientShift {
+        order: Order::Ascending,
+        pad: Pad::Left,
+        unmasked: false,
+    },
 };
 
 /// Replaces the named bias arrays.
