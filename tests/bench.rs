@@ -152,17 +152,21 @@ fn the_same_kernel_twice_passes_the_gate() {
 fn the_reference_twice_passes_the_gate() {
     let _lock = ONE_AT_A_TIME.lock().unwrap_or_else(|e| e.into_inner());
     let dir = scratch("reference");
+    // Medium and 31 rounds: at the small shape the same reference twice once read as
+    // +70% on xl_relative attention on a quiet machine (a false regression).
     let args = [
         "bench",
         "--quiet",
         "--format",
         "json",
         "--shape",
-        "small",
+        "medium",
         "--scheme",
         "xl_relative",
         "--operation",
         "scores,attention",
+        "--repeat",
+        "31",
     ];
     let base = posconform(&args);
     assert_eq!(base.code, Some(0), "{}\n{}", base.stdout, base.stderr);
