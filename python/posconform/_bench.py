@@ -48,7 +48,7 @@ def bench(kernel, *, shapes: Iterable[str] | str = ("medium",),
           operations: Iterable[str] | str | None = None,
           dtypes: Iterable[str] | str | None = None,
           workloads: Iterable[str] | str | None = None,
-          warmup: int = 3, repeat: int = 15,
+          warmup: int = 3, repeat: int = 15, blocks: int = 5,
           baseline: str | os.PathLike | None = None,
           threshold: float = 0.25) -> BenchResult:
     """Times ``kernel`` (a :class:`posconform.Kernel`) in process.
@@ -57,8 +57,10 @@ def bench(kernel, *, shapes: Iterable[str] | str = ("medium",),
     declaration: every declared scheme × operation × dtype at each shape (``"small"``,
     ``"medium"``, ``"large"`` or ``"L128_M128_d64_h4"``), narrowed by ``schemes``,
     ``operations``, ``dtypes`` and ``workloads`` (name patterns with ``*`` and ``?``).
-    Each is timed ``repeat`` times after ``warmup`` untimed runs, between runs of the
-    calibration workloads; the figure is the handler's own time. With ``baseline`` (a
+    Each is timed ``repeat`` times, shared out over ``blocks`` blocks in which every
+    workload takes its turn (``warmup`` untimed runs before its first block, one
+    before each later one), between runs of the calibration workloads; the figure is
+    the handler's own time. With ``baseline`` (a
     JSON document of an earlier run), the gate compares ratios with ``threshold`` (a
     fraction: 0.25 is 25%). Bad arguments and baselines raise ``ValueError``.
     """
@@ -66,6 +68,6 @@ def bench(kernel, *, shapes: Iterable[str] | str = ("medium",),
         kernel, shapes=_names(shapes), schemes=_names(schemes),
         operations=_names(operations), dtypes=_names(dtypes),
         workloads=_names(workloads), warmup=warmup, repeat=repeat,
-        baseline=os.fspath(baseline) if baseline is not None else None,
+        blocks=blocks, baseline=os.fspath(baseline) if baseline is not None else None,
         threshold=float(threshold))
     return BenchResult(outcome)

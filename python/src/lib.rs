@@ -192,7 +192,7 @@ where
 #[pyfunction(name = "bench")]
 #[pyo3(signature = (
     kernel, *, shapes=None, schemes=None, operations=None, dtypes=None, workloads=None,
-    warmup=3, repeat=15, baseline=None, threshold=0.25
+    warmup=3, repeat=15, blocks=5, baseline=None, threshold=0.25
 ))]
 #[allow(clippy::too_many_arguments)]
 fn bench_kernel(
@@ -205,6 +205,7 @@ fn bench_kernel(
     workloads: Option<Vec<String>>,
     warmup: usize,
     repeat: usize,
+    blocks: usize,
     baseline: Option<PathBuf>,
     threshold: f64,
 ) -> PyResult<BenchOutcome> {
@@ -217,6 +218,11 @@ fn bench_kernel(
     if warmup > 10_000 {
         return Err(value_error(format!(
             "warmup must be at most 10000, given {warmup}"
+        )));
+    }
+    if !(2..=repeat).contains(&blocks) {
+        return Err(value_error(format!(
+            "blocks must be from 2 to repeat ({repeat}), given {blocks}"
         )));
     }
     if !(threshold.is_finite() && threshold > 0.0 && threshold <= gate::MAX_THRESHOLD) {
@@ -244,7 +250,11 @@ fn bench_kernel(
     let info = posconform::Kernel::describe(&mut target).map_err(value_error)?;
     let (selected, notes) = b::kernel_workloads(&info, &shapes, &filter).map_err(value_error)?;
     let subject = format!("{} {}", info.name, info.version).trim().to_string();
-    let options = b::BenchOptions { warmup, repeat };
+    let options = b::BenchOptions {
+        warmup,
+        repeat,
+        blocks,
+    };
     let result = py.detach(|| {
         std::panic::catch_unwind(AssertUnwindSafe(|| {
             b::measure(

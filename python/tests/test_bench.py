@@ -21,12 +21,14 @@ def test_bench_times_every_declared_workload_in_process():
     result = posconform.bench(alibi_kernel(), shapes=["small"], repeat=5, warmup=1)
     doc = result.document
     assert result.exit_code == 0, result.text
-    assert (doc["format"], doc["version"], doc["target"]) == ("posconform.bench", 1, "kernel")
+    assert (doc["format"], doc["version"], doc["target"]) == ("posconform.bench", 2, "kernel")
     assert doc["subject"] == "slopes 1.0"
     names = [w["name"] for w in doc["workloads"]]
     assert names == ["alibi/encode/L32_M32_d32_h2/f64", "alibi/encode/L32_M32_d32_h2/f32"]
+    assert doc["settings"]["blocks"] == 5
     for w in doc["workloads"]:
         assert w["status"] == "timed"
+        assert len(w["block_floors"]) == 5   # one floor per block, five runs of one each
         assert w["measured"] == "kernel"   # the handler's own time, no protocol
         assert w["overhead_ms"] is None and w["ratio"] > 0
     assert doc["dry_run"] is None   # no protocol, nothing to subtract
@@ -42,6 +44,8 @@ def test_bench_filters_and_refuses_bad_arguments(tmp_path):
         posconform.bench(alibi_kernel(), shapes="L0_M0_d2_h1")
     with pytest.raises(ValueError, match="repeat"):
         posconform.bench(alibi_kernel(), repeat=1)
+    with pytest.raises(ValueError, match="blocks must be from 2 to repeat"):
+        posconform.bench(alibi_kernel(), repeat=5, blocks=6)
     with pytest.raises(ValueError, match="threshold"):
         posconform.bench(alibi_kernel(), threshold=0)
     bad = tmp_path / "baseline.json"

@@ -161,7 +161,7 @@ impl Baseline {
                 return Err(Error::format(
                     at("version"),
                     format!(
-                        "this build reads version {} of the bench document, found {}",
+                        "this build reads version {} of the bench document, found {} (the floor ratios of other versions are measured differently: record the baseline again with this build)",
                         render::VERSION,
                         shown(other)
                     ),

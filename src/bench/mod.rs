@@ -8,14 +8,20 @@
 //! reference ([`reference::expected`], in process) or on a team's kernel through the
 //! [`Kernel`] trait: over the stdio protocol, or in process from Python.
 //!
-//! For each workload: warm-up runs, then `repeat` rounds of (calibration, the workload,
-//! and, for a kernel that answers `dry_run`, the same exchange without the computation).
+//! The timed rounds of every workload are shared out over blocks (default 5): in each
+//! block every workload in turn takes its share (one untimed run first, `warmup` before
+//! its first block), each round being the calibration, the workload and, for a kernel
+//! that answers `dry_run`, the same exchange without the computation. A workload's
+//! blocks therefore lie apart in time, as separate runs would.
+//!
 //! The figure is the kernel's own time when it reports one (`elapsed_ms`) for every
 //! run, the round trip otherwise. Its ratio is its median over the median calibration
 //! unit of the same rounds ([`calibrate`]), with the combined standard error of the two
-//! medians; its floor ratio is the fastest run over the fastest unit, with the floors'
-//! noise ([`stats`]): the floor is what the gate compares, since a busy machine moves
-//! medians and leaves floors alone.
+//! medians. Its floor ratio, the figure the gate compares, is the median over blocks of
+//! each block's fastest run over that block's fastest unit, and its noise is half the
+//! range of those block floors ([`stats`]): a busy machine moves medians and leaves
+//! floors alone, and what moves floors from one run to the next moves them from one
+//! block to the next too.
 
 pub mod calibrate;
 pub mod gate;
@@ -426,13 +432,22 @@ pub struct BenchOptions {
     pub warmup: usize,
     /// Timed runs of each workload.
     pub repeat: usize,
+    /// Blocks the timed runs are shared out over ([`measure`]); the spread of the
+    /// blocks' floors is the noise the gate judges by.
+    pub blocks: usize,
 }
+
+/// Blocks when none are given: five (our choice: enough for the range of the block
+/// floors to mean something, few enough that every block keeps three runs of the
+/// default fifteen).
+pub const DEFAULT_BLOCKS: usize = 5;
 
 impl Default for BenchOptions {
     fn default() -> Self {
         BenchOptions {
             warmup: 3,
             repeat: 15,
+            blocks: DEFAULT_BLOCKS,
         }
     }
 }
@@ -484,6 +499,8 @@ pub struct Timing {
     pub product: Summary,
     /// The calibration sweep in the same rounds.
     pub sweep: Summary,
+    /// The floor ratio of each block in order: its fastest run over its fastest unit.
+    pub block_floors: Vec<f64>,
     /// Round trips of `run` (kernels only).
     pub round_trip: Option<Summary>,
     /// The kernel's own times, when it reported them in every run.
@@ -514,16 +531,24 @@ impl Timing {
         self.time.median_error().hypot(self.unit.median_error())
     }
 
-    /// The floor in calibration units: the fastest run over the fastest unit of the
-    /// same rounds. The gate compares this figure ([`stats`]).
+    /// The floor in calibration units: the median over blocks of each block's fastest
+    /// run over its fastest unit ([`block_floors`](Self::block_floors)). The gate
+    /// compares this figure ([`stats`]).
     pub fn floor_ratio(&self) -> f64 {
-        self.time.min / self.unit.min
+        match stats::BlockFloors::of(&self.block_floors) {
+            Some(b) => b.median,
+            None => self.time.min / self.unit.min,
+        }
     }
 
-    /// The relative noise of [`floor_ratio`](Self::floor_ratio): the two floors' noise
-    /// ([`Summary::floor_noise`]) combined in quadrature.
+    /// The relative noise of [`floor_ratio`](Self::floor_ratio): how far the block
+    /// floors lie apart ([`stats::BlockFloors::noise`]); with a single block, the two
+    /// floors' fastest-to-third gaps combined in quadrature.
     pub fn floor_noise(&self) -> f64 {
-        self.time.floor_noise().hypot(self.unit.floor_noise())
+        match stats::BlockFloors::of(&self.block_floors) {
+            Some(b) => b.noise(),
+            None => self.time.floor_noise().hypot(self.unit.floor_noise()),
+        }
     }
 
     /// Median round trip minus median dry-run round trip: the round trip with the
@@ -618,12 +643,23 @@ pub fn build_kind() -> &'static str {
     }
 }
 
-/// Progress of a bench: `(done, total)` workloads.
+/// Progress of a bench: `(done, total)` steps, one step a workload's share of one
+/// block.
 pub type BenchProgress<'a> = dyn FnMut(usize, usize) + 'a;
+
+/// The timed rounds of block `block` of `blocks` when `repeat` rounds are shared out:
+/// as equal as they can be, the earlier blocks taking the remainder.
+pub fn rounds_in_block(repeat: usize, blocks: usize, block: usize) -> usize {
+    repeat / blocks + usize::from(block < repeat % blocks)
+}
 
 /// Times `workloads` on `target`. Never fails: a workload that cannot be timed is an
 /// [`Outcome::Error`], and a kernel that cannot be restarted stops the run (the rest
 /// are reported as not run).
+///
+/// The run goes in blocks (module docs): in each block every workload takes its share
+/// of the rounds in turn, so a workload's blocks lie apart in time, and the machine
+/// states they meet differ as much as those of separate runs do.
 pub fn measure(
     mut target: Target<'_>,
     subject: String,
@@ -631,9 +667,11 @@ pub fn measure(
     options: &BenchOptions,
     progress: &mut BenchProgress<'_>,
 ) -> BenchReport {
+    let repeat = options.repeat.max(1);
     let options = BenchOptions {
         warmup: options.warmup,
-        repeat: options.repeat.max(1),
+        repeat,
+        blocks: options.blocks.clamp(1, repeat),
     };
     let mut bench = Bench {
         calibration: Calibration::new(),
@@ -655,38 +693,68 @@ pub fn measure(
         bench.dry_run = Some(false);
         bench.asked_dry_run = false;
     }
-    let total = workloads.len();
+    let total = workloads.len() * options.blocks;
     let mut stopped: Option<String> = None;
-    let mut results = Vec::with_capacity(total);
-    for (done, workload) in workloads.into_iter().enumerate() {
-        progress(done, total);
-        if stopped.is_none() {
-            if let Some(signal) = crate::kernel::stdio::interrupted() {
-                stopped = Some(format!(
-                    "posconform received signal {signal}; the run stopped"
-                ));
+    let mut slots: Vec<(Workload, Slot)> =
+        workloads.into_iter().map(|w| (w, Slot::Waiting)).collect();
+    let mut done = 0;
+    for block in 0..options.blocks {
+        let rounds = rounds_in_block(options.repeat, options.blocks, block);
+        for (workload, slot) in &mut slots {
+            progress(done, total);
+            done += 1;
+            if matches!(slot, Slot::Ended(_)) {
+                continue;
             }
-        }
-        let outcome = if let Some(why) = &stopped {
-            Outcome::Error(format!("not run: {why}"))
-        } else {
-            match &mut target {
-                Target::Reference => bench.time_reference(&workload),
+            if stopped.is_none() {
+                if let Some(signal) = crate::kernel::stdio::interrupted() {
+                    stopped = Some(format!(
+                        "posconform received signal {signal}; the run stopped"
+                    ));
+                }
+            }
+            if let Some(why) = &stopped {
+                *slot = Slot::Ended(Outcome::Error(format!("not run: {why}")));
+                continue;
+            }
+            let mut rounds_of = match std::mem::replace(slot, Slot::Waiting) {
+                Slot::Running(r) => r,
+                _ => Box::default(),
+            };
+            let result = match &mut target {
+                Target::Reference => bench
+                    .time_reference(workload, &mut rounds_of, block, rounds)
+                    .map_err(|o| (o, None)),
                 Target::Kernel(kernel) | Target::InProcess(kernel) => {
-                    let (outcome, failure) = bench.time_kernel(&mut **kernel, &workload);
-                    if let Some(kind) = failure {
-                        if let Some(why) = recover(&mut **kernel, kind, &workload.name) {
+                    let result =
+                        bench.time_kernel(&mut **kernel, workload, &mut rounds_of, block, rounds);
+                    if let Err((_, Some(kind))) = &result {
+                        if let Some(why) = recover(&mut **kernel, *kind, &workload.name) {
                             bench.notes.push(why.clone());
                             stopped = Some(why);
                         }
                     }
-                    outcome
+                    result
                 }
-            }
-        };
-        results.push(WorkloadResult { workload, outcome });
+            };
+            *slot = match result {
+                Ok(()) => Slot::Running(rounds_of),
+                Err((outcome, _)) => Slot::Ended(outcome),
+            };
+        }
     }
     progress(total, total);
+    let results = slots
+        .into_iter()
+        .map(|(workload, slot)| {
+            let outcome = match slot {
+                Slot::Ended(outcome) => outcome,
+                Slot::Running(rounds) => bench.finish(&workload, &rounds, kind),
+                Slot::Waiting => Outcome::Error("not run".into()),
+            };
+            WorkloadResult { workload, outcome }
+        })
+        .collect();
     BenchReport {
         target: kind,
         subject,
@@ -696,6 +764,35 @@ pub fn measure(
         workloads: results,
         notes: bench.notes,
     }
+}
+
+/// Where a workload stands during a run.
+enum Slot {
+    /// Not started.
+    Waiting,
+    /// Timed in at least one block.
+    Running(Box<Rounds>),
+    /// Finished early: skipped or failed.
+    Ended(Outcome),
+}
+
+/// The timed rounds of one workload so far, each with its block.
+#[derive(Default)]
+struct Rounds {
+    /// The inputs as sent (built once).
+    inputs: Option<Arrays>,
+    /// The shapes of the kernel's answer, for the dry run.
+    shapes: BTreeMap<String, ArraySpec>,
+    /// The reference's times (in process) or the round trips (kernels).
+    times: Vec<f64>,
+    /// The kernel's own times, when it reported one.
+    own: Vec<f64>,
+    /// The dry runs' round trips.
+    overhead: Vec<f64>,
+    /// The calibration sample of each round.
+    samples: Vec<Sample>,
+    /// The block of each round.
+    block: Vec<usize>,
 }
 
 /// After a kernel failure of `kind`: restarts a process that needs it. `Some(reason)`
@@ -758,55 +855,89 @@ fn block(samples: &[Sample]) -> Option<(Summary, Summary, Summary)> {
     ))
 }
 
+/// A workload's failure: its outcome, and the kind of the kernel's failure when it
+/// could not answer.
+type Failure = (Outcome, Option<KernelErrorKind>);
+
 impl Bench {
-    fn time_reference(&mut self, workload: &Workload) -> Outcome {
-        let case = &workload.case;
-        let inputs = match case.inputs() {
-            Ok(i) => i,
-            Err(e) => return Outcome::Error(format!("cannot build inputs: {e}")),
-        };
-        for _ in 0..self.options.warmup {
-            if let Err(e) = reference::expected(case, &inputs) {
-                return Outcome::Error(format!("the reference failed: {e}"));
-            }
+    /// Untimed runs before a workload's share of a block: `warmup` before its first,
+    /// one before each later one (the other workloads ran in between).
+    fn warm_runs(&self, first: bool) -> usize {
+        if first {
+            self.options.warmup
+        } else {
+            self.options.warmup.min(1)
         }
-        let mut times = Vec::with_capacity(self.options.repeat);
-        let mut samples = Vec::with_capacity(self.options.repeat);
-        for _ in 0..self.options.repeat {
-            samples.push(self.calibration.sample());
-            let started = Instant::now();
-            let result = reference::expected(case, &inputs);
-            times.push(ms(started));
-            if let Err(e) = result {
-                return Outcome::Error(format!("the reference failed: {e}"));
-            }
-            drop(result);
-        }
-        self.finish(Measured::InProcess, &times, &samples, None, None, None)
     }
 
-    /// Times one workload on a kernel; the second value is the kind of the kernel's
-    /// failure when it could not answer.
+    fn time_reference(
+        &mut self,
+        workload: &Workload,
+        rounds: &mut Rounds,
+        block: usize,
+        count: usize,
+    ) -> std::result::Result<(), Outcome> {
+        let case = &workload.case;
+        let first = block == 0;
+        if rounds.inputs.is_none() {
+            rounds.inputs = Some(
+                case.inputs()
+                    .map_err(|e| Outcome::Error(format!("cannot build inputs: {e}")))?,
+            );
+        }
+        let inputs = rounds.inputs.as_ref().expect("built above");
+        let failed = |e: Error| Outcome::Error(format!("the reference failed: {e}"));
+        for _ in 0..self.warm_runs(first) {
+            reference::expected(case, inputs).map_err(failed)?;
+        }
+        for _ in 0..count {
+            rounds.samples.push(self.calibration.sample());
+            let started = Instant::now();
+            let result = reference::expected(case, inputs);
+            rounds.times.push(ms(started));
+            rounds.block.push(block);
+            drop(result.map_err(failed)?);
+        }
+        Ok(())
+    }
+
+    /// Times one workload's share of a block on a kernel.
     fn time_kernel(
         &mut self,
         kernel: &mut dyn Kernel,
         workload: &Workload,
-    ) -> (Outcome, Option<KernelErrorKind>) {
+        rounds: &mut Rounds,
+        block: usize,
+        count: usize,
+    ) -> std::result::Result<(), Failure> {
         let case = &workload.case;
+        let first = block == 0;
         let dtype = workload.dtype();
-        let inputs = match case.inputs() {
-            Ok(i) => inputs_in(&i, dtype),
-            Err(e) => return (Outcome::Error(format!("cannot build inputs: {e}")), None),
-        };
+        if rounds.inputs.is_none() {
+            rounds.inputs = Some(inputs_in(
+                &case
+                    .inputs()
+                    .map_err(|e| (Outcome::Error(format!("cannot build inputs: {e}")), None))?,
+                dtype,
+            ));
+        }
+        let inputs = rounds.inputs.as_ref().expect("built above");
         let failed = |e: Error| {
             let kind = e.kernel_kind().unwrap_or(KernelErrorKind::Failed);
             (Outcome::Error(e.to_string()), Some(kind))
         };
-        let mut shapes: BTreeMap<String, ArraySpec> = BTreeMap::new();
-        for _ in 0..self.options.warmup.max(1) {
-            match kernel.run(case, dtype, &inputs) {
-                Ok(Answer::Outputs { outputs, .. }) => {
-                    shapes = outputs
+        let declined = |reason: String| {
+            (
+                Outcome::Skipped(format!("the kernel declined: {reason}")),
+                None,
+            )
+        };
+        // At least one untimed run first: its answer tells the dry run what to send.
+        let warm = self.warm_runs(first).max(usize::from(first));
+        for _ in 0..warm {
+            match kernel.run(case, dtype, inputs).map_err(failed)? {
+                Answer::Outputs { outputs, .. } => {
+                    rounds.shapes = outputs
                         .iter()
                         .map(|(name, t)| {
                             let spec = ArraySpec {
@@ -817,46 +948,28 @@ impl Bench {
                         })
                         .collect();
                 }
-                Ok(Answer::Unsupported(reason)) => {
-                    return (
-                        Outcome::Skipped(format!("the kernel declined: {reason}")),
-                        None,
-                    )
-                }
-                Err(e) => return failed(e),
+                Answer::Unsupported(reason) => return Err(declined(reason)),
             }
         }
-        let repeat = self.options.repeat;
-        let (mut round_trips, mut own, mut overhead) = (
-            Vec::with_capacity(repeat),
-            Vec::with_capacity(repeat),
-            Vec::with_capacity(repeat),
-        );
-        let mut samples = Vec::with_capacity(repeat);
-        for _ in 0..repeat {
-            samples.push(self.calibration.sample());
+        for _ in 0..count {
+            rounds.samples.push(self.calibration.sample());
+            rounds.block.push(block);
             let started = Instant::now();
-            let answer = kernel.run(case, dtype, &inputs);
-            round_trips.push(ms(started));
-            match answer {
-                Ok(Answer::Outputs { elapsed_ms, .. }) => {
+            let answer = kernel.run(case, dtype, inputs);
+            rounds.times.push(ms(started));
+            match answer.map_err(failed)? {
+                Answer::Outputs { elapsed_ms, .. } => {
                     if let Some(t) = elapsed_ms.filter(|t| t.is_finite() && *t >= 0.0) {
-                        own.push(t);
+                        rounds.own.push(t);
                     }
                 }
-                Ok(Answer::Unsupported(reason)) => {
-                    return (
-                        Outcome::Skipped(format!("the kernel declined: {reason}")),
-                        None,
-                    )
-                }
-                Err(e) => return failed(e),
+                Answer::Unsupported(reason) => return Err(declined(reason)),
             }
             if self.dry_run != Some(false) {
                 let started = Instant::now();
-                match kernel.dry_run(case, dtype, &inputs, &shapes) {
+                match kernel.dry_run(case, dtype, inputs, &rounds.shapes) {
                     Ok(Some(_)) => {
-                        overhead.push(ms(started));
+                        rounds.overhead.push(ms(started));
                         self.dry_run = Some(true);
                     }
                     Ok(None) => {
@@ -872,52 +985,43 @@ impl Bench {
                         ));
                         if let Some(kind) = e.kernel_kind().filter(|k| k.needs_restart()) {
                             if let Some(why) = recover(kernel, kind, &workload.name) {
-                                return (Outcome::Error(why), Some(KernelErrorKind::CouldNotStart));
+                                return Err((
+                                    Outcome::Error(why),
+                                    Some(KernelErrorKind::CouldNotStart),
+                                ));
                             }
                             // The restarted process answers the remaining runs.
                         }
-                        overhead.clear();
+                        rounds.overhead.clear();
                     }
                 }
             }
         }
-        let kernel_times = (own.len() == round_trips.len()).then_some(own.as_slice());
-        if kernel_times.is_none() && !own.is_empty() {
+        Ok(())
+    }
+
+    /// The timing of a workload from all its rounds.
+    fn finish(&mut self, workload: &Workload, rounds: &Rounds, kind: TargetKind) -> Outcome {
+        self.samples.extend_from_slice(&rounds.samples);
+        let count = rounds.times.len();
+        let kernel_times = (rounds.own.len() == count).then_some(rounds.own.as_slice());
+        if kernel_times.is_none() && !rounds.own.is_empty() {
             self.notes.push(format!(
                 "{}: the kernel reported its own time in {} of {} runs; the round trip is used",
                 workload.name,
-                own.len(),
-                round_trips.len()
+                rounds.own.len(),
+                count
             ));
         }
-        let overhead = (overhead.len() == round_trips.len()).then_some(overhead.as_slice());
-        let (measured, times) = match kernel_times {
-            Some(own) => (Measured::Kernel, own),
-            None => (Measured::RoundTrip, round_trips.as_slice()),
+        let is_kernel = kind == TargetKind::Kernel;
+        let overhead = (rounds.overhead.len() == count).then_some(rounds.overhead.as_slice());
+        let (measured, times) = match (is_kernel, kernel_times) {
+            (false, _) => (Measured::InProcess, rounds.times.as_slice()),
+            (true, Some(own)) => (Measured::Kernel, own),
+            (true, None) => (Measured::RoundTrip, rounds.times.as_slice()),
         };
-        let outcome = self.finish(
-            measured,
-            times,
-            &samples,
-            Some(&round_trips),
-            kernel_times,
-            overhead,
-        );
-        (outcome, None)
-    }
-
-    fn finish(
-        &mut self,
-        measured: Measured,
-        times: &[f64],
-        samples: &[Sample],
-        round_trips: Option<&[f64]>,
-        kernel: Option<&[f64]>,
-        overhead: Option<&[f64]>,
-    ) -> Outcome {
-        self.samples.extend_from_slice(samples);
-
-        let (Some(time), Some((unit, product, sweep))) = (Summary::of(times), block(samples))
+        let (Some(time), Some((unit, product, sweep))) =
+            (Summary::of(times), block(&rounds.samples))
         else {
             return Outcome::Error("no usable timings (a clock gave no finite time)".into());
         };
@@ -925,14 +1029,31 @@ impl Bench {
         if unit.median <= 0.0 {
             return Outcome::Error("the calibration took no measurable time".into());
         }
+        let blocks = rounds.block.last().map_or(0, |b| b + 1);
+        let block_floors = (0..blocks)
+            .filter_map(|b| {
+                let pick = |values: &[f64]| {
+                    values
+                        .iter()
+                        .zip(&rounds.block)
+                        .filter(|(_, k)| **k == b)
+                        .map(|(v, _)| *v)
+                        .fold(f64::INFINITY, f64::min)
+                };
+                let units: Vec<f64> = rounds.samples.iter().map(Sample::unit_ms).collect();
+                let floor = pick(times) / pick(&units);
+                floor.is_finite().then_some(floor)
+            })
+            .collect();
         Outcome::Timed(Box::new(Timing {
             measured,
             time,
             unit,
             product,
             sweep,
-            round_trip: round_trips.and_then(Summary::of),
-            kernel: kernel.and_then(Summary::of),
+            block_floors,
+            round_trip: is_kernel.then(|| Summary::of(&rounds.times)).flatten(),
+            kernel: kernel_times.and_then(Summary::of),
             overhead: overhead.and_then(Summary::of),
         }))
     }
@@ -1001,5 +1122,92 @@ mod tests {
         };
         assert_eq!((*tokens, *prefill), (43, 3));
         assert_eq!(chunks, &vec![16, 16, 8]);
+    }
+
+    #[test]
+    fn blocks_share_out_every_round() {
+        for repeat in 1..40 {
+            for blocks in 1..=repeat {
+                let shares: Vec<usize> = (0..blocks)
+                    .map(|b| rounds_in_block(repeat, blocks, b))
+                    .collect();
+                assert_eq!(shares.iter().sum::<usize>(), repeat, "{repeat}/{blocks}");
+                let (lo, hi) = (shares.iter().min().unwrap(), shares.iter().max().unwrap());
+                assert!(hi - lo <= 1, "{repeat}/{blocks}: {shares:?}");
+            }
+        }
+    }
+
+    /// The reference, recording which workload each run was for.
+    struct Recording {
+        inner: crate::kernel::ReferenceKernel,
+        seen: Vec<String>,
+    }
+
+    impl Kernel for Recording {
+        fn describe(&mut self) -> Result<KernelInfo> {
+            self.inner.describe()
+        }
+
+        fn run(&mut self, case: &Case, dtype: Dtype, inputs: &Arrays) -> Result<Answer> {
+            self.seen.push(case.id.clone());
+            self.inner.run(case, dtype, inputs)
+        }
+    }
+
+    /// Every workload takes its turn in every block: with warm-up 2, blocks 3 and 7
+    /// rounds, the runs of two workloads go A×(2+3) B×(2+3), then A×(1+2) B×(1+2)
+    /// twice; each workload reports one floor per block, the median of which is its
+    /// floor ratio.
+    #[test]
+    fn workloads_take_turns_block_by_block() {
+        let shape: BenchShape = "L4_M2_d4_h1".parse().unwrap();
+        let workloads: Vec<Workload> = [Scheme::Rotary, Scheme::Alibi]
+            .iter()
+            .map(|&scheme| {
+                let case = workload_cases(scheme, OperationKind::Scores, shape, Dtype::F64)
+                    .unwrap()
+                    .remove(0);
+                Workload {
+                    name: case.id.clone(),
+                    shape,
+                    case,
+                }
+            })
+            .collect();
+        let (a, b) = (workloads[0].case.id.clone(), workloads[1].case.id.clone());
+        let mut kernel = Recording {
+            inner: crate::kernel::ReferenceKernel::default(),
+            seen: Vec::new(),
+        };
+        let options = BenchOptions {
+            warmup: 2,
+            repeat: 7,
+            blocks: 3,
+        };
+        let report = measure(
+            Target::InProcess(&mut kernel),
+            "recording".into(),
+            workloads,
+            &options,
+            &mut |_, _| {},
+        );
+        let mut expected = Vec::new();
+        for share in [5, 3, 3] {
+            expected.extend(std::iter::repeat_n(a.clone(), share));
+            expected.extend(std::iter::repeat_n(b.clone(), share));
+        }
+        assert_eq!(kernel.seen, expected);
+        for result in &report.workloads {
+            let Outcome::Timed(t) = &result.outcome else {
+                panic!("{:?}", result.outcome);
+            };
+            assert_eq!(t.time.count, 7);
+            assert_eq!(t.block_floors.len(), 3);
+            let floors = stats::BlockFloors::of(&t.block_floors).unwrap();
+            assert_eq!(t.floor_ratio(), floors.median);
+            assert_eq!(t.floor_noise(), floors.noise());
+        }
+        assert_eq!(report.calibration.len(), 14);
     }
 }

@@ -14,7 +14,7 @@ use crate::report::{printable, EXIT_COULD_NOT_RUN, EXIT_NONCONFORMING};
 /// The value of `"format"`, naming the document type.
 pub const FORMAT: &str = "posconform.bench";
 /// The value of `"version"`: it changes only when a key is removed or changes meaning.
-pub const VERSION: u32 = 1;
+pub const VERSION: u32 = 2;
 /// Exit status: no regression the noise supports (and every workload timed).
 pub const EXIT_NO_REGRESSION: u8 = 0;
 /// Exit status: at least one regression beyond its threshold that the noise supports.
@@ -72,6 +72,7 @@ struct Document<'a> {
 struct Settings {
     warmup: usize,
     repeat: usize,
+    blocks: usize,
 }
 
 #[derive(Serialize)]
@@ -131,6 +132,7 @@ struct WorkloadDocument<'a> {
     uncertainty: Option<Number>,
     floor_ratio: Option<Number>,
     floor_noise: Option<Number>,
+    block_floors: Option<Vec<Number>>,
     round_trip_ms: Option<Stats>,
     kernel_ms: Option<Stats>,
     overhead_ms: Option<Stats>,
@@ -215,6 +217,7 @@ pub fn json(report: &BenchReport, gate: Option<&Gate>) -> String {
                 uncertainty: timing.map(|t| Number(t.uncertainty())),
                 floor_ratio: timing.map(|t| Number(t.floor_ratio())),
                 floor_noise: timing.map(|t| Number(t.floor_noise())),
+                block_floors: timing.map(|t| t.block_floors.iter().copied().map(Number).collect()),
                 round_trip_ms: timing.and_then(|t| t.round_trip.map(Stats::from)),
                 kernel_ms: timing.and_then(|t| t.kernel.map(Stats::from)),
                 overhead_ms: timing.and_then(|t| t.overhead.map(Stats::from)),
@@ -255,6 +258,7 @@ pub fn json(report: &BenchReport, gate: Option<&Gate>) -> String {
         settings: Settings {
             warmup: report.options.warmup,
             repeat: report.options.repeat,
+            blocks: report.options.blocks,
         },
         calibration: CalibrationDocument {
             name: CALIBRATION,
@@ -316,12 +320,13 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
     };
     let _ = writeln!(
         out,
-        "posconform bench: {what} {} ({} build), {} workloads, {} warm-up + {} timed runs each",
+        "posconform bench: {what} {} ({} build), {} workloads, {} warm-up + {} timed runs each in {} blocks",
         printable(&report.subject),
         build_kind(),
         report.workloads.len(),
         report.options.warmup,
-        report.options.repeat
+        report.options.repeat,
+        report.options.blocks
     );
     if let (Some(p), Some(s), Some(u)) = (
         report.calibration_summary(|s| s.product_ms),
@@ -400,7 +405,8 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
     let _ = writeln!(
         out,
         "\nratio: median time over median calibration unit of the same rounds, ±2se two standard errors;\n\
-         floor: fastest run over fastest unit, ± its noise (what the gate compares; docs/bench.md)"
+         floor: median over blocks of each block's fastest run over its fastest unit, ± half the blocks' range\n\
+         (what the gate compares; docs/bench.md)"
     );
     if !report.notes.is_empty() {
         out.push_str("\nNotes\n");

@@ -11,10 +11,21 @@
 //! the distribution grows a long right tail, or a second mode, while its floor stays
 //! put. The floor (the fastest run) is therefore the figure the gate compares (Python's
 //! `timeit` documentation makes the same argument for the minimum of repeated timings).
-//! Its noise is the relative gap between the fastest and the third-fastest run: when
-//! the runs are resampled with replacement, the fastest of a resample is one of those
-//! three with probability `1 - (1 - 3/n)^n` (96.5% for `n = 15`), so the gap is how
-//! far the floor moves between comparable runs.
+//!
+//! One floor from one stretch of runs is not enough: measured on a 2-core machine, the
+//! floors of separate runs of the same workload differed by up to +135% while each
+//! run's own fastest-to-third-fastest gap was 2% to 9%; whatever moves a floor (the
+//! state of the other core, of the caches, of the clock) holds for a stretch of runs
+//! and changes between stretches. So the runs are timed in blocks spread over the
+//! whole bench ([`super::measure`]), the figure is the median of the blocks' floors
+//! ([`BlockFloors`]), and its noise is half their range. For five blocks, whose floors
+//! vary with some σ, the expected range of five normal samples is 2.326σ (the
+//! control-chart constant d₂ for five, from memory) and the standard error of their
+//! median about 1.2533σ/√5 ≈ 0.56σ (common practice), so half the range is about two
+//! standard errors of the figure (our choice).
+//!
+//! With a single block the noise falls back to the gap between the fastest and the
+//! third-fastest run, `(third - min) / min`.
 
 /// Order statistics of a set of samples (milliseconds, or any positive quantity).
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -68,13 +79,50 @@ impl Summary {
         1.2533 * (self.spread() / 1.349) / (self.count as f64).sqrt()
     }
 
-    /// The noise of the floor: `(third - min) / min` (see the module docs).
+    /// The noise of a floor from a single block: `(third - min) / min` (see the module
+    /// docs).
     pub fn floor_noise(&self) -> f64 {
         if self.min > 0.0 {
             (self.third - self.min) / self.min
         } else {
             0.0
         }
+    }
+}
+
+/// The floor ratios of a workload's blocks (at least two).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct BlockFloors {
+    /// Number of blocks.
+    pub count: usize,
+    /// The lowest block floor.
+    pub min: f64,
+    /// The median block floor: the workload's figure.
+    pub median: f64,
+    /// The highest block floor.
+    pub max: f64,
+}
+
+impl BlockFloors {
+    /// `None` with fewer than two blocks or a floor that is not finite and positive.
+    pub fn of(floors: &[f64]) -> Option<BlockFloors> {
+        if floors.len() < 2 || floors.iter().any(|x| !(x.is_finite() && *x > 0.0)) {
+            return None;
+        }
+        let mut sorted = floors.to_vec();
+        sorted.sort_by(f64::total_cmp);
+        Some(BlockFloors {
+            count: sorted.len(),
+            min: sorted[0],
+            median: quantile(&sorted, 0.5),
+            max: sorted[sorted.len() - 1],
+        })
+    }
+
+    /// The relative noise of the median: the range of the block floors over twice the
+    /// median (see the module docs).
+    pub fn noise(&self) -> f64 {
+        (self.max - self.min) / (2.0 * self.median)
     }
 }
 
@@ -108,6 +156,20 @@ mod tests {
         assert_eq!((s.q1, s.median, s.q3), (1.75, 2.5, 3.25));
         assert!(Summary::of(&[]).is_none());
         assert!(Summary::of(&[1.0, f64::NAN]).is_none());
+    }
+
+    #[test]
+    fn block_floors_give_the_median_and_half_the_range() {
+        // Floors 1.0, 1.2, 0.9, 1.1, 1.4: median 1.1, range 0.5, noise 0.5 / 2.2.
+        let b = BlockFloors::of(&[1.0, 1.2, 0.9, 1.1, 1.4]).unwrap();
+        assert_eq!((b.count, b.min, b.median, b.max), (5, 0.9, 1.1, 1.4));
+        assert!((b.noise() - 0.5 / 2.2).abs() < 1e-15);
+        // Two blocks: the median is their mean.
+        let two = BlockFloors::of(&[2.0, 3.0]).unwrap();
+        assert_eq!((two.median, two.noise()), (2.5, 0.2));
+        assert!(BlockFloors::of(&[1.0]).is_none());
+        assert!(BlockFloors::of(&[1.0, f64::NAN]).is_none());
+        assert!(BlockFloors::of(&[1.0, 0.0]).is_none());
     }
 
     #[test]
