@@ -3,6 +3,14 @@
 //! that a workload's time can be given as a ratio that carries from one machine to
 //! another and stays put when a shared machine slows down for a while.
 //!
+//! Each round also times the product on every core at once ([`Sample::parallel_ms`]):
+//! the machine's **headroom**, one product's time alone over the slowest of the
+//! concurrent ones, is near 1 when the other cores are free and falls towards
+//! `1/cores` when other processes hold them. It is not part of any ratio; the gate
+//! compares it between a run and its baseline ([`super::gate`]), since a kernel that
+//! runs on several threads slows down with a busy core far more than the single-thread
+//! calibration does.
+//!
 //! Both are plain loops written here and nowhere else, deliberately independent of the
 //! library's own matrix product (which gets faster as the library improves; a
 //! calibration must not). Changing either one changes every ratio: it needs a new
@@ -25,6 +33,8 @@ pub struct Calibration {
     b: Vec<f64>,
     c: Vec<f64>,
     sweep: Vec<f64>,
+    /// One output per core for the concurrent products.
+    lanes: Vec<Vec<f64>>,
 }
 
 /// One timing of both calibration workloads, in milliseconds.
@@ -34,6 +44,9 @@ pub struct Sample {
     pub product_ms: f64,
     /// The memory sweep.
     pub sweep_ms: f64,
+    /// The slowest of the same product run on every core at once (the product alone
+    /// on a machine with one core).
+    pub parallel_ms: f64,
 }
 
 impl Sample {
@@ -58,25 +71,31 @@ impl Calibration {
             b,
             c: vec![0.0; n],
             sweep: vec![1.0; SWEEP_BYTES / std::mem::size_of::<f64>()],
+            lanes: vec![vec![0.0; n]; cores()],
         }
     }
 
     /// `C = A·B` for the fixed 128 × 128 matrices, in i-k-j order (contiguous inner
     /// loop, which compilers vectorise).
     fn product(&mut self) {
-        let n = PRODUCT_SIZE;
-        self.c.iter_mut().for_each(|x| *x = 0.0);
-        for i in 0..n {
-            for k in 0..n {
-                let aik = self.a[i * n + k];
-                let row = &self.b[k * n..(k + 1) * n];
-                let out = &mut self.c[i * n..(i + 1) * n];
-                for (o, b) in out.iter_mut().zip(row) {
-                    *o += aik * b;
-                }
-            }
+        multiply(&self.a, &self.b, &mut self.c);
+    }
+
+    /// The product on every lane at once: the time from before the threads start to
+    /// after the last has finished, so that a thread kept waiting for a core counts.
+    fn parallel(&mut self) -> f64 {
+        let started = Instant::now();
+        if self.lanes.len() < 2 {
+            self.product();
+            return started.elapsed().as_secs_f64() * 1e3;
         }
-        black_box(&self.c);
+        let (a, b) = (&self.a, &self.b);
+        std::thread::scope(|scope| {
+            for c in self.lanes.iter_mut() {
+                scope.spawn(move || multiply(a, b, c));
+            }
+        });
+        started.elapsed().as_secs_f64() * 1e3
     }
 
     /// Reads and writes every element of the sweep buffer once (`x ← x/2 + 1`, which
@@ -96,11 +115,42 @@ impl Calibration {
         let started = Instant::now();
         self.sweep();
         let sweep_ms = started.elapsed().as_secs_f64() * 1e3;
+        let parallel_ms = self.parallel();
         Sample {
             product_ms,
             sweep_ms,
+            parallel_ms,
         }
     }
+}
+
+/// The most cores the headroom probe uses.
+const MAX_LANES: usize = 64;
+
+/// The cores the headroom probe runs on: the machine's available parallelism, at most
+/// [`MAX_LANES`].
+pub fn cores() -> usize {
+    std::thread::available_parallelism()
+        .map_or(1, usize::from)
+        .min(MAX_LANES)
+}
+
+/// `c = a·b` for square [`PRODUCT_SIZE`] matrices, in i-k-j order (contiguous inner
+/// loop, which compilers vectorise).
+fn multiply(a: &[f64], b: &[f64], c: &mut [f64]) {
+    let n = PRODUCT_SIZE;
+    c.iter_mut().for_each(|x| *x = 0.0);
+    for i in 0..n {
+        for k in 0..n {
+            let aik = a[i * n + k];
+            let row = &b[k * n..(k + 1) * n];
+            let out = &mut c[i * n..(i + 1) * n];
+            for (o, b) in out.iter_mut().zip(row) {
+                *o += aik * b;
+            }
+        }
+    }
+    black_box(c);
 }
 
 impl Default for Calibration {

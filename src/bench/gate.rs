@@ -15,6 +15,12 @@
 //!   factor);
 //! - **unchanged** otherwise.
 //!
+//! The machine's headroom ([`super::calibrate`]) is compared too: a kernel on several
+//! threads slows down far more than the calibration when other processes hold cores.
+//! When this run's headroom is below the baseline's by more than the factor
+//! [`HEADROOM_LIMIT`], a *regressed* verdict becomes *too noisy to judge*, saying why;
+//! when it is above by that factor, an *improved* one does.
+//!
 //! Only *regressed* fails the gate (exit 1). A workload in one run and not the other is
 //! *new* or *missing*; one measured differently (the kernel's own time in one run, the
 //! round trip in the other) is *not comparable*. None of these fails the gate.
@@ -33,6 +39,12 @@ use crate::run::select::IdPattern;
 pub const DEFAULT_THRESHOLD: f64 = 0.25;
 /// The largest threshold accepted (1000%).
 pub const MAX_THRESHOLD: f64 = 10.0;
+/// How far the headroom of a run and of its baseline may differ (as a factor) before
+/// regressions (less headroom now) or improvements (more) are no longer judged. Our
+/// choice from measurements on a 2-core machine: idle runs 0.57 to 0.68, runs beside a
+/// busy loop holding one core 0.37 to 0.41.
+pub const HEADROOM_LIMIT: f64 = 1.3;
+
 /// The largest baseline file read.
 const MAX_BASELINE_BYTES: u64 = 256 << 20;
 
@@ -120,6 +132,8 @@ pub struct Baseline {
     pub path: PathBuf,
     /// Its timed workloads.
     pub entries: Vec<BaselineEntry>,
+    /// The machine's headroom during it (`calibration.headroom`), when recorded.
+    pub headroom: Option<f64>,
 }
 
 impl Baseline {
@@ -260,9 +274,22 @@ impl Baseline {
                 floor_noise: number("floor_noise", false)?,
             });
         }
+        let headroom = match doc.get("calibration").and_then(|c| c.get("headroom")) {
+            None | Some(Value::Null) => None,
+            Some(v) => match v.as_f64() {
+                Some(x) if x.is_finite() && x > 0.0 => Some(x),
+                _ => {
+                    return Err(Error::format(
+                        at("calibration.headroom"),
+                        "not a number more than 0 or null",
+                    ))
+                }
+            },
+        };
         Ok(Baseline {
             path: path.to_path_buf(),
             entries,
+            headroom,
         })
     }
 }
@@ -374,7 +401,8 @@ pub struct Change {
     pub threshold: f64,
     /// The verdict.
     pub verdict: Verdict,
-    /// Why, for *not comparable* and *missing*.
+    /// Why, for *not comparable*, *missing*, and *too noisy* when the machine's headroom
+    /// differed from the baseline's.
     pub reason: Option<String>,
 }
 
@@ -408,6 +436,7 @@ impl Gate {
 pub fn compare(report: &BenchReport, baseline: &Baseline, thresholds: &Thresholds) -> Gate {
     let mut changes = Vec::new();
     let mut matched = vec![false; baseline.entries.len()];
+    let headroom = baseline.headroom.zip(report.headroom());
     for result in &report.workloads {
         let name = &result.workload.name;
         let threshold = thresholds.for_name(name);
@@ -462,7 +491,22 @@ pub fn compare(report: &BenchReport, baseline: &Baseline, thresholds: &Threshold
             continue;
         }
         let (verdict, range) = judge(base.floor_ratio, base.floor_noise, now.0, now.1, threshold);
-        changes.push(row(verdict, Some(now), Some(range), None));
+        let (verdict, reason) = match (&verdict, headroom) {
+            (Verdict::Regressed, Some((b, n))) if n * HEADROOM_LIMIT < b => (
+                Verdict::TooNoisy,
+                Some(format!(
+                    "slower beyond the threshold, but the machine had less headroom than during the baseline ({n:.2} against {b:.2}): other processes held cores"
+                )),
+            ),
+            (Verdict::Improved, Some((b, n))) if n > b * HEADROOM_LIMIT => (
+                Verdict::TooNoisy,
+                Some(format!(
+                    "faster beyond the threshold, but the machine had more headroom than during the baseline ({n:.2} against {b:.2})"
+                )),
+            ),
+            _ => (verdict, None),
+        };
+        changes.push(row(verdict, Some(now), Some(range), reason));
     }
     for (entry, _) in baseline
         .entries
@@ -536,5 +580,86 @@ mod tests {
         // Exact figures: nothing but the threshold decides.
         assert_eq!(judge(1.0, 0.0, 1.24, 0.0, 0.25).0, Verdict::Unchanged);
         assert_eq!(judge(1.0, 0.0, 1.26, 0.0, 0.25).0, Verdict::Regressed);
+    }
+
+    /// A report of one timed workload with floor ratio `floor` (block floors all
+    /// equal: no noise) on a machine of headroom `alone / together`.
+    fn report_with(floor: f64, alone: f64, together: f64) -> BenchReport {
+        use super::super::{calibrate::Sample, stats::Summary, Timing, WorkloadResult};
+        let shape: super::super::BenchShape = "L4_M2_d4_h1".parse().unwrap();
+        let case = super::super::workload_cases(
+            crate::scheme::Scheme::Alibi,
+            crate::case::OperationKind::Scores,
+            shape,
+            crate::math::precision::Dtype::F64,
+        )
+        .unwrap()
+        .remove(0);
+        let one = Summary::of(&[1.0]).unwrap();
+        let sample = Sample {
+            product_ms: alone,
+            sweep_ms: 1.0,
+            parallel_ms: together,
+        };
+        BenchReport {
+            target: TargetKind::Reference,
+            subject: "test".into(),
+            options: Default::default(),
+            calibration: vec![sample; 3],
+            dry_run: None,
+            workloads: vec![WorkloadResult {
+                workload: super::super::Workload {
+                    name: "w".into(),
+                    shape,
+                    case,
+                },
+                outcome: Outcome::Timed(Box::new(Timing {
+                    measured: Measured::InProcess,
+                    time: one,
+                    unit: one,
+                    product: one,
+                    sweep: one,
+                    block_floors: vec![floor; 5],
+                    round_trip: None,
+                    kernel: None,
+                    overhead: None,
+                })),
+            }],
+            notes: Vec::new(),
+        }
+    }
+
+    fn baseline_of(report: &BenchReport) -> Baseline {
+        let json = render::json(report, None);
+        Baseline::parse(json.as_bytes(), Path::new("base.json")).unwrap()
+    }
+
+    /// Twice as slow with as much headroom as the baseline: regressed. With headroom
+    /// 0.4 against 0.6 (a core held by another process): too noisy, saying why. Twice
+    /// as fast with more headroom than the baseline: too noisy, not improved.
+    #[test]
+    fn less_headroom_than_the_baseline_turns_a_regression_into_too_noisy() {
+        let thresholds = Thresholds::default();
+        let base = baseline_of(&report_with(1.0, 0.6, 1.0));
+        assert_eq!(base.headroom, Some(0.6));
+        let slow_alike = compare(&report_with(2.0, 0.6, 1.0), &base, &thresholds);
+        assert_eq!(slow_alike.changes[0].verdict, Verdict::Regressed);
+        assert!(slow_alike.failed());
+        let slow_busy = compare(&report_with(2.0, 0.4, 1.0), &base, &thresholds);
+        assert_eq!(slow_busy.changes[0].verdict, Verdict::TooNoisy);
+        let why = slow_busy.changes[0].reason.as_deref().unwrap();
+        assert!(
+            why.contains("less headroom than during the baseline (0.40 against 0.60)"),
+            "{why}"
+        );
+        assert!(!slow_busy.failed());
+        // Slightly less headroom (0.5 against 0.6, within the limit) still regresses.
+        let slow_a_little_busier = compare(&report_with(2.0, 0.5, 1.0), &base, &thresholds);
+        assert_eq!(slow_a_little_busier.changes[0].verdict, Verdict::Regressed);
+        let busy_base = baseline_of(&report_with(1.0, 0.4, 1.0));
+        let fast_free = compare(&report_with(0.5, 0.6, 1.0), &busy_base, &thresholds);
+        assert_eq!(fast_free.changes[0].verdict, Verdict::TooNoisy);
+        let fast_alike = compare(&report_with(0.5, 0.4, 1.0), &busy_base, &thresholds);
+        assert_eq!(fast_alike.changes[0].verdict, Verdict::Improved);
     }
 }

@@ -626,6 +626,14 @@ impl BenchReport {
             .any(|w| matches!(w.outcome, Outcome::Error(_)))
     }
 
+    /// The machine's headroom over the run ([`calibrate`]): the median product alone
+    /// over the median of the slowest concurrent products. `None` without samples.
+    pub fn headroom(&self) -> Option<f64> {
+        let alone = self.calibration_summary(|s| s.product_ms)?.median;
+        let together = self.calibration_summary(|s| s.parallel_ms)?.median;
+        (together > 0.0).then_some(alone / together)
+    }
+
     /// The summary of a calibration quantity over the whole run.
     pub fn calibration_summary(&self, of: impl Fn(&Sample) -> f64) -> Option<Summary> {
         let values: Vec<f64> = self.calibration.iter().map(of).collect();

@@ -5,7 +5,7 @@ use std::fmt::Write as _;
 
 use serde::Serialize;
 
-use super::calibrate::{CALIBRATION, PRODUCT_SIZE, SWEEP_BYTES};
+use super::calibrate::{self, CALIBRATION, PRODUCT_SIZE, SWEEP_BYTES};
 use super::gate::{Gate, Verdict};
 use super::stats::Summary;
 use super::{build_kind, BenchReport, Outcome, Timing};
@@ -84,6 +84,9 @@ struct CalibrationDocument {
     product_ms: Option<Stats>,
     sweep_ms: Option<Stats>,
     unit_ms: Option<Stats>,
+    parallel_ms: Option<Stats>,
+    cores: usize,
+    headroom: Option<Number>,
 }
 
 #[derive(Serialize)]
@@ -270,6 +273,11 @@ pub fn json(report: &BenchReport, gate: Option<&Gate>) -> String {
                 .map(Stats::from),
             sweep_ms: report.calibration_summary(|s| s.sweep_ms).map(Stats::from),
             unit_ms: report.calibration_summary(|s| s.unit_ms()).map(Stats::from),
+            parallel_ms: report
+                .calibration_summary(|s| s.parallel_ms)
+                .map(Stats::from),
+            cores: calibrate::cores(),
+            headroom: report.headroom().map(Number),
         },
         dry_run: report.dry_run,
         notes: &report.notes,
@@ -341,6 +349,13 @@ pub fn text(report: &BenchReport, gate: Option<&Gate>) -> String {
             millis(u.median),
             u.count,
             u.spread() * 100.0
+        );
+    }
+    if let Some(h) = report.headroom() {
+        let _ = writeln!(
+            out,
+            "headroom {h:.2}: the product alone over the product on all {} cores at once (near 1 when the other cores are free)",
+            calibrate::cores()
         );
     }
     let kernel = report.target == super::TargetKind::Kernel;
