@@ -3,10 +3,11 @@
 //! that a workload's time can be given as a ratio that carries from one machine to
 //! another and stays put when a shared machine slows down for a while.
 //!
-//! Each round also times the product on every core at once ([`Sample::parallel_ms`]):
-//! the machine's **headroom**, one product's time alone over the slowest of the
-//! concurrent ones, is near 1 when the other cores are free and falls towards
-//! `1/cores` when other processes hold them. It is not part of any ratio; the gate
+//! At the start of every block, after a pause that lets the kernel's own threads go
+//! idle, a few probes time the product alone and on every core at once ([`Probe`]):
+//! the machine's **headroom**, the product alone over the concurrent products, is near
+//! 1 when the other cores are free and falls towards `1/cores` when other processes
+//! hold them. It is not part of any ratio; the gate
 //! compares it between a run and its baseline ([`super::gate`]), since a kernel that
 //! runs on several threads slows down with a busy core far more than the single-thread
 //! calibration does.
@@ -44,9 +45,16 @@ pub struct Sample {
     pub product_ms: f64,
     /// The memory sweep.
     pub sweep_ms: f64,
-    /// The slowest of the same product run on every core at once (the product alone
-    /// on a machine with one core).
-    pub parallel_ms: f64,
+}
+
+/// One headroom probe, in milliseconds.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Probe {
+    /// The product alone.
+    pub alone_ms: f64,
+    /// The product on every core at once, from before the threads start to after the
+    /// last one ends (the product alone on a machine with one core).
+    pub together_ms: f64,
 }
 
 impl Sample {
@@ -115,11 +123,20 @@ impl Calibration {
         let started = Instant::now();
         self.sweep();
         let sweep_ms = started.elapsed().as_secs_f64() * 1e3;
-        let parallel_ms = self.parallel();
         Sample {
             product_ms,
             sweep_ms,
-            parallel_ms,
+        }
+    }
+
+    /// Times one headroom probe.
+    pub fn probe(&mut self) -> Probe {
+        let started = Instant::now();
+        self.product();
+        let alone_ms = started.elapsed().as_secs_f64() * 1e3;
+        Probe {
+            alone_ms,
+            together_ms: self.parallel(),
         }
     }
 }

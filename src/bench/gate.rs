@@ -585,7 +585,7 @@ mod tests {
     /// A report of one timed workload with floor ratio `floor` (block floors all
     /// equal: no noise) on a machine of headroom `alone / together`.
     fn report_with(floor: f64, alone: f64, together: f64) -> BenchReport {
-        use super::super::{calibrate::Sample, stats::Summary, Timing, WorkloadResult};
+        use super::super::{calibrate::Probe, stats::Summary, Timing, WorkloadResult};
         let shape: super::super::BenchShape = "L4_M2_d4_h1".parse().unwrap();
         let case = super::super::workload_cases(
             crate::scheme::Scheme::Alibi,
@@ -596,16 +596,16 @@ mod tests {
         .unwrap()
         .remove(0);
         let one = Summary::of(&[1.0]).unwrap();
-        let sample = Sample {
-            product_ms: alone,
-            sweep_ms: 1.0,
-            parallel_ms: together,
+        let probe = Probe {
+            alone_ms: alone,
+            together_ms: together,
         };
         BenchReport {
             target: TargetKind::Reference,
             subject: "test".into(),
             options: Default::default(),
-            calibration: vec![sample; 3],
+            calibration: Vec::new(),
+            probes: vec![probe; 3],
             dry_run: None,
             workloads: vec![WorkloadResult {
                 workload: super::super::Workload {

@@ -44,7 +44,7 @@ use crate::run::select::Filter;
 use crate::scheme::{Scheme, SchemeSpec};
 use crate::tensor::Tensor;
 
-use calibrate::{Calibration, Sample};
+use calibrate::{Calibration, Probe, Sample};
 use stats::Summary;
 
 /// The sizes of a workload: `H` heads, `L` queries, `M` memory keys, head width `d`.
@@ -437,6 +437,14 @@ pub struct BenchOptions {
     pub blocks: usize,
 }
 
+/// Headroom probes at the start of every block.
+pub const PROBES: usize = 3;
+/// The pause before them: long enough for a kernel's threads to stop spinning after
+/// its last run (a BLAS library's workers spin for a while before they sleep; our
+/// choice, from the numpy example kernel, whose probes read 0.31 without a pause on an
+/// otherwise idle 2-core machine).
+pub const PROBE_PAUSE: std::time::Duration = std::time::Duration::from_millis(200);
+
 /// Blocks when none are given: five (our choice: enough for the range of the block
 /// floors to mean something, few enough that every block keeps three runs of the
 /// default fifteen).
@@ -609,6 +617,8 @@ pub struct BenchReport {
     pub options: BenchOptions,
     /// Every calibration sample of the run, in order.
     pub calibration: Vec<Sample>,
+    /// The headroom probes, [`PROBES`] at the start of every block.
+    pub probes: Vec<Probe>,
     /// Whether the kernel answered `dry_run` (`None`: never asked: the reference, or a
     /// kernel in process).
     pub dry_run: Option<bool>,
@@ -627,10 +637,12 @@ impl BenchReport {
     }
 
     /// The machine's headroom over the run ([`calibrate`]): the median product alone
-    /// over the median of the slowest concurrent products. `None` without samples.
+    /// over the median concurrent products of the probes. `None` without probes.
     pub fn headroom(&self) -> Option<f64> {
-        let alone = self.calibration_summary(|s| s.product_ms)?.median;
-        let together = self.calibration_summary(|s| s.parallel_ms)?.median;
+        let of = |f: fn(&Probe) -> f64| {
+            Summary::of(&self.probes.iter().map(f).collect::<Vec<_>>()).map(|s| s.median)
+        };
+        let (alone, together) = (of(|p| p.alone_ms)?, of(|p| p.together_ms)?);
         (together > 0.0).then_some(alone / together)
     }
 
@@ -706,8 +718,13 @@ pub fn measure(
     let mut slots: Vec<(Workload, Slot)> =
         workloads.into_iter().map(|w| (w, Slot::Waiting)).collect();
     let mut done = 0;
+    let mut probes = Vec::with_capacity(options.blocks * PROBES);
     for block in 0..options.blocks {
         let rounds = rounds_in_block(options.repeat, options.blocks, block);
+        if stopped.is_none() {
+            std::thread::sleep(PROBE_PAUSE);
+            probes.extend((0..PROBES).map(|_| bench.calibration.probe()));
+        }
         for (workload, slot) in &mut slots {
             progress(done, total);
             done += 1;
@@ -768,6 +785,7 @@ pub fn measure(
         subject,
         options,
         calibration: bench.samples,
+        probes,
         dry_run: bench.dry_run.filter(|_| bench.asked_dry_run),
         workloads: results,
         notes: bench.notes,

@@ -84,8 +84,8 @@ struct CalibrationDocument {
     product_ms: Option<Stats>,
     sweep_ms: Option<Stats>,
     unit_ms: Option<Stats>,
-    parallel_ms: Option<Stats>,
     cores: usize,
+    headroom_probes: usize,
     headroom: Option<Number>,
 }
 
@@ -273,10 +273,8 @@ pub fn json(report: &BenchReport, gate: Option<&Gate>) -> String {
                 .map(Stats::from),
             sweep_ms: report.calibration_summary(|s| s.sweep_ms).map(Stats::from),
             unit_ms: report.calibration_summary(|s| s.unit_ms()).map(Stats::from),
-            parallel_ms: report
-                .calibration_summary(|s| s.parallel_ms)
-                .map(Stats::from),
             cores: calibrate::cores(),
+            headroom_probes: report.probes.len(),
             headroom: report.headroom().map(Number),
         },
         dry_run: report.dry_run,
