@@ -213,7 +213,7 @@ fn paths(c: &mut Criterion) {
                     &case,
                     output,
                     &expected[&output],
-                    answer[output.name()].view(),
+                    answer[output.name()].view().view(),
                     Dtype::F64,
                     &budgets[&output],
                     &visibility,

@@ -114,47 +114,74 @@ fn assemble(
     };
     let mut out = BTreeMap::new();
     for (&output, want) in expected {
-        let exact = output.is_integer();
-        let dtype = if exact { Dtype::I64 } else { dtype };
         let baseline_error = baseline
             .get(&output)
-            .map(|b| {
-                want.iter()
-                    .zip(b.iter())
-                    .filter(|(w, _)| w.is_finite())
-                    .map(|(w, b)| (w - b).abs())
-                    .fold(0.0, f64::max)
-            })
+            .map(|b| baseline_deviation(want, b))
             .unwrap_or(0.0);
-        let largest = want
-            .iter()
-            .filter(|x| x.is_finite())
-            .fold(0.0f64, |m, x| m.max(x.abs()));
-        // The worst case is the analytic bound's job; the floor only keeps an f64
-        // baseline budget (where the baseline is the oracle itself) from being zero, so
-        // it uses the probabilistic size sqrt(n)·u of a sum's rounding error (Higham and
-        // Mary 2019, from memory), in the accumulation precision.
-        let n = reference::reduction_length(case, output) as f64;
-        let floor = n.sqrt() * accumulation_gamma(dtype, 1) * largest;
-        out.insert(
+        let budget = from_parts(
+            case,
             output,
-            Budget {
-                dtype,
-                factor,
-                baseline_error,
-                floor,
-                // Flat indexing (analytic_at) needs row-major storage (copied only when
-                // the bound is not already row-major).
-                analytic: analytic.remove(&output).map(|a| {
-                    if a.is_standard_layout() {
-                        a
-                    } else {
-                        a.as_standard_layout().into_owned()
-                    }
-                }),
-                exact,
-            },
+            dtype,
+            factor,
+            baseline_error,
+            largest_expected(want),
+            analytic.remove(&output),
         );
+        out.insert(output, budget);
     }
     Ok(out)
+}
+
+/// The largest deviation of the baseline `b` from the oracle `want` over the finite
+/// expected values (a maximum: the same taken over the whole array or head by head).
+pub(crate) fn baseline_deviation(want: &ArrayD<f64>, b: &ArrayD<f64>) -> f64 {
+    want.iter()
+        .zip(b.iter())
+        .filter(|(w, _)| w.is_finite())
+        .map(|(w, b)| (w - b).abs())
+        .fold(0.0, f64::max)
+}
+
+/// The largest finite expected magnitude (a maximum, like [`baseline_deviation`]).
+pub(crate) fn largest_expected(want: &ArrayD<f64>) -> f64 {
+    want.iter()
+        .filter(|x| x.is_finite())
+        .fold(0.0f64, |m, x| m.max(x.abs()))
+}
+
+/// The budget of `output` from the baseline's deviation, the largest expected
+/// magnitude and the analytic bound (whole, or one head's rows).
+pub(crate) fn from_parts(
+    case: &Case,
+    output: Output,
+    dtype: Dtype,
+    factor: f64,
+    baseline_error: f64,
+    largest: f64,
+    analytic: Option<ArrayD<f64>>,
+) -> Budget {
+    let exact = output.is_integer();
+    let dtype = if exact { Dtype::I64 } else { dtype };
+    // The worst case is the analytic bound's job; the floor only keeps an f64 baseline
+    // budget (where the baseline is the oracle itself) from being zero, so it uses the
+    // probabilistic size sqrt(n)·u of a sum's rounding error (Higham and Mary 2019,
+    // from memory), in the accumulation precision.
+    let n = reference::reduction_length(case, output) as f64;
+    let floor = n.sqrt() * accumulation_gamma(dtype, 1) * largest;
+    Budget {
+        dtype,
+        factor,
+        baseline_error,
+        floor,
+        // Flat indexing (analytic_at) needs row-major storage (copied only when the
+        // bound is not already row-major).
+        analytic: analytic.map(|a| {
+            if a.is_standard_layout() {
+                a
+            } else {
+                a.as_standard_layout().into_owned()
+            }
+        }),
+        exact,
+    }
 }

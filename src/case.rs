@@ -290,7 +290,9 @@ impl Case {
     /// Bytes of memory checking this case needs at its peak, estimated: its inputs
     /// (twice: as generated and as sent) and [`OUTPUT_COPIES`] f64 copies of its outputs
     /// (the expected values, their bounds and the kernel's answer, with the
-    /// intermediates of the bounds). Shapes must have passed the element checks of
+    /// intermediates of the bounds); for a case compared head by head
+    /// ([`crate::headwise::compared_by_head`]), the answer once (counted as f64) and
+    /// six f64 copies of one head's outputs. Shapes must have passed the element checks of
     /// [`Case::validate`]; the arithmetic saturates.
     pub fn memory_needed(&self) -> u64 {
         let elements = |shape: &[usize]| {
@@ -306,6 +308,17 @@ impl Case {
             .output_shapes()
             .iter()
             .fold(0u64, |acc, (_, shape)| acc.saturating_add(elements(shape)));
+        if crate::headwise::compared_by_head(self) {
+            // Compared head by head: the answer (at most f64 wide) and about six f64
+            // copies of one head's outputs (expected values, bounds or baseline, their
+            // intermediates, the answer's head converted).
+            let per_head = outputs / (self.heads.max(1) as u64);
+            return inputs
+                .saturating_mul(2)
+                .saturating_add(outputs)
+                .saturating_add(per_head.saturating_mul(6))
+                .saturating_mul(8);
+        }
         inputs
             .saturating_mul(2)
             .saturating_add(outputs.saturating_mul(OUTPUT_COPIES))

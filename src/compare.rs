@@ -24,6 +24,7 @@ use crate::error::Result;
 use crate::math::precision::{ulp_distance, Dtype};
 use crate::reference::Outputs;
 use crate::scheme::Scheme;
+use crate::tensor::Tensor;
 
 /// How to compare.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -205,6 +206,12 @@ pub enum Warning {
         /// The dtype it ran in.
         ran: Dtype,
     },
+    /// A large case compared one head at a time (to bound memory), whose failing
+    /// outputs were not described further.
+    ComparedByHead {
+        /// Bytes the whole-array comparison would have held.
+        bytes: u64,
+    },
     /// A vector file written by another version of posconform, whose values this build
     /// derives differently (the stored ones are used).
     OtherVersion {
@@ -281,6 +288,13 @@ impl fmt::Display for Warning {
             Warning::NotListed { case, ran } => write!(
                 f,
                 "the case is written for {case}, which the kernel does not list; it was run in {ran}"
+            ),
+            Warning::ComparedByHead { bytes } => write!(
+                f,
+                "compared one head at a time to bound memory (the whole arrays need about {:.1} GB): \
+                 error patterns, the heatmap and the fault diagnosis were not computed for this case; \
+                 the shrunk minimal case, or the same case with fewer heads or a shorter window, has them",
+                *bytes as f64 / 1e9
             ),
             Warning::OtherVersion {
                 writer,
@@ -570,7 +584,7 @@ pub fn compare_with_budgets(
                 declared,
                 array_dtype,
                 budget_dtype,
-                tensor.view(),
+                tensor,
                 &mut report.warnings,
             );
         }
@@ -595,7 +609,7 @@ pub fn compare_with_budgets(
             case,
             output,
             want,
-            tensor.view(),
+            tensor.view().view(),
             declared,
             budget,
             &visibility,
@@ -655,12 +669,12 @@ pub fn diagnosable(case: &Case) -> bool {
         <= DIAGNOSIS_ELEMENTS
 }
 
-fn warn_about_dtypes(
+pub(crate) fn warn_about_dtypes(
     output: Output,
     declared: Dtype,
     array_dtype: Dtype,
     budget_dtype: Dtype,
-    values: ArrayViewD<'_, f64>,
+    values: &Tensor,
     warnings: &mut Vec<Warning>,
 ) {
     if array_dtype != declared {
@@ -678,18 +692,22 @@ fn warn_about_dtypes(
         });
     }
     // A kernel that claims a wide dtype but returns values that all fit a narrow one
-    // probably computes in the narrow one.
-    let finite = || {
-        values
-            .iter()
-            .copied()
-            .filter(|x| x.is_finite() && *x != 0.0)
-    };
-    if finite().nth(15).is_some() {
-        for narrow in [Dtype::Bf16, Dtype::F16, Dtype::F32] {
-            if narrow.unit_roundoff() > declared.unit_roundoff()
-                && finite().all(|x| narrow.represents(x))
-            {
+    // probably computes in the narrow one (one pass over the values, converted one at
+    // a time: a narrow answer is never widened whole).
+    let narrows = [Dtype::Bf16, Dtype::F16, Dtype::F32];
+    let mut fits = [true; 3];
+    let mut finite = 0usize;
+    values.for_each_value(|x| {
+        if x.is_finite() && x != 0.0 {
+            finite += 1;
+            for (fit, narrow) in fits.iter_mut().zip(narrows) {
+                *fit = *fit && narrow.represents(x);
+            }
+        }
+    });
+    if finite >= 16 {
+        for (fit, narrow) in fits.into_iter().zip(narrows) {
+            if narrow.unit_roundoff() > declared.unit_roundoff() && fit {
                 warnings.push(Warning::FitsNarrower {
                     output,
                     declared,
@@ -723,9 +741,12 @@ struct Worst {
     got: f64,
     expected: f64,
     tolerance: f64,
+    /// The analytic bound there (0 where there is none).
+    analytic: f64,
 }
 
 impl Worst {
+    #[allow(clippy::too_many_arguments)]
     fn offer(
         &mut self,
         n: usize,
@@ -733,6 +754,7 @@ impl Worst {
         got: f64,
         expected: f64,
         tolerance: f64,
+        analytic: f64,
         masked: bool,
     ) {
         let better = self.at.is_none()
@@ -746,8 +768,275 @@ impl Worst {
                 got,
                 expected,
                 tolerance,
+                analytic,
             };
         }
+    }
+}
+
+/// The largest kernel score over the visible entries of each row of `want`/`got`
+/// (whole rows of `keys` entries starting at flat element `start`), for sentinels.
+fn row_maxima(
+    want: &[f64],
+    got: &[f64],
+    keys: usize,
+    start: usize,
+    visibility: &Visibility,
+) -> Vec<f64> {
+    want.chunks(keys)
+        .zip(got.chunks(keys))
+        .enumerate()
+        .map(|(row, (w, g))| {
+            w.iter()
+                .zip(g)
+                .enumerate()
+                .filter(|&(j, (w, g))| {
+                    w.is_finite() && g.is_finite() && !visibility.hidden(start + row * keys + j)
+                })
+                .fold(f64::NEG_INFINITY, |m, (_, (_, &g))| m.max(g))
+        })
+        .collect()
+}
+
+/// The element statistics of one output, fed in row-major pieces that start on a row
+/// boundary ([`Tally::feed`]): the whole array at once ([`compare_output`]) or one head
+/// at a time ([`crate::stream`]), with the same result either way, since every
+/// statistic is a count, a maximum or the first element with the largest ratio, taken
+/// in the same element order.
+pub(crate) struct Tally<'v> {
+    key_indexed: bool,
+    is_scores: bool,
+    keys: usize,
+    visibility: &'v Visibility,
+    allowance: f64,
+    smallest: f64,
+    declared: Dtype,
+    stats: OutputReport,
+    /// Flat indices of the elements over budget, when kept (for the patterns).
+    failing: Option<Vec<usize>>,
+    over_budget: usize,
+    leaks: usize,
+    masked_non_finite: usize,
+    sentinel: Option<f64>,
+    saw_mask: bool,
+    worst: Worst,
+    analytic_holds: bool,
+    exact: bool,
+}
+
+impl<'v> Tally<'v> {
+    /// A tally for `output` of `shape` judged against `budget` (its analytic bound is
+    /// given piece by piece to [`Tally::feed`]); `keep_failing` keeps the indices of
+    /// the elements over budget.
+    pub(crate) fn new(
+        output: Output,
+        shape: &[usize],
+        declared: Dtype,
+        budget: &Budget,
+        visibility: &'v Visibility,
+        keep_failing: bool,
+    ) -> Self {
+        let key_indexed = output.is_key_indexed() && shape.len() == 3;
+        Tally {
+            key_indexed,
+            is_scores: key_indexed && output == Output::Scores,
+            keys: if key_indexed { shape[2].max(1) } else { 1 },
+            visibility,
+            allowance: budget.allowance(),
+            // A probability rounds to zero in the dtype when it is below half the
+            // smallest positive value; compared as 2p < smallest, since half of f64's
+            // smallest subnormal is itself 0.
+            smallest: smallest_positive(budget.dtype),
+            declared,
+            stats: OutputReport {
+                name: output,
+                shape: shape.to_vec(),
+                dtype: declared,
+                array_dtype: declared,
+                budget_dtype: budget.dtype,
+                passed: true,
+                decided_by: if budget.exact {
+                    Criterion::Exact
+                } else {
+                    Criterion::Analytic
+                },
+                max_abs: 0.0,
+                max_rel: 0.0,
+                max_ulp: 0.0,
+                worst: None,
+                worst_error: 0.0,
+                worst_ratio: 0.0,
+                worst_got: 0.0,
+                worst_expected: 0.0,
+                worst_tolerance: 0.0,
+                over_budget: 0,
+                elements: 0,
+                non_finite: 0,
+                allowance: budget.allowance(),
+                masking: None,
+                patterns: Vec::new(),
+                error_map: None,
+            },
+            failing: keep_failing.then(Vec::new),
+            over_budget: 0,
+            leaks: 0,
+            masked_non_finite: 0,
+            sentinel: None,
+            saw_mask: false,
+            worst: Worst::default(),
+            analytic_holds: budget.analytic.is_some(),
+            exact: budget.exact,
+        }
+    }
+
+    /// Judges the elements `start..start + want.len()` (`start` on a row boundary):
+    /// expected values, the kernel's, and the analytic bounds of the same elements.
+    pub(crate) fn feed(
+        &mut self,
+        start: usize,
+        want: &[f64],
+        got: &[f64],
+        analytic: Option<&[f64]>,
+    ) {
+        let (key_indexed, is_scores, keys) = (self.key_indexed, self.is_scores, self.keys);
+        let (allowance, smallest, declared) = (self.allowance, self.smallest, self.declared);
+        let visibility = self.visibility;
+        let row_max = if is_scores {
+            row_maxima(want, got, keys, start, visibility)
+        } else {
+            Vec::new()
+        };
+        let masked =
+            |n: usize, w: f64| key_indexed && (visibility.hidden(n) || w == f64::NEG_INFINITY);
+        // A masked entry holds what it must: a -inf score, or a finite one carrying zero
+        // probability; a zero probability.
+        let masked_ok = |local: usize, g: f64| {
+            if is_scores {
+                if g == f64::NEG_INFINITY {
+                    true
+                } else if g.is_finite() {
+                    let max = row_max[local / keys];
+                    max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
+                } else {
+                    false
+                }
+            } else {
+                g == 0.0
+            }
+        };
+        let stats = &mut self.stats;
+        for (local, (&w, &g)) in want.iter().zip(got).enumerate() {
+            let n = start + local;
+            stats.elements += 1;
+            let analytic = analytic.and_then(|a| a.get(local)).copied().unwrap_or(0.0);
+            if masked(n, w) {
+                self.saw_mask = true;
+                if is_scores && g.is_finite() && g != f64::NEG_INFINITY {
+                    self.sentinel = Some(self.sentinel.map_or(g, |s: f64| s.max(g)));
+                }
+                if !masked_ok(local, g) {
+                    if g.is_nan() || g == f64::INFINITY {
+                        stats.non_finite += 1;
+                        self.masked_non_finite += 1;
+                    } else {
+                        self.leaks += 1;
+                    }
+                    self.worst
+                        .offer(n, f64::INFINITY, g, w, 0.0, analytic, true);
+                    self.over_budget += 1;
+                    if let Some(f) = &mut self.failing {
+                        f.push(n);
+                    }
+                }
+                continue;
+            }
+            let tolerance = analytic.max(allowance);
+            if !g.is_finite() {
+                // A non-finite answer where a finite one is expected is an infinite error.
+                stats.max_abs = f64::INFINITY;
+                stats.max_rel = f64::INFINITY;
+                stats.max_ulp = f64::INFINITY;
+                stats.non_finite += 1;
+                self.worst
+                    .offer(n, f64::INFINITY, g, w, tolerance, analytic, false);
+                self.over_budget += 1;
+                if let Some(f) = &mut self.failing {
+                    f.push(n);
+                }
+                continue;
+            }
+            let err = (g - w).abs();
+            stats.max_abs = stats.max_abs.max(err);
+            if w != 0.0 {
+                stats.max_rel = stats.max_rel.max(err / w.abs());
+            }
+            stats.max_ulp = stats.max_ulp.max(ulp_distance(g, w, declared));
+            if err > analytic {
+                self.analytic_holds = false;
+            }
+            let ratio = if tolerance > 0.0 {
+                err / tolerance
+            } else if err > 0.0 {
+                f64::INFINITY
+            } else {
+                0.0
+            };
+            self.worst.offer(n, ratio, g, w, tolerance, analytic, false);
+            if err > tolerance {
+                self.over_budget += 1;
+                if let Some(f) = &mut self.failing {
+                    f.push(n);
+                }
+            }
+        }
+    }
+
+    /// The report of the output (without patterns), and the failing indices if kept.
+    pub(crate) fn finish(self) -> (OutputReport, Vec<usize>) {
+        let mut stats = self.stats;
+        let worst = self.worst;
+        if let Some(n) = worst.at {
+            stats.worst = Some(coordinates(n, &stats.shape));
+            stats.worst_got = worst.got;
+            stats.worst_expected = worst.expected;
+            stats.worst_tolerance = worst.tolerance;
+            stats.worst_ratio = worst.ratio;
+            stats.worst_error = if worst.got == worst.expected {
+                0.0
+            } else {
+                (worst.got - worst.expected).abs()
+            };
+        }
+        stats.over_budget = self.over_budget;
+        stats.passed = self.over_budget == 0;
+        if !self.exact {
+            // A pass names what accepted it; a failure names the criterion whose
+            // tolerance applied at the worst element (the larger of the two there).
+            let analytic_governs = if stats.passed {
+                self.analytic_holds
+            } else {
+                worst.at.is_some() && worst.analytic >= self.allowance
+            };
+            stats.decided_by = if analytic_governs {
+                Criterion::Analytic
+            } else {
+                Criterion::Baseline
+            };
+        }
+        if self.key_indexed {
+            stats.masking = self.saw_mask.then_some(if self.leaks > 0 {
+                Masking::Leak { count: self.leaks }
+            } else if self.masked_non_finite > 0 {
+                Masking::NonFinite {
+                    count: self.masked_non_finite,
+                }
+            } else if let Some(value) = self.sentinel {
+                Masking::Sentinel { value }
+            } else {
+                Masking::NegativeInfinity
+            });
+        }
+        (stats, self.failing.unwrap_or_default())
     }
 }
 
@@ -762,8 +1051,6 @@ pub fn compare_output(
     budget: &Budget,
     visibility: &Visibility,
 ) -> OutputReport {
-    let key_indexed = output.is_key_indexed() && want.ndim() == 3;
-    let is_scores = key_indexed && output == Output::Scores;
     let shape = want.shape().to_vec();
     let want_std = want.as_standard_layout();
     let got_std = got.as_standard_layout();
@@ -771,204 +1058,59 @@ pub fn compare_output(
         want_std.as_slice().unwrap_or(&[]),
         got_std.as_slice().unwrap_or(&[]),
     );
-    let mut stats = OutputReport {
-        name: output,
-        shape: shape.clone(),
-        dtype: declared,
-        array_dtype: declared,
-        budget_dtype: budget.dtype,
-        passed: true,
-        decided_by: if budget.exact {
-            Criterion::Exact
-        } else {
-            Criterion::Analytic
-        },
-        max_abs: 0.0,
-        max_rel: 0.0,
-        max_ulp: 0.0,
-        worst: None,
-        worst_error: 0.0,
-        worst_ratio: 0.0,
-        worst_got: 0.0,
-        worst_expected: 0.0,
-        worst_tolerance: 0.0,
-        over_budget: 0,
-        elements: 0,
-        non_finite: 0,
-        allowance: budget.allowance(),
-        masking: None,
-        patterns: Vec::new(),
-        error_map: None,
-    };
-    let allowance = budget.allowance();
-    let keys = if key_indexed { shape[2] } else { 1 };
-    // Largest kernel score over the visible entries of each row (for sentinels).
-    let row_max: Vec<f64> = if is_scores {
-        want_s
-            .chunks(keys)
-            .zip(got_s.chunks(keys))
-            .enumerate()
-            .map(|(row, (w, g))| {
-                w.iter()
-                    .zip(g)
-                    .enumerate()
-                    .filter(|&(j, (w, g))| {
-                        w.is_finite() && g.is_finite() && !visibility.hidden(row * keys + j)
-                    })
-                    .fold(f64::NEG_INFINITY, |m, (_, (_, &g))| m.max(g))
-            })
-            .collect()
-    } else {
-        Vec::new()
-    };
-    // A probability rounds to zero in the dtype when it is below half the smallest
-    // positive value; compared as 2p < smallest, since half of f64's smallest
-    // subnormal is itself 0.
-    let smallest = smallest_positive(budget.dtype);
-    let masked = |n: usize, w: f64| key_indexed && (visibility.hidden(n) || w == f64::NEG_INFINITY);
-    // A masked entry holds what it must: a -inf score, or a finite one carrying zero
-    // probability; a zero probability.
-    let masked_ok = |n: usize, g: f64| {
-        if is_scores {
-            if g == f64::NEG_INFINITY {
-                true
-            } else if g.is_finite() {
-                let max = row_max[n / keys];
-                max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
-            } else {
-                false
-            }
-        } else {
-            g == 0.0
-        }
-    };
-    let mut failing: Vec<usize> = Vec::new();
-    let mut leaks = 0;
-    let mut masked_non_finite = 0;
-    let mut sentinel: Option<f64> = None;
-    let mut saw_mask = false;
-    let mut worst = Worst::default();
-    let mut analytic_holds = budget.analytic.is_some();
+    let mut tally = Tally::new(output, &shape, declared, budget, visibility, true);
     let analytic_bounds = budget.analytic.as_ref().and_then(|a| a.as_slice());
-    let analytic_at = |n: usize| {
-        analytic_bounds
-            .and_then(|a| a.get(n))
-            .copied()
-            .unwrap_or(0.0)
-    };
-    // The ratio of error to tolerance (infinite for a leak or a non-finite answer), as
-    // the loop below judges each element; only failing outputs keep the map of them.
-    let ratio_at = |n: usize, w: f64, g: f64| {
-        if masked(n, w) {
-            return if masked_ok(n, g) { 0.0 } else { f64::INFINITY };
-        }
-        if !g.is_finite() {
-            return f64::INFINITY;
-        }
-        let err = (g - w).abs();
-        let tolerance = analytic_at(n).max(allowance);
-        if tolerance > 0.0 {
-            err / tolerance
-        } else if err > 0.0 {
-            f64::INFINITY
-        } else {
-            0.0
-        }
-    };
-    for (n, (&w, &g)) in want_s.iter().zip(got_s).enumerate() {
-        stats.elements += 1;
-        if masked(n, w) {
-            saw_mask = true;
-            if is_scores && g.is_finite() && g != f64::NEG_INFINITY {
-                sentinel = Some(sentinel.map_or(g, |s: f64| s.max(g)));
-            }
-            if !masked_ok(n, g) {
-                if g.is_nan() || g == f64::INFINITY {
-                    stats.non_finite += 1;
-                    masked_non_finite += 1;
-                } else {
-                    leaks += 1;
-                }
-                worst.offer(n, f64::INFINITY, g, w, 0.0, true);
-                failing.push(n);
-            }
-            continue;
-        }
-        let analytic = analytic_at(n);
-        let tolerance = analytic.max(allowance);
-        if !g.is_finite() {
-            // A non-finite answer where a finite one is expected is an infinite error.
-            stats.max_abs = f64::INFINITY;
-            stats.max_rel = f64::INFINITY;
-            stats.max_ulp = f64::INFINITY;
-            stats.non_finite += 1;
-            worst.offer(n, f64::INFINITY, g, w, tolerance, false);
-            failing.push(n);
-            continue;
-        }
-        let err = (g - w).abs();
-        stats.max_abs = stats.max_abs.max(err);
-        if w != 0.0 {
-            stats.max_rel = stats.max_rel.max(err / w.abs());
-        }
-        stats.max_ulp = stats.max_ulp.max(ulp_distance(g, w, declared));
-        if err > analytic {
-            analytic_holds = false;
-        }
-        let ratio = if tolerance > 0.0 {
-            err / tolerance
-        } else if err > 0.0 {
-            f64::INFINITY
-        } else {
-            0.0
-        };
-        worst.offer(n, ratio, g, w, tolerance, false);
-        if err > tolerance {
-            failing.push(n);
-        }
-    }
-    if let Some(n) = worst.at {
-        stats.worst = Some(coordinates(n, &shape));
-        stats.worst_got = worst.got;
-        stats.worst_expected = worst.expected;
-        stats.worst_tolerance = worst.tolerance;
-        stats.worst_ratio = worst.ratio;
-        stats.worst_error = if worst.got == worst.expected {
-            0.0
-        } else {
-            (worst.got - worst.expected).abs()
-        };
-    }
-    stats.over_budget = failing.len();
-    stats.passed = failing.is_empty();
-    if !budget.exact {
-        // A pass names what accepted it; a failure names the criterion whose tolerance
-        // applied at the worst element (the larger of the two there).
-        let analytic_governs = if stats.passed {
-            analytic_holds
-        } else {
-            worst.at.is_some_and(|n| budget.analytic_at(n) >= allowance)
-        };
-        stats.decided_by = if analytic_governs {
-            Criterion::Analytic
-        } else {
-            Criterion::Baseline
-        };
-    }
-    if key_indexed {
-        stats.masking = saw_mask.then_some(if leaks > 0 {
-            Masking::Leak { count: leaks }
-        } else if masked_non_finite > 0 {
-            Masking::NonFinite {
-                count: masked_non_finite,
-            }
-        } else if let Some(value) = sentinel {
-            Masking::Sentinel { value }
-        } else {
-            Masking::NegativeInfinity
-        });
-    }
+    tally.feed(0, want_s, got_s, analytic_bounds);
+    let (mut stats, failing) = tally.finish();
     if !stats.passed {
+        let key_indexed = output.is_key_indexed() && want.ndim() == 3;
+        let is_scores = key_indexed && output == Output::Scores;
+        let keys = if key_indexed { shape[2].max(1) } else { 1 };
+        let allowance = budget.allowance();
+        let smallest = smallest_positive(budget.dtype);
+        let row_max = if is_scores {
+            row_maxima(want_s, got_s, keys, 0, visibility)
+        } else {
+            Vec::new()
+        };
+        let analytic_at = |n: usize| {
+            analytic_bounds
+                .and_then(|a| a.get(n))
+                .copied()
+                .unwrap_or(0.0)
+        };
+        // The ratio of error to tolerance (infinite for a leak or a non-finite
+        // answer), as the tally judged each element; only failing outputs keep the
+        // map of them.
+        let ratio_at = |n: usize, w: f64, g: f64| {
+            if key_indexed && (visibility.hidden(n) || w == f64::NEG_INFINITY) {
+                let ok = if is_scores {
+                    if g == f64::NEG_INFINITY {
+                        true
+                    } else if g.is_finite() {
+                        let max = row_max[n / keys];
+                        max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
+                    } else {
+                        false
+                    }
+                } else {
+                    g == 0.0
+                };
+                return if ok { 0.0 } else { f64::INFINITY };
+            }
+            if !g.is_finite() {
+                return f64::INFINITY;
+            }
+            let err = (g - w).abs();
+            let tolerance = analytic_at(n).max(allowance);
+            if tolerance > 0.0 {
+                err / tolerance
+            } else if err > 0.0 {
+                f64::INFINITY
+            } else {
+                0.0
+            }
+        };
         let ratios = want_s
             .iter()
             .zip(got_s)

@@ -48,6 +48,7 @@ pub mod demo;
 pub mod diagnose;
 mod error;
 pub mod files;
+pub mod headwise;
 pub mod kernel;
 pub mod math;
 pub mod recurrence;

@@ -18,19 +18,50 @@ use std::fmt;
 
 use base64::Engine as _;
 use half::{bf16, f16};
-use ndarray::{ArrayD, ArrayViewD, IxDyn};
+use ndarray::{ArrayD, CowArray, IxDyn};
 use serde::de::{self, Deserialize, Deserializer, IgnoredAny, MapAccess, SeqAccess, Visitor};
 use serde_json::{json, Value};
 
 use crate::error::{Error, Result};
 use crate::math::precision::Dtype;
 
-/// An array of one dtype. Elements are held as f64, which represents every f32, f16
-/// and bf16 value exactly, and every i64 up to 2^53 in magnitude.
-#[derive(Debug, Clone, PartialEq)]
+/// An array of one dtype. Arrays built from values are held as f64, which represents
+/// every f32, f16 and bf16 value exactly, and every i64 up to 2^53 in magnitude; an
+/// f32, f16 or bf16 array decoded from bytes (a kernel's reply, a file) keeps its bytes
+/// as they arrived and converts on reading, so a large answer is held once, in its own
+/// width ([`Tensor::view`] converts the whole array, [`Tensor::read_values`] a range).
+#[derive(Debug, Clone)]
 pub struct Tensor {
     dtype: Dtype,
-    values: ArrayD<f64>,
+    store: Store,
+}
+
+#[derive(Debug, Clone)]
+enum Store {
+    Wide(ArrayD<f64>),
+    /// The little-endian row-major bytes of an f32, f16 or bf16 array.
+    Narrow {
+        shape: Vec<usize>,
+        bytes: Vec<u8>,
+    },
+}
+
+impl PartialEq for Tensor {
+    /// Same dtype, shape and values (compared as f64, whatever the storage).
+    fn eq(&self, other: &Self) -> bool {
+        if self.dtype != other.dtype || self.shape() != other.shape() {
+            return false;
+        }
+        match (&self.store, &other.store) {
+            (Store::Wide(a), Store::Wide(b)) => a == b,
+            _ => {
+                let (mut a, mut b) = (Vec::new(), Vec::new());
+                self.for_each_value(|x| a.push(x));
+                other.for_each_value(|x| b.push(x));
+                a == b
+            }
+        }
+    }
 }
 
 impl Tensor {
@@ -40,7 +71,10 @@ impl Tensor {
             // In place: a large output is not held twice.
             values.mapv_inplace(|x| dtype.round(x));
         }
-        Tensor { dtype, values }
+        Tensor {
+            dtype,
+            store: Store::Wide(values),
+        }
     }
 
     /// The element type.
@@ -50,23 +84,103 @@ impl Tensor {
 
     /// The shape.
     pub fn shape(&self) -> &[usize] {
-        self.values.shape()
+        match &self.store {
+            Store::Wide(values) => values.shape(),
+            Store::Narrow { shape, .. } => shape,
+        }
     }
 
-    /// The values, as f64.
-    pub fn view(&self) -> ArrayViewD<'_, f64> {
-        self.values.view()
+    /// The number of elements.
+    pub fn len(&self) -> usize {
+        match &self.store {
+            Store::Wide(values) => values.len(),
+            Store::Narrow { bytes, .. } => bytes.len() / self.dtype.size(),
+        }
+    }
+
+    /// Whether the array has no elements.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// The values, as f64: borrowed when held as f64, converted (a new f64 array) when
+    /// held in a narrower dtype's bytes.
+    pub fn view(&self) -> CowArray<'_, f64, IxDyn> {
+        match &self.store {
+            Store::Wide(values) => CowArray::from(values.view()),
+            Store::Narrow { .. } => CowArray::from(self.clone().into_values()),
+        }
     }
 
     /// The values, as f64, owned.
     pub fn into_values(self) -> ArrayD<f64> {
-        self.values
+        match self.store {
+            Store::Wide(values) => values,
+            Store::Narrow { shape, bytes } => {
+                let values = convert_narrow(self.dtype, &bytes);
+                drop(bytes);
+                // The element count matched the shape when the bytes were accepted.
+                ArrayD::from_shape_vec(IxDyn(&shape), values)
+                    .unwrap_or_else(|_| ArrayD::zeros(IxDyn(&shape)))
+            }
+        }
+    }
+
+    /// Elements `start..start + out.len()` in row-major order, as f64, into `out`.
+    /// Errors when the range is outside the array.
+    pub fn read_values(&self, start: usize, out: &mut [f64]) -> Result<()> {
+        let end = start
+            .checked_add(out.len())
+            .filter(|&end| end <= self.len())
+            .ok_or_else(|| {
+                Error::param(
+                    "range",
+                    format!("within the {} elements of the array", self.len()),
+                    format!("{start}..{}", start.saturating_add(out.len())),
+                )
+            })?;
+        match &self.store {
+            Store::Wide(values) => match values.as_slice() {
+                Some(all) => out.copy_from_slice(&all[start..end]),
+                None => {
+                    for (o, x) in out.iter_mut().zip(values.iter().skip(start)) {
+                        *o = *x;
+                    }
+                }
+            },
+            Store::Narrow { bytes, .. } => {
+                let size = self.dtype.size();
+                let part = &bytes[start * size..end * size];
+                match self.dtype {
+                    Dtype::F32 => convert_into(part, out, |c| f32::from_le_bytes(c) as f64),
+                    Dtype::F16 => convert_into(part, out, |c| f16::from_le_bytes(c).to_f64()),
+                    _ => convert_into(part, out, |c| bf16::from_le_bytes(c).to_f64()),
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// Calls `f` on every element in row-major order, as f64.
+    pub fn for_each_value(&self, mut f: impl FnMut(f64)) {
+        match &self.store {
+            Store::Wide(values) => values.iter().for_each(|&x| f(x)),
+            Store::Narrow { bytes, .. } => match self.dtype {
+                Dtype::F32 => each(bytes, |c| f(f32::from_le_bytes(c) as f64)),
+                Dtype::F16 => each(bytes, |c| f(f16::from_le_bytes(c).to_f64())),
+                _ => each(bytes, |c| f(bf16::from_le_bytes(c).to_f64())),
+            },
+        }
     }
 
     /// The little-endian bytes of the elements in row-major order.
     pub fn to_le_bytes(&self) -> Vec<u8> {
-        let mut bytes = Vec::with_capacity(self.values.len() * self.dtype.size());
-        let values = self.values.iter().copied();
+        let values = match &self.store {
+            Store::Narrow { bytes, .. } => return bytes.clone(),
+            Store::Wide(values) => values,
+        };
+        let mut bytes = Vec::with_capacity(values.len() * self.dtype.size());
+        let values = values.iter().copied();
         // One loop per dtype, so each compiles to a plain conversion loop.
         match self.dtype {
             Dtype::F64 => values.for_each(|x| bytes.extend_from_slice(&x.to_le_bytes())),
@@ -99,17 +213,45 @@ impl Tensor {
                 ),
             ));
         }
+        Self::from_le_vec(dtype, shape, bytes.to_vec(), location)
+    }
+
+    /// [`from_le_bytes`](Self::from_le_bytes) taking the bytes: an f32, f16 or bf16
+    /// array keeps them as its storage (nothing is converted or copied).
+    pub fn from_le_vec(
+        dtype: Dtype,
+        shape: &[usize],
+        bytes: Vec<u8>,
+        location: &dyn fmt::Display,
+    ) -> Result<Self> {
+        let expected = byte_count(dtype, shape, location)?;
+        if bytes.len() != expected {
+            return Err(Error::format(
+                location,
+                format!(
+                    "shape {shape:?} of {dtype} needs {expected} bytes, found {}",
+                    bytes.len()
+                ),
+            ));
+        }
         // One loop per dtype, so each compiles to a plain conversion loop.
         let values: Vec<f64> = match dtype {
-            Dtype::F64 => decode(bytes, f64::from_le_bytes),
-            Dtype::F32 => decode(bytes, |c| f32::from_le_bytes(c) as f64),
-            Dtype::F16 => decode(bytes, |c| f16::from_le_bytes(c).to_f64()),
-            Dtype::Bf16 => decode(bytes, |c| bf16::from_le_bytes(c).to_f64()),
-            Dtype::I64 => decode(bytes, |c| i64::from_le_bytes(c) as f64),
+            Dtype::F64 => decode(&bytes, f64::from_le_bytes),
+            Dtype::I64 => decode(&bytes, |c| i64::from_le_bytes(c) as f64),
+            Dtype::F32 | Dtype::F16 | Dtype::Bf16 => {
+                return Ok(Tensor {
+                    dtype,
+                    store: Store::Narrow {
+                        shape: shape.to_vec(),
+                        bytes,
+                    },
+                })
+            }
         };
+        drop(bytes);
         Ok(Tensor {
             dtype,
-            values: shaped(shape, values, location)?,
+            store: Store::Wide(shaped(shape, values, location)?),
         })
     }
 
@@ -421,6 +563,29 @@ fn decode<const N: usize>(bytes: &[u8], convert: impl Fn([u8; N]) -> f64) -> Vec
     elements.iter().map(|&c| convert(c)).collect()
 }
 
+/// The f64 values of the bytes of an f32, f16 or bf16 array.
+fn convert_narrow(dtype: Dtype, bytes: &[u8]) -> Vec<f64> {
+    match dtype {
+        Dtype::F32 => decode(bytes, |c| f32::from_le_bytes(c) as f64),
+        Dtype::F16 => decode(bytes, |c| f16::from_le_bytes(c).to_f64()),
+        _ => decode(bytes, |c| bf16::from_le_bytes(c).to_f64()),
+    }
+}
+
+/// [`decode`] into a slice of the same element count.
+fn convert_into<const N: usize>(bytes: &[u8], out: &mut [f64], convert: impl Fn([u8; N]) -> f64) {
+    let (elements, _) = bytes.as_chunks::<N>();
+    for (o, &c) in out.iter_mut().zip(elements) {
+        *o = convert(c);
+    }
+}
+
+/// Calls `f` on each element of `N` bytes.
+fn each<const N: usize>(bytes: &[u8], mut f: impl FnMut([u8; N])) {
+    let (elements, _) = bytes.as_chunks::<N>();
+    elements.iter().for_each(|&c| f(c));
+}
+
 fn npy_descr(dtype: Dtype) -> Option<&'static str> {
     match dtype {
         Dtype::F64 => Some("<f8"),
@@ -562,7 +727,7 @@ impl WireArray {
                     .decode(text.as_bytes())
                     .map_err(|e| Error::format(location, format!("`data` is not base64: {e}")))?;
                 drop(text);
-                Tensor::from_le_bytes(dtype, &shape, &bytes, location)
+                Tensor::from_le_vec(dtype, &shape, bytes, location)
             }
             (None, Some(values)) => {
                 let values = values
@@ -638,7 +803,7 @@ impl WireArray {
             }
             None => return Err(Error::format(location, "missing `shape`")),
         };
-        Tensor::from_le_bytes(dtype, &shape, &bytes, location)
+        Tensor::from_le_vec(dtype, &shape, bytes, location)
     }
 }
 

@@ -106,18 +106,24 @@ pub fn run_case(
         }
     };
     // Expected outputs and the budgets of the dtype the kernel is judged in, in one
-    // pass of the reference; budgets for any other dtype are derived on demand.
+    // pass of the reference; budgets for any other dtype are derived on demand. A
+    // large case is compared head by head once the answer is in (crate::headwise):
+    // nothing of its reference is held while the kernel computes.
     let budget_dtype = options.budget_dtype.unwrap_or(dtype);
-    let (expected, budgets) =
+    let by_head = crate::headwise::compared_by_head(case);
+    let reference = if by_head {
+        None
+    } else {
         match budget::expected_and_budgets(case, &inputs, budget_dtype, options.factor) {
-            Ok(e) => e,
+            Ok(e) => Some(e),
             Err(e) => {
                 return (
                     CaseReport::error(case, format!("reference failed: {e}")),
                     None,
                 )
             }
-        };
+        }
+    };
     let sent: Arrays = inputs
         .iter()
         .map(|(n, t)| {
@@ -149,19 +155,13 @@ pub fn run_case(
                 declared: Some(dtype),
                 ..*options
             };
-            let mut ready = Some(budgets);
-            let mut source = |wanted: Dtype| match ready.take_if(|_| wanted == budget_dtype) {
-                Some(b) => Ok(b),
-                None => budget::budgets(case, &inputs, &expected, wanted, options.factor),
+            let compared = match reference {
+                None => crate::headwise::compare_by_head(case, &inputs, &outputs, &options),
+                Some((expected, budgets)) => {
+                    compare_whole(case, &inputs, expected, budgets, &outputs, &options)
+                }
             };
-            let mut report = match compare_with_budgets(
-                case,
-                &inputs,
-                &expected,
-                &outputs,
-                &options,
-                &mut source,
-            ) {
+            let mut report = match compared {
                 Ok(r) => r,
                 Err(e) => {
                     return (
@@ -190,6 +190,28 @@ pub fn run_case(
             (report, None)
         }
     }
+}
+
+/// The whole-array comparison of `check`, with the expected outputs and budgets
+/// computed before the kernel ran.
+fn compare_whole(
+    case: &Case,
+    inputs: &Arrays,
+    expected: crate::reference::Outputs,
+    budgets: crate::budget::Budgets,
+    outputs: &Arrays,
+    options: &CompareOptions,
+) -> Result<CaseReport> {
+    let budget_dtype = options
+        .budget_dtype
+        .or(options.declared)
+        .unwrap_or(case.dtype);
+    let mut ready = Some(budgets);
+    let mut source = |wanted: Dtype| match ready.take_if(|_| wanted == budget_dtype) {
+        Some(b) => Ok(b),
+        None => budget::budgets(case, inputs, &expected, wanted, options.factor),
+    };
+    compare_with_budgets(case, inputs, &expected, outputs, options, &mut source)
 }
 
 /// Runs cases with restarts and the consecutive-failure stop, and keeps the run-level

@@ -415,6 +415,10 @@ impl SchemeModel for BucketedSpec {
         self.scale
     }
 
+    fn per_head_inputs(&self) -> Option<&'static [&'static str]> {
+        Some(&["bias_table"])
+    }
+
     fn validate(&self, _shape: &Shape<'_>) -> Result<()> {
         self.scale.validate()?;
         self.rule().map(drop)

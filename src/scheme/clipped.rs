@@ -315,6 +315,10 @@ impl SchemeModel for ClippedSpec {
         self.scale
     }
 
+    fn per_head_inputs(&self) -> Option<&'static [&'static str]> {
+        Some(&["w_key", "w_value"])
+    }
+
     fn validate(&self, _shape: &Shape<'_>) -> Result<()> {
         self.scale.validate()?;
         if self.clip_distance > MAX_CLIP {

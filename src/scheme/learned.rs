@@ -140,6 +140,10 @@ impl SchemeModel for LearnedSpec {
         Scale::InverseSqrtDim
     }
 
+    fn per_head_inputs(&self) -> Option<&'static [&'static str]> {
+        Some(&[])
+    }
+
     fn validate(&self, shape: &Shape<'_>) -> Result<()> {
         if self.max_positions == 0 {
             return Err(Error::param("scheme.max_positions", ">= 1", 0));

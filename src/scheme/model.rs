@@ -146,6 +146,15 @@ pub trait SchemeModel: fmt::Debug + Send + Sync {
         Vec::new()
     }
 
+    /// The scheme's own window inputs that carry the head on their first axis, when
+    /// every output of head `h` depends only on head `h` of `q`, `k`, `v` and of these
+    /// (so a case restricted to one head, with these arrays sliced, computes that
+    /// head's rows exactly: [`crate::headwise`]); `None` when a head also depends on
+    /// the head count (ALiBi's slopes) or on other heads.
+    fn per_head_inputs(&self) -> Option<&'static [&'static str]> {
+        None
+    }
+
     /// The output of `encode` and its shape.
     fn encode_output(&self, shape: &Shape<'_>) -> (Output, Vec<usize>);
 

@@ -600,6 +600,10 @@ impl SchemeModel for RotarySpec {
         self.scale
     }
 
+    fn per_head_inputs(&self) -> Option<&'static [&'static str]> {
+        Some(&[])
+    }
+
     fn validate(&self, shape: &Shape<'_>) -> Result<()> {
         self.scale.validate()?;
         self.rotary(shape.head_dim).map(drop)

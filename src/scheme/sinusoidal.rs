@@ -208,6 +208,10 @@ impl crate::scheme::model::SchemeModel for SinusoidalSpec {
         crate::attention::Scale::InverseSqrtDim
     }
 
+    fn per_head_inputs(&self) -> Option<&'static [&'static str]> {
+        Some(&[])
+    }
+
     fn validate(&self, shape: &crate::shape::Shape<'_>) -> Result<()> {
         Sinusoid::new(shape.head_dim, self.base, SinusoidLayout::Interleaved).map(drop)
     }

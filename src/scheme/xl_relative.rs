@@ -506,6 +506,10 @@ impl SchemeModel for XlRelativeSpec {
         self.scale
     }
 
+    fn per_head_inputs(&self) -> Option<&'static [&'static str]> {
+        Some(&["r", "content_bias", "position_bias"])
+    }
+
     fn validate(&self, _shape: &Shape<'_>) -> Result<()> {
         self.scale.validate()
     }

@@ -366,14 +366,17 @@ struct Engine<'a, T> {
     _t: std::marker::PhantomData<T>,
 }
 
-fn input<'i>(inputs: &'i Arrays, name: &str) -> Fallible<ndarray::ArrayViewD<'i, f64>> {
+fn input<'i>(
+    inputs: &'i Arrays,
+    name: &str,
+) -> Fallible<ndarray::CowArray<'i, f64, ndarray::IxDyn>> {
     inputs
         .get(name)
         .map(|t| t.view())
         .ok_or_else(|| format!("missing input `{name}`"))
 }
 
-fn heads<T: Real>(x: &ndarray::ArrayViewD<'_, f64>) -> Fallible<Heads<T>> {
+fn heads<T: Real>(x: &ndarray::CowArray<'_, f64, ndarray::IxDyn>) -> Fallible<Heads<T>> {
     if x.ndim() != 3 {
         return Err(format!("expected a 3-d array, got shape {:?}", x.shape()));
     }
@@ -802,7 +805,7 @@ impl<'a, T: Real> Engine<'a, T> {
                 out.insert("table".into(), self.emit(&[l, d], table));
             }
             SchemeSpec::Learned(_) => {
-                let table: Rows<T> = rows(&input(inputs, "table")?)?;
+                let table: Rows<T> = rows(&input(inputs, "table")?.view())?;
                 let mut values = Vec::new();
                 for p in positions()? {
                     let row = usize::try_from(p)
@@ -882,13 +885,13 @@ impl<'a, T: Real> Engine<'a, T> {
             w_value: Vec::new(),
         };
         match &self.case.scheme {
-            SchemeSpec::Learned(_) => a.table = rows(&input(inputs, "table")?)?,
+            SchemeSpec::Learned(_) => a.table = rows(&input(inputs, "table")?.view())?,
             SchemeSpec::XlRelative(_) => {
                 a.r = heads(&input(inputs, "r")?)?;
-                a.u = rows(&input(inputs, "content_bias")?)?;
-                a.pv = rows(&input(inputs, "position_bias")?)?;
+                a.u = rows(&input(inputs, "content_bias")?.view())?;
+                a.pv = rows(&input(inputs, "position_bias")?.view())?;
             }
-            SchemeSpec::Bucketed(_) => a.bias_table = rows(&input(inputs, "bias_table")?)?,
+            SchemeSpec::Bucketed(_) => a.bias_table = rows(&input(inputs, "bias_table")?.view())?,
             SchemeSpec::Clipped(_) => {
                 a.w_key = heads(&input(inputs, "w_key")?)?;
                 a.w_value = heads(&input(inputs, "w_value")?)?;
