@@ -17,9 +17,12 @@
 //!
 //! The machine's headroom ([`super::calibrate`]) is compared too: a kernel on several
 //! threads slows down far more than the calibration when other processes hold cores.
-//! When this run's headroom is below the baseline's by more than the factor
-//! [`HEADROOM_LIMIT`], a *regressed* verdict becomes *too noisy to judge*, saying why;
-//! when it is above by that factor, an *improved* one does.
+//! With headroom `hb` in the baseline and `hn` now, a slowdown by up to `hb/hn` (when
+//! more than 1) may be the machine's rather than the kernel's (a kernel on every core
+//! slows down as the concurrent probe does), so a *regressed* verdict stands only when
+//! `(1 + low)·hn/hb - 1` still lies above `t`, and otherwise becomes *too noisy to
+//! judge*, saying why; likewise an *improved* one only when `(1 + high)·hn/hb - 1` still
+//! lies below `1/(1+t) - 1` (when `hn > hb`).
 //!
 //! Only *regressed* fails the gate (exit 1). A workload in one run and not the other is
 //! *new* or *missing*; one measured differently (the kernel's own time in one run, the
@@ -39,12 +42,6 @@ use crate::run::select::IdPattern;
 pub const DEFAULT_THRESHOLD: f64 = 0.25;
 /// The largest threshold accepted (1000%).
 pub const MAX_THRESHOLD: f64 = 10.0;
-/// How far the headroom of a run and of its baseline may differ (as a factor) before
-/// regressions (less headroom now) or improvements (more) are no longer judged. Our
-/// choice from measurements on a 2-core machine: idle runs 0.57 to 0.68, runs beside a
-/// busy loop holding one core 0.37 to 0.41.
-pub const HEADROOM_LIMIT: f64 = 1.3;
-
 /// The largest baseline file read.
 const MAX_BASELINE_BYTES: u64 = 256 << 20;
 
@@ -491,19 +488,30 @@ pub fn compare(report: &BenchReport, baseline: &Baseline, thresholds: &Threshold
             continue;
         }
         let (verdict, range) = judge(base.floor_ratio, base.floor_noise, now.0, now.1, threshold);
+        let faster = 1.0 / (1.0 + threshold) - 1.0;
         let (verdict, reason) = match (&verdict, headroom) {
-            (Verdict::Regressed, Some((b, n))) if n * HEADROOM_LIMIT < b => (
-                Verdict::TooNoisy,
-                Some(format!(
-                    "slower beyond the threshold, but the machine had less headroom than during the baseline ({n:.2} against {b:.2}): other processes held cores"
-                )),
-            ),
-            (Verdict::Improved, Some((b, n))) if n > b * HEADROOM_LIMIT => (
-                Verdict::TooNoisy,
-                Some(format!(
-                    "faster beyond the threshold, but the machine had more headroom than during the baseline ({n:.2} against {b:.2})"
-                )),
-            ),
+            (Verdict::Regressed, Some((b, n)))
+                if n < b && (1.0 + range.low) * n / b - 1.0 <= threshold =>
+            {
+                (
+                    Verdict::TooNoisy,
+                    Some(format!(
+                        "slower beyond the threshold, but the machine had less headroom than during the baseline ({n:.2} against {b:.2}: other processes held cores), which could make it up to {:.2}x as slow",
+                        b / n
+                    )),
+                )
+            }
+            (Verdict::Improved, Some((b, n)))
+                if n > b && (1.0 + range.high) * n / b - 1.0 >= faster =>
+            {
+                (
+                    Verdict::TooNoisy,
+                    Some(format!(
+                        "faster beyond the threshold, but the machine had more headroom than during the baseline ({n:.2} against {b:.2}), which could make it up to {:.2}x as fast",
+                        n / b
+                    )),
+                )
+            }
             _ => (verdict, None),
         };
         changes.push(row(verdict, Some(now), Some(range), reason));
@@ -634,32 +642,35 @@ mod tests {
         Baseline::parse(json.as_bytes(), Path::new("base.json")).unwrap()
     }
 
-    /// Twice as slow with as much headroom as the baseline: regressed. With headroom
-    /// 0.4 against 0.6 (a core held by another process): too noisy, saying why. Twice
-    /// as fast with more headroom than the baseline: too noisy, not improved.
+    /// 1.8 times as slow (no noise, threshold 25%) with as much headroom as the
+    /// baseline: regressed. With headroom 0.4 against 0.6 (a core held by another
+    /// process), which could make it up to 1.5x as slow: 1.8/1.5 = 1.2, within the
+    /// threshold, so too noisy, saying why. With 0.5 against 0.6: 1.8/1.2 = 1.5, still
+    /// regressed. 0.7 times the time with headroom 0.6 against 0.4: 0.7·1.5 = 1.05,
+    /// too noisy; with the baseline's headroom, improved.
     #[test]
-    fn less_headroom_than_the_baseline_turns_a_regression_into_too_noisy() {
+    fn lost_headroom_is_taken_out_of_a_regression() {
         let thresholds = Thresholds::default();
         let base = baseline_of(&report_with(1.0, 0.6, 1.0));
         assert_eq!(base.headroom, Some(0.6));
-        let slow_alike = compare(&report_with(2.0, 0.6, 1.0), &base, &thresholds);
+        let slow_alike = compare(&report_with(1.8, 0.6, 1.0), &base, &thresholds);
         assert_eq!(slow_alike.changes[0].verdict, Verdict::Regressed);
         assert!(slow_alike.failed());
-        let slow_busy = compare(&report_with(2.0, 0.4, 1.0), &base, &thresholds);
+        let slow_busy = compare(&report_with(1.8, 0.4, 1.0), &base, &thresholds);
         assert_eq!(slow_busy.changes[0].verdict, Verdict::TooNoisy);
         let why = slow_busy.changes[0].reason.as_deref().unwrap();
         assert!(
-            why.contains("less headroom than during the baseline (0.40 against 0.60)"),
+            why.contains("less headroom than during the baseline (0.40 against 0.60")
+                && why.contains("up to 1.50x as slow"),
             "{why}"
         );
         assert!(!slow_busy.failed());
-        // Slightly less headroom (0.5 against 0.6, within the limit) still regresses.
-        let slow_a_little_busier = compare(&report_with(2.0, 0.5, 1.0), &base, &thresholds);
+        let slow_a_little_busier = compare(&report_with(1.8, 0.5, 1.0), &base, &thresholds);
         assert_eq!(slow_a_little_busier.changes[0].verdict, Verdict::Regressed);
         let busy_base = baseline_of(&report_with(1.0, 0.4, 1.0));
-        let fast_free = compare(&report_with(0.5, 0.6, 1.0), &busy_base, &thresholds);
+        let fast_free = compare(&report_with(0.7, 0.6, 1.0), &busy_base, &thresholds);
         assert_eq!(fast_free.changes[0].verdict, Verdict::TooNoisy);
-        let fast_alike = compare(&report_with(0.5, 0.4, 1.0), &busy_base, &thresholds);
+        let fast_alike = compare(&report_with(0.7, 0.4, 1.0), &busy_base, &thresholds);
         assert_eq!(fast_alike.changes[0].verdict, Verdict::Improved);
     }
 }
