@@ -268,23 +268,35 @@ impl Case {
         let available = crate::tensor::available_memory();
         let needed = self.memory_needed();
         if needed > available.bytes {
-            let outputs: Vec<String> = self
-                .output_shapes()
-                .into_iter()
-                .map(|(output, shape)| format!("`{output}` {shape:?}"))
-                .collect();
             return Err(Error::TooLarge {
                 case: self.id.clone(),
                 needed,
                 available: available.bytes,
-                detail: format!(
-                    "outputs {}, each held as f64 about {OUTPUT_COPIES} times at once",
-                    outputs.join(", ")
-                ),
+                detail: self.memory_detail(),
                 source_of: available.source,
             });
         }
         Ok(())
+    }
+
+    /// What [`Case::memory_needed`] counts, for the message of a case too large.
+    fn memory_detail(&self) -> String {
+        let outputs: Vec<String> = self
+            .output_shapes()
+            .into_iter()
+            .map(|(output, shape)| format!("`{output}` {shape:?}"))
+            .collect();
+        if crate::headwise::compared_by_head(self) {
+            format!(
+                "outputs {}, compared one head at a time: the answer once and about six f64 copies of one head's outputs",
+                outputs.join(", ")
+            )
+        } else {
+            format!(
+                "outputs {}, each held as f64 about {OUTPUT_COPIES} times at once",
+                outputs.join(", ")
+            )
+        }
     }
 
     /// Bytes of memory checking this case needs at its peak, estimated: its inputs

@@ -582,6 +582,22 @@ fn a_case_beyond_the_machines_memory_is_refused_naming_the_case_and_the_memory()
         "{e}"
     );
     assert!(case.memory_needed() > available, "{e}");
+    assert!(e.contains("each held as f64 about 4 times at once"), "{e}");
+}
+
+/// The same for a case compared one head at a time (docs/budgets.md, "Memory"): its
+/// message counts what that path holds, not four whole copies.
+#[test]
+fn a_case_compared_by_head_beyond_memory_says_what_it_holds() {
+    let available = posconform::tensor::available_memory().bytes;
+    // Two heads of scores, about available/16 elements in all (half of available as
+    // f64): the path holds the answer and six copies of one head, about twice that.
+    let l = (((available / 16 / 4) as f64).sqrt() as usize).max(2);
+    let case = big_scores("huge.split", 2, l);
+    let e = case.validate().unwrap_err().to_string();
+    assert!(e.contains("case huge.split needs about"), "{e}");
+    assert!(e.contains("compared one head at a time"), "{e}");
+    assert!(!e.contains("4 times at once"), "{e}");
 }
 
 /// The fixed cap of 2^27 elements per array is gone: H = 8, L = M = 4096 (2^28 scores)

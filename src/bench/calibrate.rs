@@ -47,7 +47,7 @@ pub struct Sample {
     pub sweep_ms: f64,
 }
 
-/// One headroom probe, in milliseconds.
+/// One headroom probe, in milliseconds ([`PROBE_PRODUCTS`] products each way).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Probe {
     /// The product alone.
@@ -94,13 +94,19 @@ impl Calibration {
     fn parallel(&mut self) -> f64 {
         let started = Instant::now();
         if self.lanes.len() < 2 {
-            self.product();
+            for _ in 0..PROBE_PRODUCTS {
+                self.product();
+            }
             return started.elapsed().as_secs_f64() * 1e3;
         }
         let (a, b) = (&self.a, &self.b);
         std::thread::scope(|scope| {
             for c in self.lanes.iter_mut() {
-                scope.spawn(move || multiply(a, b, c));
+                scope.spawn(move || {
+                    for _ in 0..PROBE_PRODUCTS {
+                        multiply(a, b, c);
+                    }
+                });
             }
         });
         started.elapsed().as_secs_f64() * 1e3
@@ -132,7 +138,9 @@ impl Calibration {
     /// Times one headroom probe.
     pub fn probe(&mut self) -> Probe {
         let started = Instant::now();
-        self.product();
+        for _ in 0..PROBE_PRODUCTS {
+            self.product();
+        }
         let alone_ms = started.elapsed().as_secs_f64() * 1e3;
         Probe {
             alone_ms,
@@ -140,6 +148,13 @@ impl Calibration {
         }
     }
 }
+
+/// Products in a row per probe, alone and on each core: about 3 ms on a current core,
+/// a scheduler's time slice, so that a core shared with another process shows as the
+/// share it gives (with one product, 0.4 ms, thread start-up dominated and idle runs
+/// read anywhere from 0.49 to 0.76; with eight, mostly 0.82 to 0.95, and 0.47 to 0.55
+/// beside a busy loop holding one of two cores; our choice).
+const PROBE_PRODUCTS: usize = 8;
 
 /// The most cores the headroom probe uses.
 const MAX_LANES: usize = 64;

@@ -441,8 +441,8 @@ pub struct BenchOptions {
 pub const PROBES: usize = 3;
 /// The pause before them: long enough for a kernel's threads to stop spinning after
 /// its last run (a BLAS library's workers spin for a while before they sleep; our
-/// choice, from the numpy example kernel, whose probes read 0.31 without a pause on an
-/// otherwise idle 2-core machine).
+/// choice, from the numpy example kernel, whose single-product probes read 0.31
+/// without a pause on an otherwise idle 2-core machine).
 pub const PROBE_PAUSE: std::time::Duration = std::time::Duration::from_millis(200);
 
 /// Blocks when none are given: five (our choice: enough for the range of the block
