@@ -617,18 +617,7 @@ pub fn compare_with_budgets(
         out.array_dtype = array_dtype;
         report.outputs.push(out);
     }
-    let computed: std::collections::BTreeSet<Dtype> = report
-        .outputs
-        .iter()
-        .filter(|o| !o.name.is_integer())
-        .map(|o| o.dtype)
-        .collect();
-    if computed.iter().any(|d| *d != case.dtype) {
-        report.warnings.push(Warning::ComputedIn {
-            case: case.dtype,
-            computed: computed.into_iter().collect(),
-        });
-    }
+    warn_if_computed_in_another_dtype(case, &mut report);
     if !structural.is_empty() {
         report.verdict = Verdict::Error(structural.join("; "));
     } else if report.outputs.iter().any(|o| !o.passed) {
@@ -776,6 +765,41 @@ impl Worst {
 
 /// The largest kernel score over the visible entries of each row of `want`/`got`
 /// (whole rows of `keys` entries starting at flat element `start`), for sentinels.
+/// Adds [`Warning::ComputedIn`] when the float outputs were judged in dtypes other
+/// than the case's.
+pub(crate) fn warn_if_computed_in_another_dtype(case: &Case, report: &mut CaseReport) {
+    let computed: std::collections::BTreeSet<Dtype> = report
+        .outputs
+        .iter()
+        .filter(|o| !o.name.is_integer())
+        .map(|o| o.dtype)
+        .collect();
+    if computed.iter().any(|d| *d != case.dtype) {
+        report.warnings.push(Warning::ComputedIn {
+            case: case.dtype,
+            computed: computed.into_iter().collect(),
+        });
+    }
+}
+
+/// Whether a masked entry holds what it must: a -inf score, or a finite one carrying
+/// zero probability in its row (`row_max`, asked only then, is the row's largest
+/// expected score; `smallest` the smallest positive value of the dtype); a zero
+/// probability.
+fn masked_holds(is_scores: bool, got: f64, row_max: impl FnOnce() -> f64, smallest: f64) -> bool {
+    if !is_scores {
+        return got == 0.0;
+    }
+    if got == f64::NEG_INFINITY {
+        return true;
+    }
+    if !got.is_finite() {
+        return false;
+    }
+    let max = row_max();
+    max == f64::NEG_INFINITY || 2.0 * (got - max).exp() < smallest
+}
+
 fn row_maxima(
     want: &[f64],
     got: &[f64],
@@ -910,20 +934,8 @@ impl<'v> Tally<'v> {
             |n: usize, w: f64| key_indexed && (visibility.hidden(n) || w == f64::NEG_INFINITY);
         // A masked entry holds what it must: a -inf score, or a finite one carrying zero
         // probability; a zero probability.
-        let masked_ok = |local: usize, g: f64| {
-            if is_scores {
-                if g == f64::NEG_INFINITY {
-                    true
-                } else if g.is_finite() {
-                    let max = row_max[local / keys];
-                    max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
-                } else {
-                    false
-                }
-            } else {
-                g == 0.0
-            }
-        };
+        let masked_ok =
+            |local: usize, g: f64| masked_holds(is_scores, g, || row_max[local / keys], smallest);
         let stats = &mut self.stats;
         for (local, (&w, &g)) in want.iter().zip(got).enumerate() {
             let n = start + local;
@@ -1084,18 +1096,7 @@ pub fn compare_output(
         // map of them.
         let ratio_at = |n: usize, w: f64, g: f64| {
             if key_indexed && (visibility.hidden(n) || w == f64::NEG_INFINITY) {
-                let ok = if is_scores {
-                    if g == f64::NEG_INFINITY {
-                        true
-                    } else if g.is_finite() {
-                        let max = row_max[n / keys];
-                        max == f64::NEG_INFINITY || 2.0 * (g - max).exp() < smallest
-                    } else {
-                        false
-                    }
-                } else {
-                    g == 0.0
-                };
+                let ok = masked_holds(is_scores, g, || row_max[n / keys], smallest);
                 return if ok { 0.0 } else { f64::INFINITY };
             }
             if !g.is_finite() {

@@ -239,14 +239,7 @@ pub fn compare_by_head(
             report.outputs.push(out);
         }
     }
-    let computed: std::collections::BTreeSet<Dtype> =
-        report.outputs.iter().map(|o| o.dtype).collect();
-    if computed.iter().any(|d| *d != case.dtype) {
-        report.warnings.push(Warning::ComputedIn {
-            case: case.dtype,
-            computed: computed.into_iter().collect(),
-        });
-    }
+    crate::compare::warn_if_computed_in_another_dtype(case, &mut report);
     if !structural.is_empty() {
         report.verdict = Verdict::Error(structural.join("; "));
     } else if report.outputs.iter().any(|o| !o.passed) {

@@ -203,16 +203,6 @@ impl Tensor {
         bytes: &[u8],
         location: &dyn fmt::Display,
     ) -> Result<Self> {
-        let expected = byte_count(dtype, shape, location)?;
-        if bytes.len() != expected {
-            return Err(Error::format(
-                location,
-                format!(
-                    "shape {shape:?} of {dtype} needs {expected} bytes, found {}",
-                    bytes.len()
-                ),
-            ));
-        }
         Self::from_le_vec(dtype, shape, bytes.to_vec(), location)
     }
 

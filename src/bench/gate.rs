@@ -496,7 +496,7 @@ pub fn compare(report: &BenchReport, baseline: &Baseline, thresholds: &Threshold
                 (
                     Verdict::TooNoisy,
                     Some(format!(
-                        "slower beyond the threshold, but the machine had less headroom than during the baseline ({n:.2} against {b:.2}: other processes held cores), which could make it up to {:.2}x as slow",
+                        "slower beyond the threshold, but the machine had less headroom than during the baseline ({n:.2} against {b:.2}), which could make it up to {:.2}x as slow",
                         b / n
                     )),
                 )

@@ -1055,21 +1055,17 @@ impl Bench {
         if unit.median <= 0.0 {
             return Outcome::Error("the calibration took no measurable time".into());
         }
+        // Each block's fastest run and fastest unit, in one pass over the rounds.
         let blocks = rounds.block.last().map_or(0, |b| b + 1);
-        let block_floors = (0..blocks)
-            .filter_map(|b| {
-                let pick = |values: &[f64]| {
-                    values
-                        .iter()
-                        .zip(&rounds.block)
-                        .filter(|(_, k)| **k == b)
-                        .map(|(v, _)| *v)
-                        .fold(f64::INFINITY, f64::min)
-                };
-                let units: Vec<f64> = rounds.samples.iter().map(Sample::unit_ms).collect();
-                let floor = pick(times) / pick(&units);
-                floor.is_finite().then_some(floor)
-            })
+        let mut fastest = vec![(f64::INFINITY, f64::INFINITY); blocks];
+        for ((&b, &t), sample) in rounds.block.iter().zip(times).zip(&rounds.samples) {
+            fastest[b].0 = fastest[b].0.min(t);
+            fastest[b].1 = fastest[b].1.min(sample.unit_ms());
+        }
+        let block_floors = fastest
+            .into_iter()
+            .map(|(t, u)| t / u)
+            .filter(|floor| floor.is_finite())
             .collect();
         Outcome::Timed(Box::new(Timing {
             measured,
