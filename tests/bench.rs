@@ -100,8 +100,15 @@ fn write(dir: &Path, name: &str, text: &str) -> PathBuf {
     path
 }
 
-/// A kernel doing twice the work fails the gate (exit 1): its workloads regressed,
-/// none reads as unchanged or faster.
+/// A kernel twice as slow fails the gate (exit 1): a workload regressed, and none
+/// reads as unchanged or faster.
+///
+/// On a noisy machine the gate may instead say "too noisy to judge" (exit 0): with 30
+/// rounds in a fresh CI machine right after the build, a twofold slowdown once read as
+/// +83% and +96% with ranges from +5% and +13%. That is the gate being honest, not
+/// missing the slowdown, so the slow kernel gets up to three runs against the same
+/// baseline; every run must call the slowdown a regression or too noisy (never
+/// unchanged, never faster), and one must call it a regression.
 #[test]
 fn a_planted_twofold_slowdown_fails_the_gate() {
     let _lock = ONE_AT_A_TIME.lock().unwrap_or_else(|e| e.into_inner());
@@ -109,25 +116,51 @@ fn a_planted_twofold_slowdown_fails_the_gate() {
     let base = bench_kernel(1, &[]);
     assert_eq!(base.code, Some(0), "{}\n{}", base.stdout, base.stderr);
     let baseline = write(&dir, "baseline.json", &base.stdout);
-    let slow = bench_kernel(2, &["--baseline", baseline.to_str().unwrap()]);
-    let doc = slow.json();
-    assert_eq!(slow.code, Some(1), "{}", slow.stdout);
-    assert_eq!(doc["exit_code"], 1);
-    assert!(
-        counts(&doc)["regressed"].as_u64().unwrap() >= 1,
-        "{}",
-        slow.stdout
-    );
-    assert_eq!(counts(&doc)["unchanged"], 0, "{}", slow.stdout);
-    assert_eq!(counts(&doc)["improved"], 0, "{}", slow.stdout);
-    // The text report names the regression in its table of changes.
-    let text = bench_kernel_as("text", 2, &["--baseline", baseline.to_str().unwrap()]);
-    assert_eq!(text.code, Some(1), "{}\n{}", text.stdout, text.stderr);
-    assert!(text.stdout.contains("REGRESSED"), "{}", text.stdout);
-    assert!(
-        text.stdout.contains("-> regression (exit 1)"),
-        "{}",
-        text.stdout
+    let document = dir.join("slow.json");
+    let mut attempts = Vec::new();
+    for _ in 0..3 {
+        // The text report on stdout and the JSON document of the same run.
+        let slow = bench_kernel_as(
+            "text",
+            2,
+            &[
+                "--baseline",
+                baseline.to_str().unwrap(),
+                "--json",
+                document.to_str().unwrap(),
+            ],
+        );
+        let doc: Value = serde_json::from_slice(&std::fs::read(&document).unwrap()).unwrap();
+        assert_eq!(counts(&doc)["unchanged"], 0, "{}", slow.stdout);
+        assert_eq!(counts(&doc)["improved"], 0, "{}", slow.stdout);
+        assert_eq!(doc["exit_code"].as_i64(), slow.code.map(i64::from));
+        if slow.code == Some(1) {
+            assert!(
+                counts(&doc)["regressed"].as_u64().unwrap() >= 1,
+                "{}",
+                slow.stdout
+            );
+            // The text report names the regression in its table of changes.
+            assert!(slow.stdout.contains("REGRESSED"), "{}", slow.stdout);
+            assert!(
+                slow.stdout.contains("-> regression (exit 1)"),
+                "{}",
+                slow.stdout
+            );
+            return;
+        }
+        assert_eq!(slow.code, Some(0), "{}\n{}", slow.stdout, slow.stderr);
+        assert_eq!(
+            counts(&doc)["too_noisy"].as_u64().unwrap(),
+            doc["workloads"].as_array().unwrap().len() as u64,
+            "{}",
+            slow.stdout
+        );
+        attempts.push(slow.stdout);
+    }
+    panic!(
+        "three runs of a twofold slowdown, none called a regression:\n{}",
+        attempts.join("\n")
     );
 }
 
